@@ -1,0 +1,26 @@
+"""aggpub: privacy-aware publication of aggregated contact networks.
+
+Group people into supernodes of at least k members, add calibrated discrete
+Laplace noise to superedge counts under a stated epsilon, and write a verifiable
+Parquet bundle.
+
+The public API is listed in ``__all__``; everything else is internal.
+"""
+
+from ._version import __version__
+from .bundle import Bundle, CheckResult, check_bundle, read_bundle
+from .errors import (AggpubError, BudgetError, BundleError, GateError, InputError, OutputError, PolicyError,
+                     PrivacyError, UsageError)
+from .ingest import Network, load_network
+from .pipeline import Release, build_release, publish, release_tables, run_release
+from .policy import ReleasePolicy, parse_policy, read_policy
+
+__all__ = [
+    "__version__",
+    "AggpubError", "BudgetError", "BundleError", "GateError", "InputError", "OutputError", "PolicyError",
+    "PrivacyError", "UsageError",
+    "Bundle", "CheckResult", "check_bundle", "read_bundle",
+    "Network", "load_network",
+    "Release", "build_release", "publish", "release_tables", "run_release",
+    "ReleasePolicy", "parse_policy", "read_policy",
+]

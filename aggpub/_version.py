@@ -1,0 +1,2 @@
+__version__ = "0.1.0"
+BUNDLE_FORMAT = "aggpub-bundle/1"

@@ -1,0 +1,78 @@
+"""Read a release bundle."""
+
+from __future__ import annotations
+
+__all__ = ["Bundle", "read_bundle"]
+
+import json
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+from ..errors import BundleError
+from ._files import MANIFEST
+
+
+@dataclass
+class Bundle:
+    """A release bundle loaded into memory.
+
+    Attributes
+    ----------
+    path : Path
+    manifest : dict
+    supernodes : pyarrow.Table
+        ``supernode``, ``size`` and the (possibly generalised) attribute columns.
+    superedges : pyarrow.Table or None
+        ``supernode_a <= supernode_b``, ``edge_count`` and the noise columns
+        (None when the release has no superedge counts).
+    tables : dict
+        Every Parquet table of the bundle by file stem (degree histograms, weight totals).
+    """
+
+    path: Path
+    manifest: dict
+    supernodes: pa.Table
+    superedges: pa.Table | None
+    tables: dict = field(default_factory=dict)
+
+    @property
+    def seeded(self) -> bool:
+        return bool(self.manifest.get("seeded"))
+
+    @property
+    def epsilon_total(self) -> float:
+        return float(self.manifest["epsilon_total"])
+
+
+def read_bundle(path) -> Bundle:
+    """Load a bundle folder (use :func:`aggpub.check_bundle` to verify it first).
+
+    Parameters
+    ----------
+    path : str or Path
+
+    Returns
+    -------
+    Bundle
+    """
+    path = Path(path)
+    if not (path / MANIFEST).is_file():
+        raise BundleError(f"{path}: not a bundle (no {MANIFEST})")
+    try:
+        manifest = json.loads((path / MANIFEST).read_text("utf-8"))
+    except (OSError, UnicodeDecodeError, json.JSONDecodeError) as exc:
+        raise BundleError(f"{path / MANIFEST}: unreadable manifest ({exc})") from None
+    tables = {}
+    for name in manifest.get("files", {}):
+        if name.endswith(".parquet"):
+            try:
+                tables[name[: -len(".parquet")]] = pq.read_table(path / name)
+            except (OSError, pa.ArrowException) as exc:
+                raise BundleError(f"{path / name}: unreadable Parquet file ({exc})") from None
+    if "supernodes" not in tables:
+        raise BundleError(f"{path}: bundle has no supernodes.parquet")
+    return Bundle(path=path, manifest=manifest, supernodes=tables["supernodes"],
+                  superedges=tables.get("superedges"), tables=tables)

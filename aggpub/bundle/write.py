@@ -1,0 +1,99 @@
+"""Write a release bundle atomically: temporary folder beside the target, fsync, rename."""
+
+from __future__ import annotations
+
+__all__ = ["write_bundle"]
+
+import json
+import os
+import shutil
+from pathlib import Path
+
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+from ..errors import OutputError
+from ._files import MANIFEST, fsync_path, manifest_digest, prepare_target, publish_directory, sha256_file, \
+    temp_sibling
+
+#: key of the privacy parameters in each Parquet file's key-value metadata
+PARQUET_META_KEY = b"aggpub.privacy"
+
+
+def _write_file_synced(path: Path, data: bytes) -> None:
+    with open(path, "wb") as fh:
+        fh.write(data)
+        fh.flush()
+        os.fsync(fh.fileno())
+
+
+def write_bundle(target, tables: dict, manifest: dict, datacard: str, overwrite: bool = False,
+                 _fault=None) -> Path:
+    """Write ``tables`` (name -> pyarrow.Table), the manifest and the data card as a bundle.
+
+    Parameters
+    ----------
+    target : str or Path
+        The bundle folder to create.
+    tables : dict
+        File stem -> Arrow table; each becomes ``<stem>.parquet`` with page checksums
+        and the privacy parameters in its key-value metadata.
+    manifest : dict
+        The manifest without ``files``; ``files`` (SHA-256 of every other file) and
+        ``manifest_sha256`` are added here.
+    datacard : str
+        Markdown text of the researcher data card (``README.md``).
+    overwrite : bool
+        Replace an existing bundle (atomically).
+    _fault : callable, optional
+        Test hook called with a stage name while writing (fault injection).
+
+    Returns
+    -------
+    Path
+        The published bundle folder.
+    """
+    target = Path(target).absolute()
+    prepare_target(target, overwrite)
+    tmp = temp_sibling(target, "tmp")
+    try:
+        tmp.mkdir()
+    except OSError as exc:
+        raise OutputError(f"{target.parent}: cannot create a folder there ({exc.strerror})") from None
+    try:
+        privacy_meta = json.dumps({
+            "privacy_unit": manifest.get("privacy_unit"),
+            "epsilon_total": manifest.get("epsilon_total"),
+            "min_size": manifest.get("min_size"),
+            "seeded": manifest.get("seeded"),
+            "components": manifest.get("components"),
+            "bundle_format": manifest.get("format"),
+        }, sort_keys=True).encode()
+        files = {}
+        for stem, table in tables.items():
+            name = f"{stem}.parquet"
+            meta = dict(table.schema.metadata or {})
+            meta[PARQUET_META_KEY] = privacy_meta
+            table = table.replace_schema_metadata(meta)
+            path = tmp / name
+            pq.write_table(table, path, write_page_checksum=True, compression="zstd")
+            fsync_path(path)
+            if _fault:
+                _fault(f"wrote {name}")
+            files[name] = sha256_file(path)
+        _write_file_synced(tmp / "README.md", datacard.encode("utf-8"))
+        files["README.md"] = sha256_file(tmp / "README.md")
+        manifest = dict(manifest)
+        manifest["files"] = dict(sorted(files.items()))
+        manifest["manifest_sha256"] = manifest_digest(manifest)
+        _write_file_synced(tmp / MANIFEST, (json.dumps(manifest, indent=2, sort_keys=True) + "\n").encode())
+        fsync_path(tmp)
+        if _fault:
+            _fault("before publish")
+        publish_directory(tmp, target, overwrite)
+    except BaseException as exc:
+        shutil.rmtree(tmp, ignore_errors=True)
+        if isinstance(exc, OSError):
+            raise OutputError(f"{target}: cannot write bundle ({exc.strerror or exc})") from None
+        raise
+    return target

@@ -1,0 +1,174 @@
+"""Command line: parses arguments, calls the library, prints results. No logic beyond that.
+
+Exit codes: 0 success, 1 check failed, 2 usage, 3 input, 4 policy, 5 privacy or
+budget, 6 gate failed, 7 output, 8 bundle, 9 internal (see ``aggpub.errors``).
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+import warnings
+from pathlib import Path
+
+from ._version import __version__
+from .errors import AggpubError, UsageError
+
+EXIT_CODES_HELP = """exit codes:
+  0 success          1 check found problems   2 usage error      3 input error
+  4 policy error     5 privacy/budget error   6 gate failed      7 output error
+  8 bundle error     9 internal error
+"""
+
+
+class _Parser(argparse.ArgumentParser):
+    def error(self, message):
+        raise UsageError(f"{self.prog}: {message}")
+
+
+def _add_input_options(p):
+    p.add_argument("--policy", required=True, type=Path, help="release policy (TOML)")
+    p.add_argument("--edges", required=True, type=Path, help="edge list: CSV, TSV or Parquet")
+    p.add_argument("--nodes", required=True, type=Path, help="person attributes: CSV or Parquet")
+    p.add_argument("--source-column", help="edge column of the first person (default: policy or 'source')")
+    p.add_argument("--target-column", help="edge column of the second person (default: policy or 'target')")
+    p.add_argument("--node-column", help="person id column (default: policy or 'node')")
+    p.add_argument("--weight-column", help="edge weight column (default: policy, or none)")
+    p.add_argument("--drop-unknown", action="store_true", default=None,
+                   help="drop edges naming people missing from the person table (default: fail)")
+    p.add_argument("--engine", default="duckdb", choices=("duckdb", "spark"), help="counting engine")
+
+
+def _add_common(p):
+    p.add_argument("--quiet", action="store_true", help="no progress messages")
+    p.add_argument("--debug", action="store_true",
+                   help="show tracebacks and private values in error messages (never in production logs)")
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = _Parser(prog="aggpub", description="Publish privacy-protected aggregated contact networks: "
+                     "supernodes of at least k people, noisy superedge counts under a stated epsilon, "
+                     "in a verifiable Parquet bundle.", epilog=EXIT_CODES_HELP,
+                     formatter_class=argparse.RawDescriptionHelpFormatter)
+    parser.add_argument("--version", action="version", version=f"aggpub {__version__}")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
+
+    p = sub.add_parser("release", help="build a release bundle from an edge list, people and a policy",
+                       description="Build a privacy-protected release bundle.", epilog=EXIT_CODES_HELP,
+                       formatter_class=argparse.RawDescriptionHelpFormatter)
+    _add_input_options(p)
+    p.add_argument("--out", required=True, type=Path, help="bundle folder to create")
+    p.add_argument("--overwrite", action="store_true", help="replace an existing bundle at --out")
+    p.add_argument("--seed", type=int, help="TESTS ONLY: fixed noise seed; the bundle is marked non-private")
+    _add_common(p)
+
+    p = sub.add_parser("check", help="verify a bundle (checksums, schema, metadata, invariants)",
+                       description="Verify a release bundle; exit 1 naming every problem found.")
+    p.add_argument("bundle", type=Path, help="bundle folder")
+    _add_common(p)
+
+    p = sub.add_parser("demo", help="build the invented demo town and release it",
+                       description="Generate the invented town of Quennet Vale (about 30,000 residents), "
+                       "write its people, contacts and an example policy, and release it.")
+    p.add_argument("--out", required=True, type=Path, help="bundle folder to create")
+    p.add_argument("--data", type=Path, help="folder for the generated inputs (default: <out>-inputs)")
+    p.add_argument("--people", type=int, default=30_000, help="number of residents (default 30000)")
+    p.add_argument("--overwrite", action="store_true", help="replace an existing bundle at --out")
+    p.add_argument("--seed", type=int, help="TESTS ONLY: fixed noise seed; the bundle is marked non-private")
+    _add_common(p)
+    return parser
+
+
+def _print_release(release, path):
+    m = release.manifest
+    print(f"released {m['rows']['supernodes']:,} supernodes and "
+          f"{m['rows'].get('superedges', 0):,} superedge cells to {path}")
+    print(f"privacy unit {m['privacy_unit']}, epsilon {m['epsilon_total']:g}, min_size {m['min_size']}")
+    for c in m["components"]:
+        print(f"  {c['name']}: epsilon {c['epsilon']:.4g}, sensitivity {c['sensitivity']:g}, "
+              f"{c['mechanism']} scale {c['scale']:.4g}")
+    if m.get("seeded"):
+        print("WARNING: seeded release, NOT private (tests only)")
+
+
+def cmd_release(args):
+    from .pipeline import Progress, run_release
+
+    release, path = run_release(args.policy, args.edges, args.nodes, args.out, seed=args.seed,
+                                overwrite=args.overwrite, source=args.source_column, target=args.target_column,
+                                node=args.node_column, weight=args.weight_column, drop_unknown=args.drop_unknown,
+                                engine=args.engine, progress=Progress(args.quiet), debug=args.debug)
+    _print_release(release, path)
+    return 0
+
+
+def cmd_check(args):
+    from .bundle import check_bundle
+
+    res = check_bundle(args.bundle)
+    for w in res.warnings:
+        print(f"warning: {w}", file=sys.stderr)
+    if not res.ok:
+        for p in res.problems:
+            print(f"FAIL {p}")
+        print(f"{args.bundle}: check failed ({len(res.problems)} problem(s))")
+        return 1
+    for c in res.checked:
+        print(f"ok   {c}")
+    print(f"{args.bundle}: bundle verified")
+    return 0
+
+
+def cmd_demo(args):
+    from .demo import DEMO_POLICY_FILE, write_demo_inputs
+    from .pipeline import Progress, run_release
+
+    out = args.out.absolute()
+    data = (args.data or out.parent / f"{out.name}-inputs").absolute()
+    progress = Progress(args.quiet)
+    progress(f"generating the invented town ({args.people:,} residents) into {data}")
+    paths = write_demo_inputs(data, n_people=args.people)
+    print(f"demo inputs (invented town): {paths['people']}, {paths['edges']}, {paths['policy']}")
+    release, path = run_release(paths["policy"], paths["edges"], paths["people"], out, seed=args.seed,
+                                overwrite=args.overwrite, progress=progress, debug=args.debug)
+    _print_release(release, path)
+    print(f"verify it with:  aggpub check {path}")
+    print(f"release again:   aggpub release --policy {paths['policy']} --edges {paths['edges']} "
+          f"--nodes {paths['people']} --out OTHER_FOLDER")
+    return 0
+
+
+COMMANDS = {"release": cmd_release, "check": cmd_check, "demo": cmd_demo}
+
+
+def main(argv=None) -> int:
+    argv = sys.argv[1:] if argv is None else argv
+    debug = "--debug" in argv
+    parser = build_parser()
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("default")
+            warnings.showwarning = lambda msg, *a, **k: print(f"warning: {msg}", file=sys.stderr)
+            args = parser.parse_args(argv)
+            if not args.command:
+                parser.print_help()
+                return 2
+            return COMMANDS[args.command](args)
+    except AggpubError as exc:
+        if debug:
+            raise
+        print(f"aggpub: {exc.kind}: {exc}", file=sys.stderr)
+        return exc.exit_code
+    except KeyboardInterrupt:
+        print("aggpub: interrupted; nothing was published", file=sys.stderr)
+        return 130
+    except Exception as exc:  # an unexpected failure: one line, no private values
+        if debug:
+            raise
+        print(f"aggpub: internal error: {type(exc).__name__} (run again with --debug for details)",
+              file=sys.stderr)
+        return 9
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

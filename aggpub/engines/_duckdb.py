@@ -1,0 +1,313 @@
+"""The embedded DuckDB counting engine (the default).
+
+All counting over edges happens here, in SQL: ingest (id mapping, self-loops,
+duplicates), superedge counts, degrees, degree histograms, weight totals and
+contact profiles. No Python loop touches an edge.
+"""
+
+from __future__ import annotations
+
+import os
+import re
+
+import duckdb
+import numpy as np
+import pyarrow as pa
+
+from ..errors import InputError
+from ..ingest import IngestReport, Network, file_format
+
+MISSING_ID = -2
+UNKNOWN_ID = -1
+
+
+def quote_ident(name: str) -> str:
+    """Quote a column name for SQL."""
+    return '"' + str(name).replace('"', '""') + '"'
+
+
+def quote_literal(text: str) -> str:
+    """Quote a string literal for SQL."""
+    return "'" + str(text).replace("'", "''") + "'"
+
+
+def fetch_arrow(result) -> pa.Table:
+    """An executed DuckDB result as an Arrow table (the method name differs across DuckDB versions)."""
+    fn = getattr(result, "to_arrow_table", None) or getattr(result, "fetch_arrow_table")
+    return fn()
+
+
+def default_memory_limit() -> str:
+    """Half of physical memory, at most 8 GB, as a DuckDB memory setting."""
+    try:
+        total = os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
+    except (ValueError, OSError, AttributeError):
+        total = 8 << 30
+    return f"{max(256, min(total // 2, 8 << 30) >> 20)}MB"
+
+
+def _clean_duckdb_message(exc: Exception, debug: bool) -> str:
+    """A short reason from a DuckDB error, with private values removed unless debugging."""
+    text = str(exc).strip()
+    if debug:
+        return text
+    first = text.splitlines()[0] if text else type(exc).__name__
+    first = re.sub(r"^[A-Za-z ]*Error: ", "", first)
+    line = re.search(r"[Ll]ine:? ?(\d+)", text)
+    first = re.sub(r'"[^"]*"', '"…"', first)
+    first = re.sub(r"'[^']*'", "'…'", first)
+    first = first[:160]
+    return first + (f" (near line {line.group(1)})" if line else "")
+
+
+class DuckDBEngine:
+    """Counting in an embedded DuckDB database.
+
+    Parameters
+    ----------
+    memory_limit : str, optional
+        DuckDB ``memory_limit`` (default: half the machine, at most 8 GB).
+    threads : int, optional
+        Worker threads (default: DuckDB's choice, all cores).
+    temp_directory : str, optional
+        Where DuckDB spills when data exceed memory.
+    """
+
+    name = "duckdb"
+
+    def __init__(self, memory_limit=None, threads=None, temp_directory=None):
+        self.con = duckdb.connect(":memory:")
+        self.con.execute(f"SET memory_limit={quote_literal(memory_limit or default_memory_limit())}")
+        if threads:
+            self.con.execute(f"SET threads={int(threads)}")
+        if temp_directory:
+            self.con.execute(f"SET temp_directory={quote_literal(str(temp_directory))}")
+        self.con.execute("SET preserve_insertion_order=false")
+        self._weighted = False
+
+    # ------------------------------------------------------------------ ingest
+
+    def _relation_sql(self, src, what, all_varchar):
+        """SQL for a scan of a file (or a registered Arrow table)."""
+        if isinstance(src, pa.Table):
+            view = f"__{what}_arrow"
+            self.con.register(view, src)
+            return view
+        fmt = file_format(src)
+        path = quote_literal(str(src))
+        if fmt == "parquet":
+            return f"read_parquet({path})"
+        delim = "\\t" if fmt == "tsv" else ","
+        opts = f"header=true, delim='{delim}', quote='\"', escape='\"', auto_detect=true, " \
+               f"sample_size=-1, strict_mode=true"
+        if all_varchar:
+            opts += ", all_varchar=true"
+        return f"read_csv({path}, {opts})"
+
+    def _columns(self, rel_sql, src, what, debug):
+        try:
+            desc = self.con.execute(f"DESCRIBE SELECT * FROM {rel_sql}").fetchall()
+        except duckdb.Error as exc:
+            raise InputError(f"{src if not isinstance(src, pa.Table) else what + ' table'}: cannot read "
+                             f"{what} file: {_clean_duckdb_message(exc, debug)}") from None
+        return {row[0]: row[1] for row in desc}
+
+    def load(self, edges_src, people_src, *, source, target, node, weight, drop_unknown, attributes,
+             debug=False) -> Network:
+        from ..errors import closest_name
+
+        edge_name = "edge table" if isinstance(edges_src, pa.Table) else str(edges_src)
+        people_name = "person table" if isinstance(people_src, pa.Table) else str(people_src)
+
+        # ---- people: into Arrow, ids deduplicated, dense index = row order
+        p_sql = self._relation_sql(people_src, "people", all_varchar=True)
+        p_cols = self._columns(p_sql, people_src, "person", debug)
+        if node not in p_cols:
+            raise InputError(f"{people_name}: no id column '{node}'{closest_name(node, p_cols)}")
+        attr_cols = [c for c in p_cols if c != node] if attributes is None else list(attributes)
+        for a in attr_cols:
+            if a not in p_cols:
+                raise InputError(f"{people_name}: no attribute column '{a}'{closest_name(a, p_cols)}")
+        sel = ", ".join([f"CAST({quote_ident(node)} AS VARCHAR) AS id"] +
+                        [f"CAST({quote_ident(a)} AS VARCHAR) AS {quote_ident(a)}" for a in attr_cols])
+        try:
+            raw = fetch_arrow(self.con.execute(f"SELECT {sel} FROM {p_sql}"))
+        except duckdb.Error as exc:
+            raise InputError(f"{people_name}: cannot read person file: {_clean_duckdb_message(exc, debug)}") from None
+        person_rows = raw.num_rows
+        if person_rows == 0:
+            raise InputError(f"{people_name}: the person table has no rows")
+        raw = raw.append_column("__row", pa.array(np.arange(person_rows, dtype=np.int64)))
+        self.con.register("__people_raw", raw)
+        bad = self.con.execute("SELECT min(__row) FROM __people_raw WHERE id IS NULL OR trim(id) = ''").fetchall()[0][0]
+        if bad is not None:
+            raise InputError(f"{people_name}: column '{node}' is empty in data row {bad + 1}")
+        for a in attr_cols:
+            bad = self.con.execute(f"SELECT min(__row) FROM __people_raw WHERE {quote_ident(a)} IS NULL").fetchall()[0][0]
+            if bad is not None:
+                raise InputError(f"{people_name}: column '{a}' is empty in data row {bad + 1}")
+        attr_sql = "".join(", " + quote_ident(a) for a in attr_cols)
+        distinct = fetch_arrow(self.con.execute(
+            f"SELECT id{attr_sql}, min(__row) AS first FROM __people_raw GROUP BY ALL ORDER BY first"))
+        n_ids = self.con.execute("SELECT count(DISTINCT id) FROM __people_raw").fetchall()[0][0]
+        if distinct.num_rows != n_ids:
+            conflicted = distinct.num_rows - n_ids
+            row = self.con.execute(
+                f"SELECT min(first) FROM (SELECT id, min(__row) AS first, count(DISTINCT ({attr_sql[2:] or 'id'})) AS k "
+                f"FROM __people_raw GROUP BY id) WHERE k > 1"
+            ).fetchall()[0][0]
+            raise InputError(f"{people_name}: {conflicted} person id(s) appear more than once with conflicting "
+                             f"attributes (first at data row {int(row) + 1})")
+        self.con.unregister("__people_raw")
+        n_people = distinct.num_rows
+        ids = distinct.column("id")
+        people = distinct.select(attr_cols)
+        id_table = pa.table({"id": ids, "idx": pa.array(np.arange(n_people, dtype=np.int32))})
+
+        # ---- edges: mapped to dense ids, canonical u < v, collapsed, all in one scan
+        e_sql = self._relation_sql(edges_src, "edges", all_varchar=False)
+        e_cols = self._columns(e_sql, edges_src, "edge", debug)
+        for c in (source, target) + ((weight,) if weight else ()):
+            if c not in e_cols:
+                raise InputError(f"{edge_name}: no column '{c}'{closest_name(c, e_cols)}")
+        if weight:
+            wtype = e_cols[weight].upper()
+            numeric = any(t in wtype for t in ("INT", "DOUBLE", "FLOAT", "DECIMAL", "REAL", "NUMERIC"))
+            if not numeric:
+                raise InputError(f"{edge_name}: weight column '{weight}' is not numeric ({e_cols[weight]})")
+        self.con.register("__ids", id_table)
+        w_expr = f"CAST({quote_ident(weight)} AS DOUBLE)" if weight else "NULL::DOUBLE"
+        # people ids are VARCHAR; compare edge ids as text so CSV and Parquet inputs mix.
+        q = f"""
+            CREATE OR REPLACE TEMP TABLE __mapped AS
+            WITH e AS (SELECT CAST({quote_ident(source)} AS VARCHAR) AS a,
+                              CAST({quote_ident(target)} AS VARCHAR) AS b, {w_expr} AS w
+                       FROM {e_sql}),
+                 m AS (SELECT CASE WHEN e.a IS NULL OR e.b IS NULL OR trim(e.a) = '' OR trim(e.b) = ''
+                                   THEN {MISSING_ID} ELSE coalesce(ps.idx, {UNKNOWN_ID}) END AS s,
+                              CASE WHEN e.a IS NULL OR e.b IS NULL OR trim(e.a) = '' OR trim(e.b) = ''
+                                   THEN {MISSING_ID} ELSE coalesce(pt.idx, {UNKNOWN_ID}) END AS t,
+                              e.w
+                       FROM e LEFT JOIN __ids ps ON e.a = ps.id LEFT JOIN __ids pt ON e.b = pt.id)
+            SELECT least(s, t) AS u, greatest(s, t) AS v, count(*) AS mult, sum(w) AS w,
+                   count(*) FILTER (WHERE w IS NULL OR isnan(w) OR isinf(w) OR w < 0) AS bad_w
+            FROM m GROUP BY 1, 2
+        """
+        try:
+            self.con.execute(q)
+        except duckdb.Error as exc:
+            raise InputError(f"{edge_name}: cannot read edge file: {_clean_duckdb_message(exc, debug)}") from None
+        finally:
+            self.con.unregister("__ids")
+        stats = self.con.execute(f"""
+            SELECT coalesce(sum(mult), 0),
+                   coalesce(sum(mult) FILTER (WHERE u = {MISSING_ID}), 0),
+                   coalesce(sum(mult) FILTER (WHERE u = {UNKNOWN_ID}), 0),
+                   coalesce(sum(mult) FILTER (WHERE u = v AND u >= 0), 0),
+                   coalesce(sum(mult - 1) FILTER (WHERE u < v AND u >= 0), 0),
+                   count(*) FILTER (WHERE u < v AND u >= 0),
+                   coalesce(sum(bad_w) FILTER (WHERE u >= 0), 0)
+            FROM __mapped""").fetchall()[0]
+        rows, missing, unknown, loops, dups, n_edges, bad_w = (int(x) for x in stats)
+        if rows == 0:
+            raise InputError(f"{edge_name}: the edge table has no rows")
+        if missing:
+            raise InputError(f"{edge_name}: {missing:,} edge row(s) have an empty '{source}' or '{target}'")
+        if unknown and not drop_unknown:
+            raise InputError(f"{edge_name}: {unknown:,} edge row(s) name people missing from {people_name} "
+                             f"(use --drop-unknown to drop them)")
+        if weight and bad_w:
+            raise InputError(f"{edge_name}: {bad_w:,} edge row(s) have an empty, NaN, infinite or negative "
+                             f"'{weight}'")
+        if n_edges == 0:
+            raise InputError(f"{edge_name}: no contacts left after dropping self-loops"
+                             + (" and unknown people" if unknown else ""))
+        self.con.execute("""CREATE OR REPLACE TABLE edges AS
+                            SELECT CAST(u AS INTEGER) AS u, CAST(v AS INTEGER) AS v, w
+                            FROM __mapped WHERE u < v AND u >= 0""")
+        self.con.execute("DROP TABLE __mapped")
+        self._weighted = bool(weight)
+        report = IngestReport(edge_rows=rows, edges=n_edges, self_loops_dropped=loops,
+                              duplicate_rows_collapsed=dups, unknown_person_rows_dropped=unknown,
+                              person_rows=person_rows, people=n_people,
+                              duplicate_person_rows_collapsed=person_rows - n_people)
+        return Network(people=people, n_people=n_people, n_edges=n_edges, engine=self, report=report,
+                       weighted=bool(weight))
+
+    # ------------------------------------------------------------------ counting
+
+    def _register_assignment(self, assignment: np.ndarray):
+        table = pa.table({"idx": pa.array(np.arange(len(assignment), dtype=np.int32)),
+                          "g": pa.array(np.asarray(assignment, dtype=np.int32))})
+        self.con.register("__assign", table)
+
+    def superedge_counts(self, assignment: np.ndarray):
+        """Non-zero superedge counts: arrays ``a <= b`` and ``count`` (int64).
+
+        Inputs already validated: ``assignment[i]`` is the supernode of person ``i``.
+        """
+        self._register_assignment(assignment)
+        try:
+            res = self.con.execute("""
+                SELECT least(ga.g, gb.g) AS a, greatest(ga.g, gb.g) AS b, count(*) AS c
+                FROM edges e JOIN __assign ga ON e.u = ga.idx JOIN __assign gb ON e.v = gb.idx
+                GROUP BY 1, 2""").fetchnumpy()
+        finally:
+            self.con.unregister("__assign")
+        return (res["a"].astype(np.int64), res["b"].astype(np.int64), res["c"].astype(np.int64))
+
+    def weight_totals(self, assignment: np.ndarray, clip: float):
+        """Per-superedge totals of weights clipped to ``[0, clip]`` and rounded to integers."""
+        self._register_assignment(assignment)
+        try:
+            res = self.con.execute(f"""
+                SELECT least(ga.g, gb.g) AS a, greatest(ga.g, gb.g) AS b,
+                       sum(CAST(round(least(greatest(e.w, 0), {float(clip)})) AS BIGINT)) AS t
+                FROM edges e JOIN __assign ga ON e.u = ga.idx JOIN __assign gb ON e.v = gb.idx
+                GROUP BY 1, 2""").fetchnumpy()
+        finally:
+            self.con.unregister("__assign")
+        return (res["a"].astype(np.int64), res["b"].astype(np.int64), res["t"].astype(np.int64))
+
+    def degrees(self, n_people: int) -> np.ndarray:
+        """Number of contacts of every person (int64 array of length ``n_people``)."""
+        res = self.con.execute("""
+            SELECT x, count(*) AS d FROM (SELECT u AS x FROM edges UNION ALL SELECT v FROM edges)
+            GROUP BY x""").fetchnumpy()
+        out = np.zeros(n_people, dtype=np.int64)
+        out[res["x"].astype(np.int64)] = res["d"]
+        return out
+
+    def degree_histograms(self, assignment: np.ndarray, n_groups: int, cap: int) -> np.ndarray:
+        """Counts of people by (supernode, degree bin); bins 0..cap-1 and a top bin 'cap or more'.
+
+        Returns an int64 array of shape ``(n_groups, cap + 1)``; people with no
+        contacts count in bin 0.
+        """
+        deg = self.degrees(len(assignment))
+        bins = np.minimum(deg, cap)
+        flat = np.asarray(assignment, dtype=np.int64) * (cap + 1) + bins
+        return np.bincount(flat, minlength=n_groups * (cap + 1)).reshape(n_groups, cap + 1)
+
+    def contact_profiles(self, assignment: np.ndarray):
+        """Per person and supernode, the number of that person's contacts in the supernode.
+
+        Returns arrays ``person``, ``supernode``, ``count`` (non-zero entries only).
+        """
+        self._register_assignment(assignment)
+        try:
+            res = self.con.execute("""
+                WITH ends AS (SELECT u AS p, v AS q FROM edges UNION ALL SELECT v, u FROM edges)
+                SELECT ends.p AS person, g.g AS supernode, count(*) AS c
+                FROM ends JOIN __assign g ON ends.q = g.idx GROUP BY 1, 2""").fetchnumpy()
+        finally:
+            self.con.unregister("__assign")
+        return (res["person"].astype(np.int64), res["supernode"].astype(np.int64), res["c"].astype(np.int64))
+
+    def edge_arrays(self):
+        """All edges as numpy arrays ``u``, ``v`` (for small networks and the audit)."""
+        res = self.con.execute("SELECT u, v FROM edges").fetchnumpy()
+        return res["u"].astype(np.int64), res["v"].astype(np.int64)
+
+    def close(self):
+        self.con.close()

@@ -1,0 +1,149 @@
+"""Ingest: edges and person attributes into a :class:`Network` with dense integer ids.
+
+Edge files (CSV, TSV or Parquet) have two id columns (default ``source`` and
+``target``) and optionally a weight column. Person files (CSV or Parquet) have an
+id column (default ``node``) plus attribute columns. Ids may be integers or
+strings; each person is mapped once to a dense integer (its row in the person
+table). The network is undirected: self-loops are dropped and counted, duplicate
+pairs are collapsed (their weights summed) and counted. An edge naming a person
+missing from the person table is an error, or is dropped and counted when
+``drop_unknown`` is set.
+
+The edges never leave the counting engine; only the person table (attributes)
+comes back to Python as an Arrow table.
+"""
+
+from __future__ import annotations
+
+__all__ = ["Network", "IngestReport", "load_network", "file_format"]
+
+from dataclasses import dataclass, asdict
+from pathlib import Path
+
+import pyarrow as pa
+
+from .errors import InputError
+
+
+@dataclass(frozen=True)
+class IngestReport:
+    """What ingest read, kept and dropped (counts only, no private values)."""
+
+    edge_rows: int
+    edges: int
+    self_loops_dropped: int
+    duplicate_rows_collapsed: int
+    unknown_person_rows_dropped: int
+    person_rows: int
+    people: int
+    duplicate_person_rows_collapsed: int
+
+    def as_dict(self) -> dict:
+        return asdict(self)
+
+    def lines(self) -> list[str]:
+        out = [f"read {self.edge_rows:,} edge rows and {self.person_rows:,} person rows",
+               f"kept {self.edges:,} undirected contacts between {self.people:,} people"]
+        if self.self_loops_dropped:
+            out.append(f"dropped {self.self_loops_dropped:,} self-loop rows")
+        if self.duplicate_rows_collapsed:
+            out.append(f"collapsed {self.duplicate_rows_collapsed:,} duplicate contact rows")
+        if self.unknown_person_rows_dropped:
+            out.append(f"dropped {self.unknown_person_rows_dropped:,} rows naming people not in the person table")
+        if self.duplicate_person_rows_collapsed:
+            out.append(f"collapsed {self.duplicate_person_rows_collapsed:,} identical duplicate person rows")
+        return out
+
+
+@dataclass
+class Network:
+    """An ingested network: person attributes in Arrow, edges inside the engine.
+
+    Attributes
+    ----------
+    people : pyarrow.Table
+        One row per person (row ``i`` is person ``i``), attribute columns as strings.
+    n_people, n_edges : int
+        Number of people and of distinct undirected contacts.
+    engine : object
+        The counting engine holding the ``edges`` table (``u < v``, dense ids).
+    report : IngestReport
+        Counts of what was read and dropped.
+    weighted : bool
+        Whether the edges carry a weight.
+    """
+
+    people: pa.Table
+    n_people: int
+    n_edges: int
+    engine: object
+    report: IngestReport
+    weighted: bool = False
+
+
+def file_format(path: Path) -> str:
+    """``'csv'``, ``'tsv'`` or ``'parquet'`` from the name, else from the first bytes."""
+    suffixes = [s.lower() for s in path.suffixes]
+    if suffixes and suffixes[-1] in (".parquet", ".pq"):
+        return "parquet"
+    if suffixes and suffixes[-1] == ".tsv":
+        return "tsv"
+    if suffixes and suffixes[-1] in (".csv", ".txt"):
+        return "csv"
+    try:
+        with open(path, "rb") as fh:
+            head = fh.read(4)
+    except OSError as exc:
+        raise InputError(f"{path}: cannot read ({exc.strerror})") from None
+    return "parquet" if head == b"PAR1" else "csv"
+
+
+def _check_input_path(path, what) -> Path:
+    path = Path(path)
+    if not path.exists():
+        raise InputError(f"{path}: {what} file not found")
+    if path.is_dir():
+        raise InputError(f"{path}: {what} path is a folder, expected a file")
+    try:
+        with open(path, "rb") as fh:
+            first = fh.read(1)
+    except OSError as exc:
+        raise InputError(f"{path}: cannot read {what} file ({exc.strerror})") from None
+    if not first:
+        raise InputError(f"{path}: {what} file is empty")
+    return path
+
+
+def load_network(edges, people, *, source="source", target="target", node="node", weight=None,
+                 drop_unknown=False, attributes=None, engine=None, debug=False) -> Network:
+    """Read edges and person attributes into a :class:`Network`.
+
+    Parameters
+    ----------
+    edges : str, Path or pyarrow.Table
+        Edge list: a CSV/TSV/Parquet file or an Arrow table.
+    people : str, Path or pyarrow.Table
+        Person attributes: a CSV/Parquet file or an Arrow table.
+    source, target, node, weight : str
+        Column names (``weight`` optional).
+    drop_unknown : bool
+        Drop edges naming people missing from the person table instead of failing.
+    attributes : sequence of str, optional
+        Attribute columns to keep (default: all but the id column).
+    engine : object, optional
+        A counting engine (default: a new embedded DuckDB engine).
+    debug : bool
+        Allow private values (ids) in error messages.
+
+    Returns
+    -------
+    Network
+    """
+    from .engines import make_engine
+
+    if engine is None:
+        engine = make_engine("duckdb")
+    edges_src = edges if isinstance(edges, pa.Table) else _check_input_path(edges, "edge")
+    people_src = people if isinstance(people, pa.Table) else _check_input_path(people, "person")
+    return engine.load(edges_src, people_src, source=source, target=target, node=node, weight=weight,
+                       drop_unknown=drop_unknown, attributes=attributes, debug=debug)

@@ -1,0 +1,396 @@
+"""Statistical verification of the discrete Laplace sampler and GeometricMechanism.
+
+Every check names, beside it, where its expected value comes from.
+
+Sources used below:
+
+* [GRS09] A. Ghosh, T. Roughgarden, M. Sundararajan, "Universally
+  utility-maximizing privacy mechanisms", STOC 2009 -- the pmf
+  P(Z=z) = (1-a)/(1+a) a^|z|, a = exp(-epsilon/sensitivity).
+* [DPL] diffprivlib 0.6.6, ``diffprivlib/mechanisms/geometric.py`` (read in the
+  installed package): ``Geometric._scale = -epsilon/sensitivity`` and
+  ``randomise`` inverts the two-sided geometric cdf with ratio
+  ``exp(-epsilon/sensitivity)`` -- the same law as [GRS09].
+* [SCIPY] ``scipy.stats.chisquare`` (one-sample goodness of fit) and
+  ``scipy.stats.chi2_contingency`` (homogeneity of two samples).
+* [COCHRAN] the usual rule that chi-square cells need expected counts of at
+  least 5: W. G. Cochran, "Some methods for strengthening the common chi-square
+  tests", Biometrics, 1954 (citation recalled from memory).
+* [MOM] moments derived here from sum_{k>=1} k^2 a^k = a(1+a)/(1-a)^3 and
+  sum_{k>=1} k^4 a^k = a(1+11a+11a^2+a^3)/(1-a)^5 (Eulerian-number series,
+  recalled from memory and re-checked numerically in ``test_moment_formulas``);
+  Var(mean of X^2) = (mu4 - sigma^4)/n for a mean-zero variable is the
+  textbook variance of a sample mean.
+
+Seeded sources make every statistical test here deterministic; the thresholds
+(1e-3 for seeded runs, 1e-4 for the one run on the operating system's entropy)
+are the significance levels at which a correct sampler would fail by chance.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+
+import numpy as np
+import pytest
+import scipy.stats as st
+from hypothesis import given, settings
+from hypothesis import strategies as hs
+
+from aggpub.noise.mechanisms import GeometricMechanism
+from aggpub.noise.sampler import (
+    RandomSource,
+    SeededRandomSource,
+    SystemRandomSource,
+    _bits_to_open_unit,
+    make_random_source,
+    sample_discrete_laplace,
+)
+
+SEEDED_LEVEL = 1e-3
+SYSTEM_LEVEL = 1e-4
+N_GOF = 200_000
+PAIRS = [(1.0, 1.0), (0.5, 2.0), (2.0, 3.0)]  # (epsilon, sensitivity): a = 0.368, 0.779, 0.513
+
+
+# ----------------------------------------------------------------- helpers
+def alpha_of(epsilon: float, sensitivity: float) -> float:
+    return math.exp(-epsilon / sensitivity)  # [GRS09]
+
+
+def dl_pmf(z, a: float) -> np.ndarray:
+    """Discrete Laplace pmf written independently of the package code [GRS09]."""
+    z = np.abs(np.asarray(z, dtype=np.float64))
+    return (1.0 - a) / (1.0 + a) * a ** z
+
+
+def pooled_cells(a: float, n: int, min_expected: float = 5.0):
+    """Cells -T-1 (pooled left tail), -T..T, T+1 (pooled right tail).
+
+    T is the largest value with n * pmf(T) >= min_expected and a pooled
+    one-sided tail P(Z > T) = a^(T+1)/(1+a) [GRS09] with n * tail >= min_expected
+    [COCHRAN].  Returns (T, probabilities of the 2T+3 cells).
+    """
+    t = 0
+    while n * dl_pmf(t + 1, a) >= min_expected and n * a ** (t + 2) / (1 + a) >= min_expected:
+        t += 1
+    tail = a ** (t + 1) / (1.0 + a)
+    probs = np.concatenate([[tail], dl_pmf(np.arange(-t, t + 1), a), [tail]])
+    assert abs(probs.sum() - 1.0) < 1e-12
+    return t, probs
+
+
+def cell_counts(x: np.ndarray, t: int) -> np.ndarray:
+    return np.bincount(np.clip(x, -t - 1, t + 1) + t + 1, minlength=2 * t + 3)
+
+
+def gof(x: np.ndarray, a: float):
+    """One-sample chi-square of integer draws against the discrete Laplace(a) pmf [SCIPY]."""
+    t, probs = pooled_cells(a, x.size)
+    res = st.chisquare(cell_counts(x, t), probs * x.size)
+    return res.statistic, res.pvalue, 2 * t + 3
+
+
+def homogeneity(x: np.ndarray, y: np.ndarray, a: float):
+    """Two-sample chi-square (contingency table) on cells pooled for the smaller sample [SCIPY]."""
+    t, _ = pooled_cells(a, min(x.size, y.size))
+    table = np.vstack([cell_counts(x, t), cell_counts(y, t)])
+    res = st.chi2_contingency(table)
+    assert res.expected_freq.min() >= 5.0  # [COCHRAN]
+    return res.statistic, res.pvalue, res.dof
+
+
+def dl_fourth_moment(a: float) -> float:
+    # E[Z^4] = 2 (1-a)/(1+a) * a(1+11a+11a^2+a^3)/(1-a)^5  [MOM]
+    return 2.0 * a * (1 + 11 * a + 11 * a * a + a ** 3) / ((1 + a) * (1 - a) ** 4)
+
+
+def diffprivlib_draws(epsilon: float, n: int, seed: int) -> np.ndarray:
+    from diffprivlib.mechanisms import Geometric
+
+    # 0.6.6 signature: Geometric(*, epsilon, sensitivity=1, random_state=None);
+    # an int random_state seeds a numpy RandomState [DPL].
+    mech = Geometric(epsilon=epsilon, sensitivity=1, random_state=seed)
+    return np.fromiter((mech.randomise(0) for _ in range(n)), dtype=np.int64, count=n)
+
+
+# ------------------------------------------------------------- dependencies
+def test_diffprivlib_imports():
+    # Guards the scikit-learn < 1.9 pin: diffprivlib 0.6.6 imports scikit-learn
+    # internals and these imports fail with an incompatible release [DPL].
+    from diffprivlib.accountant import BudgetAccountant
+    from diffprivlib.mechanisms import Geometric
+
+    acc = BudgetAccountant(epsilon=1.0)
+    assert acc.epsilon == 1.0
+    assert Geometric(epsilon=1.0, sensitivity=1, random_state=0).randomise(0) in range(-1000, 1000)
+
+
+# ------------------------------------------------------------ random sources
+def test_system_source_open_interval_and_fresh():
+    src = SystemRandomSource()
+    u = src.uniform(100_000)
+    assert u.dtype == np.float64 and u.shape == (100_000,)
+    assert np.all(u > 0.0) and np.all(u < 1.0)
+    v = src.uniform(100_000)
+    assert not np.array_equal(u, v)  # collision chance ~ 2^-(52*100000)
+    assert src.seeded is False
+    assert "os.urandom" in src.description
+    assert src.uniform(0).shape == (0,)
+    # Mean of 10^5 uniforms: sd = sqrt(1/12/1e5) ~ 9.1e-4; 6 sd bound (flake rate ~2e-9).
+    assert abs(u.mean() - 0.5) < 6 * math.sqrt(1 / 12 / u.size)
+
+
+def test_bit_conversion_extremes_stay_open():
+    # The extreme 64-bit words must map strictly inside (0, 1).  Design note in
+    # sampler.py: with 53 bits, (2^53 - 1 + 0.5) * 2^-53 rounds to exactly 1.0 in
+    # binary64, hence 52 bits are used.
+    top = np.array([0, 2 ** 64 - 1, 2 ** 63], dtype=np.uint64)
+    u = _bits_to_open_unit(top)
+    assert u[0] == 2.0 ** -53
+    assert u[1] == 1.0 - 2.0 ** -53
+    assert u[2] == 0.5 + 2.0 ** -53
+    assert np.all((u > 0) & (u < 1))
+    # The grid is symmetric: 1 - u is exact and lands on the grid.
+    assert 1.0 - u[0] == u[1] and 1.0 - u[1] == u[0]
+
+
+def test_seeded_source_reproducible():
+    a = SeededRandomSource(1234).uniform(1000)
+    b = SeededRandomSource(1234).uniform(1000)
+    c = SeededRandomSource(1235).uniform(1000)
+    assert np.array_equal(a, b)
+    assert not np.array_equal(a, c)
+    assert np.all((a > 0) & (a < 1))
+    src = SeededRandomSource(7)
+    assert src.seeded is True and "7" in src.description
+    assert np.array_equal(
+        sample_discrete_laplace(0.5, 1000, SeededRandomSource(9)),
+        sample_discrete_laplace(0.5, 1000, SeededRandomSource(9)),
+    )
+
+
+def test_make_random_source_never_reads_environment(monkeypatch):
+    class NoEnv(dict):
+        def _refuse(self, *args, **kwargs):
+            raise AssertionError("the environment was read")
+
+        __getitem__ = get = __contains__ = keys = items = _refuse
+
+    monkeypatch.setattr(os, "environ", NoEnv())
+    monkeypatch.setattr(os, "getenv", lambda *a, **k: (_ for _ in ()).throw(AssertionError("getenv")))
+    src = make_random_source(None)
+    assert isinstance(src, SystemRandomSource) and not src.seeded
+    assert src.uniform(3).shape == (3,)
+    seeded = make_random_source(42)
+    assert isinstance(seeded, SeededRandomSource) and seeded.seeded
+    assert isinstance(src, RandomSource)
+
+
+def test_source_argument_validation():
+    with pytest.raises(ValueError, match="seed"):
+        SeededRandomSource(-1)
+    with pytest.raises(TypeError, match="seed"):
+        SeededRandomSource(1.5)
+    with pytest.raises(ValueError, match="n"):
+        SystemRandomSource().uniform(-1)
+
+
+# ------------------------------------------------------- sampler validation
+@pytest.mark.parametrize("bad", [0.0, 1.0, -0.1, 1.5, float("nan"), float("inf")])
+def test_sampler_rejects_bad_alpha(bad):
+    with pytest.raises(ValueError, match="alpha"):
+        sample_discrete_laplace(bad, 10, SeededRandomSource(0))
+
+
+def test_sampler_shapes_extremes_and_chunks():
+    src = SeededRandomSource(3)
+    assert sample_discrete_laplace(0.5, 0, src).shape == (0,)
+    x = sample_discrete_laplace(0.5, 1001, src, chunk_size=7)
+    assert x.dtype == np.int64 and x.shape == (1001,)
+    assert np.array_equal(
+        sample_discrete_laplace(0.5, 1001, SeededRandomSource(4), chunk_size=7),
+        sample_discrete_laplace(0.5, 1001, SeededRandomSource(4), chunk_size=7),
+    )
+    # a close to 0: P(Z != 0) = 2a/(1+a) ~ 2e-300, so all zeros.
+    assert not sample_discrete_laplace(1e-300, 10_000, src).any()
+    # a one ulp below 1: huge but finite int64 draws, no overflow / wrap-around.
+    big = sample_discrete_laplace(np.nextafter(1.0, 0.0), 10_000, src)
+    assert big.dtype == np.int64 and np.abs(big).max() < 2 ** 61
+    with pytest.raises(ValueError, match="size"):
+        sample_discrete_laplace(0.5, -1, src)
+    with pytest.raises(TypeError, match="source"):
+        sample_discrete_laplace(0.5, 3, np.random.default_rng(0))
+
+
+# ----------------------------------------------------- goodness of fit [GRS09]
+@pytest.mark.parametrize("epsilon,sensitivity", PAIRS)
+def test_gof_seeded(epsilon, sensitivity):
+    a = alpha_of(epsilon, sensitivity)
+    x = sample_discrete_laplace(a, N_GOF, SeededRandomSource(20240 + int(10 * epsilon)))
+    stat, p, cells = gof(x, a)  # [SCIPY] chisquare vs [GRS09] pmf, tails pooled [COCHRAN]
+    print(f"GOF seeded eps={epsilon} sens={sensitivity} a={a:.4f}: chi2={stat:.2f} cells={cells} p={p:.4f}")
+    assert p > SEEDED_LEVEL
+
+
+def test_gof_system_source():
+    a = alpha_of(1.0, 1.0)
+    x = GeometricMechanism(1.0, 1.0).noise(N_GOF, SystemRandomSource())
+    stat, p, cells = gof(x, a)  # [SCIPY] vs [GRS09]; level 1e-4 so a correct sampler fails 1 run in 10^4
+    print(f"GOF system eps=1 sens=1: chi2={stat:.2f} cells={cells} p={p:.4f}")
+    assert p > SYSTEM_LEVEL
+
+
+@pytest.mark.parametrize("factor", [1.3, 0.7])
+@pytest.mark.parametrize("epsilon,sensitivity", PAIRS[:2])
+def test_gof_has_power_against_wrong_scale(epsilon, sensitivity, factor):
+    # The same test, same sample size, on draws whose scale sensitivity/epsilon
+    # is 30 % too large / too small must reject at the same level.
+    a = alpha_of(epsilon, sensitivity)
+    wrong = math.exp(-1.0 / (factor * sensitivity / epsilon))
+    x = sample_discrete_laplace(wrong, N_GOF, SeededRandomSource(77))
+    stat, p, cells = gof(x, a)
+    print(f"POWER eps={epsilon} sens={sensitivity} scale x{factor}: chi2={stat:.1f} cells={cells} p={p:.3g}")
+    assert p < SEEDED_LEVEL
+
+
+# ------------------------------------------------ agreement with diffprivlib
+def test_diffprivlib_parametrisation_matches():
+    from diffprivlib.mechanisms import Geometric
+
+    for eps in (0.3, 1.0, 2.5):
+        ref = Geometric(epsilon=eps, sensitivity=1)
+        ours = GeometricMechanism(eps, 1)
+        assert ref._scale == pytest.approx(ours.log_alpha, rel=1e-15)  # [DPL]: _scale = -eps/sens
+        assert ref.variance(0) == pytest.approx(ours.variance(), rel=1e-12)  # [DPL] vs 2a/(1-a)^2 [MOM]
+
+
+@pytest.mark.parametrize("epsilon", [1.0, 0.5])
+def test_agrees_with_diffprivlib(epsilon):
+    a = alpha_of(epsilon, 1.0)
+    ref = diffprivlib_draws(epsilon, 20_000, seed=11)          # reference law [DPL]
+    ours = GeometricMechanism(epsilon, 1.0).noise(20_000, SeededRandomSource(12))
+    stat, p, dof = homogeneity(ref, ours, a)                   # [SCIPY] chi2_contingency
+    s_ref, p_ref, _ = gof(ref, a)                              # reference itself fits [GRS09]
+    print(f"DPL eps={epsilon}: two-sample chi2={stat:.2f} dof={dof} p={p:.4f}; "
+          f"diffprivlib vs pmf chi2={s_ref:.2f} p={p_ref:.4f}")
+    assert p > SEEDED_LEVEL
+    assert p_ref > SEEDED_LEVEL
+    # Power of the same two-sample test against a 30 % larger scale.
+    off = sample_discrete_laplace(math.exp(-epsilon / 1.3), 20_000, SeededRandomSource(13))
+    _, p_off, _ = homogeneity(ref, off, a)
+    print(f"DPL eps={epsilon}: two-sample vs scale x1.3 p={p_off:.3g}")
+    assert p_off < SEEDED_LEVEL
+
+
+# ----------------------------------------------------------------- moments
+def test_moment_formulas():
+    # Closed forms [MOM] against direct summation of the [GRS09] pmf.
+    for a in (0.1, 0.5, 0.9):
+        z = np.arange(-3000, 3001, dtype=np.float64)
+        p = dl_pmf(z, a)
+        assert p.sum() == pytest.approx(1.0, rel=1e-12)
+        assert (p * z ** 2).sum() == pytest.approx(2 * a / (1 - a) ** 2, rel=1e-12)
+        assert (p * z ** 4).sum() == pytest.approx(dl_fourth_moment(a), rel=1e-12)
+        mech = GeometricMechanism(-math.log(a), 1.0)
+        assert mech.variance() == pytest.approx(2 * a / (1 - a) ** 2, rel=1e-12)
+        assert np.allclose(mech.pmf(z[2990:3011]), p[2990:3011], rtol=1e-12)
+        assert mech.pmf(0.5) == 0.0
+
+
+@pytest.mark.parametrize("epsilon,sensitivity", PAIRS[:2])
+def test_sample_variance(epsilon, sensitivity):
+    mech = GeometricMechanism(epsilon, sensitivity)
+    a = mech.alpha
+    n = 1_000_000
+    x = mech.noise(n, SeededRandomSource(2024)).astype(np.float64)
+    sigma2 = 2 * a / (1 - a) ** 2                              # [MOM]
+    se = math.sqrt((dl_fourth_moment(a) - sigma2 ** 2) / n)    # [MOM] sd of mean of X^2
+    m2 = float(np.mean(x * x))
+    z = (m2 - sigma2) / se
+    z_mean = float(x.mean()) / math.sqrt(sigma2 / n)
+    print(f"VAR eps={epsilon} sens={sensitivity}: sample={m2:.4f} theory={sigma2:.4f} "
+          f"se={se:.4f} z={z:.2f}; mean z={z_mean:.2f}")
+    assert abs(z) < 4.0
+    assert abs(z_mean) < 4.0
+    assert abs(np.var(x, ddof=1) - sigma2) < 4.5 * se
+
+
+# -------------------------------------------------------- interval width
+@pytest.mark.parametrize("epsilon,sensitivity,confidence",
+                         [(1.0, 1.0, 0.95), (0.5, 2.0, 0.95), (0.1, 1.0, 0.9), (5.0, 1.0, 0.95), (1.0, 1.0, 0.999)])
+def test_interval_half_width(epsilon, sensitivity, confidence):
+    mech = GeometricMechanism(epsilon, sensitivity)
+    a = mech.alpha
+    t = mech.interval_half_width(confidence)
+    exact = lambda k: float(dl_pmf(np.arange(-k, k + 1), a).sum())  # [GRS09] pmf summed
+    assert exact(t) >= confidence - 1e-12 and mech.cdf_abs(t) >= confidence
+    if t > 0:
+        assert exact(t - 1) < confidence and mech.cdf_abs(t - 1) < confidence
+    assert mech.cdf_abs(t) == pytest.approx(exact(t), abs=1e-12)
+    assert mech.cdf_abs(t) == pytest.approx(1 - 2 * a ** (t + 1) / (1 + a), rel=1e-14)  # closed form
+    n = 1_000_000
+    x = mech.noise(n, SeededRandomSource(555))
+    cover = float(np.mean(np.abs(x) <= t))
+    se = math.sqrt(exact(t) * (1 - exact(t)) / n)               # binomial sd
+    print(f"INTERVAL eps={epsilon} sens={sensitivity} c={confidence}: t={t} "
+          f"P(|Z|<=t)={exact(t):.5f} P(|Z|<=t-1)={exact(t - 1) if t else float('nan'):.5f} "
+          f"empirical={cover:.5f}")
+    assert abs(cover - exact(t)) < 4 * se
+
+
+@settings(max_examples=150, deadline=None)
+@given(eps=hs.floats(1e-3, 50.0), sens=hs.floats(0.1, 20.0), conf=hs.floats(0.01, 0.9999))
+def test_interval_half_width_is_minimal(eps, sens, conf):
+    mech = GeometricMechanism(eps, sens)
+    t = mech.interval_half_width(conf)
+    assert isinstance(t, int) and t >= 0
+    assert mech.cdf_abs(t) >= conf
+    if t > 0:
+        assert mech.cdf_abs(t - 1) < conf
+
+
+# ------------------------------------------------------ mechanism object
+@pytest.mark.parametrize("field,kwargs", [
+    ("epsilon", dict(epsilon=0.0, sensitivity=1.0)),
+    ("epsilon", dict(epsilon=-1.0, sensitivity=1.0)),
+    ("epsilon", dict(epsilon=float("inf"), sensitivity=1.0)),
+    ("epsilon", dict(epsilon=float("nan"), sensitivity=1.0)),
+    ("epsilon", dict(epsilon="1", sensitivity=1.0)),
+    ("sensitivity", dict(epsilon=1.0, sensitivity=0.0)),
+    ("sensitivity", dict(epsilon=1.0, sensitivity=float("inf"))),
+    ("sensitivity", dict(epsilon=1.0, sensitivity=-2)),
+])
+def test_mechanism_validation_names_parameter_and_value(field, kwargs):
+    with pytest.raises(ValueError) as info:
+        GeometricMechanism(**kwargs)
+    msg = str(info.value)
+    assert f"'{field}'" in msg and repr(kwargs[field]) in msg
+
+
+def test_mechanism_properties_and_randomise():
+    mech = GeometricMechanism(0.5, 2)
+    assert mech.name == "discrete_laplace"
+    assert mech.alpha == pytest.approx(math.exp(-0.25))
+    assert mech.scale == 4.0
+    assert isinstance(mech.sensitivity, float)
+    with pytest.raises(Exception):
+        mech.epsilon = 2.0  # frozen
+    values = np.array([[0, 5, 10], [100, 7, 3]])
+    out = mech.randomise(values, SeededRandomSource(8))
+    noise = mech.noise(values.size, SeededRandomSource(8)).reshape(values.shape)
+    assert out.dtype == np.int64 and out.shape == values.shape
+    assert np.array_equal(out, values + noise)
+    assert mech.randomise(np.array([1.0, 2.0]), SeededRandomSource(1)).dtype == np.int64
+    with pytest.raises(ValueError, match="values"):
+        mech.randomise(np.array([1.5]), SeededRandomSource(1))
+    with pytest.raises(OverflowError):
+        mech.randomise(np.array([np.iinfo(np.int64).max] * 50), SeededRandomSource(1))
+    assert mech.noise((2, 3), SeededRandomSource(1)).shape == (2, 3)
+    with pytest.raises(ValueError, match="confidence"):
+        mech.interval_half_width(1.0)
+    # Huge epsilon: alpha underflows to 0 but sampling goes through log(alpha).
+    sharp = GeometricMechanism(1e4, 1.0)
+    assert sharp.alpha == 0.0 and sharp.variance() == 0.0
+    assert not sharp.noise(1000, SeededRandomSource(1)).any()
