@@ -102,5 +102,9 @@ class BundleError(AggpubError):
 
 def closest_name(name: str, known) -> str:
     """Return `` (did you mean 'x'?)`` for the closest known name, or ``''``."""
-    match = difflib.get_close_matches(str(name), list(known), n=1, cutoff=0.6)
+    name = str(name)
+    known = [str(k) for k in known]
+    match = difflib.get_close_matches(name, known, n=1, cutoff=0.6)
+    if not match and len(name) >= 3:
+        match = [k for k in known if k.lower().startswith(name.lower()) or name.lower().startswith(k.lower())][:1]
     return f" (did you mean '{match[0]}'?)" if match else ""

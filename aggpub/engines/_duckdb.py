@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import os
 import re
+import warnings
 
 import duckdb
 import numpy as np
@@ -34,7 +35,9 @@ def quote_literal(text: str) -> str:
 def fetch_arrow(result) -> pa.Table:
     """An executed DuckDB result as an Arrow table (the method name differs across DuckDB versions)."""
     fn = getattr(result, "to_arrow_table", None) or getattr(result, "fetch_arrow_table")
-    return fn()
+    with warnings.catch_warnings():  # DuckDB 2 warns that a DB-API result copies once; fine here
+        warnings.simplefilter("ignore", UserWarning)
+        return fn()
 
 
 def default_memory_limit() -> str:
