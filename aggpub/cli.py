@@ -76,6 +76,13 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--overwrite", action="store_true", help="replace an existing bundle at --out")
     p.add_argument("--seed", type=int, help="TESTS ONLY: fixed noise seed; the bundle is marked non-private")
     _add_common(p)
+
+    p = sub.add_parser("ledger", help="list the spends of a lifetime ledger and the budget left",
+                       description="Verify a lifetime ledger (integrity and hash chain) and list every spend "
+                       "with the epsilon left per dataset. Read only.")
+    p.add_argument("file", type=Path, help="ledger file (SQLite)")
+    p.add_argument("--dataset", help="only this dataset id")
+    _add_common(p)
     return parser
 
 
@@ -138,7 +145,28 @@ def cmd_demo(args):
     return 0
 
 
-COMMANDS = {"release": cmd_release, "check": cmd_check, "demo": cmd_demo}
+def cmd_ledger(args):
+    from .noise.ledger import Ledger
+
+    ledger = Ledger(args.file, create=False)
+    spends = ledger.spends(args.dataset)
+    totals = ledger.datasets()
+    if args.dataset is not None and args.dataset not in totals:
+        print(f"{args.file}: no spends for dataset '{args.dataset}'")
+        return 0
+    print(f"{'id':>4}  {'time (UTC)':<20} {'dataset':<24} {'epsilon':>9}  {'status':<9} bundle")
+    for s in spends:
+        print(f"{s.id:>4}  {s.created_utc[:19]:<20} {s.dataset:<24} {s.epsilon:>9.4g}  {s.status:<9} "
+              f"{s.bundle_path}")
+    for name, (spent, cap) in sorted(totals.items()):
+        if args.dataset is None or name == args.dataset:
+            print(f"dataset '{name}': spent {spent:.6g} of lifetime epsilon {cap:.6g}, "
+                  f"{max(0.0, cap - spent):.6g} left")
+    print(f"{args.file}: ledger verified ({len(ledger.spends())} spend(s), hash chain intact)")
+    return 0
+
+
+COMMANDS = {"release": cmd_release, "check": cmd_check, "demo": cmd_demo, "ledger": cmd_ledger}
 
 
 def main(argv=None) -> int:

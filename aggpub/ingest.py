@@ -15,7 +15,7 @@ comes back to Python as an Arrow table.
 
 from __future__ import annotations
 
-__all__ = ["Network", "IngestReport", "load_network", "file_format"]
+__all__ = ["Network", "IngestReport", "load_network", "file_format", "csv_header", "MISSING_ID_SPELLINGS"]
 
 from dataclasses import dataclass, asdict
 from pathlib import Path
@@ -71,6 +71,9 @@ class Network:
         Counts of what was read and dropped.
     weighted : bool
         Whether the edges carry a weight.
+    ids : pyarrow.Array of string, optional
+        The person ids as read (``ids[i]`` is person ``i``); private, used only to
+        join a public person -> supernode map (grouping method ``given``).
     """
 
     people: pa.Table
@@ -79,6 +82,7 @@ class Network:
     engine: object
     report: IngestReport
     weighted: bool = False
+    ids: pa.Array | None = None
 
 
 def file_format(path: Path) -> str:
@@ -96,6 +100,57 @@ def file_format(path: Path) -> str:
     except OSError as exc:
         raise InputError(f"{path}: cannot read ({exc.strerror})") from None
     return "parquet" if head == b"PAR1" else "csv"
+
+
+#: id spellings treated as a missing id (what spreadsheet and dataframe exports write for an empty cell);
+#: compared after trimming spaces, case-insensitively
+MISSING_ID_SPELLINGS = ("", "nan", "na", "n/a", "null", "none")
+
+
+def csv_header(path: Path, delimiter: str) -> list[str]:
+    """Column names from the first line of a CSV or TSV file.
+
+    A UTF-8 byte-order mark is accepted (and dropped). The header must be UTF-8
+    and its names non-empty and distinct.
+
+    Raises
+    ------
+    InputError
+        The header is unreadable, not UTF-8, has an empty or a repeated name.
+    """
+    import csv
+
+    try:
+        with open(path, "rb") as fh:
+            head = b""
+            while b"\n" not in head and len(head) < (4 << 20):
+                block = fh.read(1 << 16)
+                if not block:
+                    break
+                head += block
+    except OSError as exc:
+        raise InputError(f"{path}: cannot read ({exc.strerror})") from None
+    line = head.split(b"\n", 1)[0].rstrip(b"\r")
+    try:
+        text = line.decode("utf-8-sig")
+    except UnicodeDecodeError as exc:
+        raise InputError(f"{path}: line 1 (the header) is not UTF-8 text (byte {exc.start + 1})") from None
+    if "\x00" in text:
+        raise InputError(f"{path}: line 1 (the header) contains a NUL byte; is this a text file?")
+    try:
+        names = next(csv.reader([text], delimiter=delimiter, quotechar='"'), [])
+    except csv.Error:
+        raise InputError(f"{path}: line 1 (the header) is not valid CSV") from None
+    if not names:
+        raise InputError(f"{path}: line 1 (the header) is empty")
+    seen = {}
+    for i, name in enumerate(names):  # no names in these messages: a headerless file's first line is data
+        if not name.strip():
+            raise InputError(f"{path}: header field {i + 1} has no name")
+        if name in seen:
+            raise InputError(f"{path}: header fields {seen[name] + 1} and {i + 1} have the same name")
+        seen[name] = i
+    return names
 
 
 def _check_input_path(path, what) -> Path:

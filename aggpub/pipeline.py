@@ -25,6 +25,7 @@ from .errors import PolicyError, PrivacyError
 from .grouping import Grouping, group_by_attributes
 from .ingest import Network, load_network
 from .noise.accountant import ReleaseBudget
+from .noise.ledger import ChargeOnFirstDraw, ReleaseLedger
 from .noise.sampler import make_random_source
 from .policy import ReleasePolicy, epsilon_shares, policy_to_dict, read_policy
 
@@ -85,7 +86,8 @@ def make_grouping(network: Network, policy: ReleasePolicy, budget: ReleaseBudget
     raise PolicyError(f"'grouping.method' = '{g.method}' is not available in this version")
 
 
-def build_release(network: Network, policy: ReleasePolicy, *, seed: int | None = None, progress=None) -> Release:
+def build_release(network: Network, policy: ReleasePolicy, *, seed: int | None = None, progress=None,
+                  before_noise=None) -> Release:
     """Build a release from an ingested network (no file is written).
 
     Parameters
@@ -97,6 +99,9 @@ def build_release(network: Network, policy: ReleasePolicy, *, seed: int | None =
         For tests only: makes the noise reproducible and marks the release non-private.
     progress : callable, optional
         Called with a message at each stage.
+    before_noise : callable, optional
+        Called once, before the first random number is drawn (the lifetime
+        ledger's charge); if it raises, no noise is drawn.
 
     Returns
     -------
@@ -104,6 +109,8 @@ def build_release(network: Network, policy: ReleasePolicy, *, seed: int | None =
     """
     progress = progress or _silent
     source = make_random_source(seed)
+    if before_noise is not None:
+        source = ChargeOnFirstDraw(source, before_noise)
     budget = ReleaseBudget(policy.privacy.epsilon)
     epsilons = epsilon_shares(policy)
     unit = policy.privacy.unit
@@ -222,6 +229,8 @@ def run_release(policy, edges, people, out, *, seed=None, overwrite=False, sourc
         policy = read_policy(policy)
     out = Path(out).absolute()
     prepare_target(out, overwrite)  # fail before the work, not after
+    # Lifetime ledger: verified and checked now (read only), charged before the first noise draw.
+    ledger = ReleaseLedger(policy, out) if policy.ledger is not None else None
     inp = policy.input
     progress("reading edges and people")
     network = load_network(edges, people, source=source or inp.source, target=target or inp.target,
@@ -230,7 +239,20 @@ def run_release(policy, edges, people, out, *, seed=None, overwrite=False, sourc
                            attributes=_needed_attributes(policy), engine=make_engine(engine), debug=debug)
     for line in network.report.lines():
         progress(line)
-    release = build_release(network, policy, seed=seed, progress=progress)
-    progress(f"writing bundle {out}")
-    path = publish(release, out, overwrite=overwrite)
+    try:
+        release = build_release(network, policy, seed=seed, progress=progress,
+                                before_noise=ledger.charge if ledger else None)
+        if ledger is not None:
+            charge = ledger.charge()  # no-op if already charged; the spend is committed before publishing
+            release.manifest["ledger"] = charge.as_dict()
+            progress(f"ledger: charged epsilon {charge.epsilon:g} to '{charge.dataset}', "
+                     f"{charge.remaining:g} of {charge.lifetime_epsilon:g} left")
+        progress(f"writing bundle {out}")
+        path = publish(release, out, overwrite=overwrite)
+    except BaseException:
+        if ledger is not None:
+            ledger.finish(ok=False)
+        raise
+    if ledger is not None:
+        ledger.finish(ok=True)
     return release, path

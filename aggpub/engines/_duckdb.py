@@ -16,7 +16,7 @@ import numpy as np
 import pyarrow as pa
 
 from ..errors import InputError
-from ..ingest import IngestReport, Network, file_format
+from ..ingest import IngestReport, Network, csv_header, file_format
 
 MISSING_ID = -2
 UNKNOWN_ID = -1
@@ -50,17 +50,69 @@ def default_memory_limit() -> str:
 
 
 def _clean_duckdb_message(exc: Exception, debug: bool) -> str:
-    """A short reason from a DuckDB error, with private values removed unless debugging."""
+    """A short reason from a DuckDB error, with private values removed unless debugging.
+
+    DuckDB quotes the offending input line ("Original Line: ...") and values in
+    its messages; outside debug mode only the line number and a reason of our
+    own wording are kept.
+    """
     text = str(exc).strip()
     if debug:
         return text
+    line = re.search(r"[Ll]ine:? ?(\d+)", text)
+    where = f"line {line.group(1)}: " if line else ""
+    fields = re.search(r"Expected Number of Columns: (\d+) Found: (\d+)", text)
+    if fields:
+        return f"{where}expected {fields.group(1)} fields, found {fields.group(2)} (a ragged row, or a " \
+               f"delimiter or quote inside an unquoted value)"
+    if "Invalid unicode" in text or "not utf-8" in text.lower():
+        return f"{where}not UTF-8 text (save the file as UTF-8)"
+    if "unterminated quote" in text:
+        return f"{where}a quoted value is never closed"
+    if "magic bytes" in text.lower() or "not a parquet file" in text.lower():
+        return "not a Parquet file, or a truncated one (no Parquet footer)"
     first = text.splitlines()[0] if text else type(exc).__name__
     first = re.sub(r"^[A-Za-z ]*Error: ", "", first)
-    line = re.search(r"[Ll]ine:? ?(\d+)", text)
     first = re.sub(r'"[^"]*"', '"…"', first)
     first = re.sub(r"'[^']*'", "'…'", first)
+    first = re.sub(r"(?i)(value|string|original line)s?:? .*", r"\1 …", first)
     first = first[:160]
-    return first + (f" (near line {line.group(1)})" if line else "")
+    return first + (f" (near line {line.group(1)})" if line and not where else "")
+
+
+#: DuckDB types accepted for id columns: integers of any width, or text
+_ID_TYPE = re.compile(r"^(U?(TINYINT|SMALLINT|INTEGER|BIGINT|HUGEINT)|VARCHAR)$")
+_NUMERIC_TYPE = re.compile(r"^(U?(TINYINT|SMALLINT|INTEGER|BIGINT|HUGEINT)|FLOAT|DOUBLE|REAL|DECIMAL.*|VARCHAR)$")
+
+
+def _missing_id_sql(expr: str) -> str:
+    """SQL true when an id (as text) is empty or spells a missing value (see ``MISSING_ID_SPELLINGS``)."""
+    from ..ingest import MISSING_ID_SPELLINGS
+
+    spellings = ", ".join(quote_literal(x) for x in MISSING_ID_SPELLINGS)
+    return f"({expr} IS NULL OR lower(trim({expr})) IN ({spellings}))"
+
+
+def _missing_column(file_name, col, cols, expected, what, debug) -> InputError:
+    """Error for a missing column; names from the header are suggested only when it is a real header.
+
+    A file without a header has data on its first line, so its "column names" are
+    private values: they are shown only with ``debug`` or when at least one
+    expected column is present (the first line is then a header).
+    """
+    from ..errors import closest_name
+
+    cols = list(cols)
+    is_header = debug or any(c in cols for c in expected)
+    hint = closest_name(col, cols) if is_header else ""
+    if not is_header:
+        if len(cols) == 1 and any(d in cols[0] for d in (";", "\t", "|", ",")):
+            delim = next(d for d in (";", "\t", "|", ",") if d in cols[0])
+            hint = (f" (the header is a single field containing {delim!r}: the file looks {delim!r}-delimited; "
+                    f".csv files must be comma-separated and .tsv files tab-separated)")
+        else:
+            hint = f" (none of the {len(cols)} header fields is an expected column: is the first line a header?)"
+    return InputError(f"{file_name}: no {what} '{col}'{hint}")
 
 
 class DuckDBEngine:
@@ -100,11 +152,14 @@ class DuckDBEngine:
         path = quote_literal(str(src))
         if fmt == "parquet":
             return f"read_parquet({path})"
+        # CSV/TSV: the header is parsed here (a UTF-8 byte-order mark is accepted) and every column is
+        # read as text without type sniffing, so ids keep their exact spelling ("007" stays "007",
+        # ids beyond 64 bits stay exact) and the parser reports ragged rows by line number.
+        names = csv_header(src, "\t" if fmt == "tsv" else ",")
         delim = "\\t" if fmt == "tsv" else ","
-        opts = f"header=true, delim='{delim}', quote='\"', escape='\"', auto_detect=true, " \
-               f"sample_size=-1, strict_mode=true"
-        if all_varchar:
-            opts += ", all_varchar=true"
+        columns = "{" + ", ".join(f"{quote_literal(n)}: 'VARCHAR'" for n in names) + "}"
+        opts = f"header=true, delim='{delim}', quote='\"', escape='\"', auto_detect=false, " \
+               f"columns={columns}, strict_mode=true"
         return f"read_csv({path}, {opts})"
 
     def _columns(self, rel_sql, src, what, debug):
@@ -125,12 +180,16 @@ class DuckDBEngine:
         # ---- people: into Arrow, ids deduplicated, dense index = row order
         p_sql = self._relation_sql(people_src, "people", all_varchar=True)
         p_cols = self._columns(p_sql, people_src, "person", debug)
+        expected = [node] + list(attributes or ())
         if node not in p_cols:
-            raise InputError(f"{people_name}: no id column '{node}'{closest_name(node, p_cols)}")
+            raise _missing_column(people_name, node, p_cols, expected, "id column", debug)
+        if not _ID_TYPE.match(str(p_cols[node]).upper()):
+            raise InputError(f"{people_name}: id column '{node}' has type {p_cols[node]}; ids must be "
+                             "integers or text")
         attr_cols = [c for c in p_cols if c != node] if attributes is None else list(attributes)
         for a in attr_cols:
             if a not in p_cols:
-                raise InputError(f"{people_name}: no attribute column '{a}'{closest_name(a, p_cols)}")
+                raise _missing_column(people_name, a, p_cols, expected, "attribute column", debug)
         sel = ", ".join([f"CAST({quote_ident(node)} AS VARCHAR) AS id"] +
                         [f"CAST({quote_ident(a)} AS VARCHAR) AS {quote_ident(a)}" for a in attr_cols])
         try:
@@ -142,9 +201,11 @@ class DuckDBEngine:
             raise InputError(f"{people_name}: the person table has no rows")
         raw = raw.append_column("__row", pa.array(np.arange(person_rows, dtype=np.int64)))
         self.con.register("__people_raw", raw)
-        bad = self.con.execute("SELECT min(__row) FROM __people_raw WHERE id IS NULL OR trim(id) = ''").fetchall()[0][0]
-        if bad is not None:
-            raise InputError(f"{people_name}: column '{node}' is empty in data row {bad + 1}")
+        bad = self.con.execute(f"SELECT min(__row), count(*) FROM __people_raw WHERE {_missing_id_sql('id')}"
+                               ).fetchall()[0]
+        if bad[0] is not None:
+            raise InputError(f"{people_name}: {bad[1]:,} row(s) have an empty or missing id (NaN, NA, null) "
+                             f"in column '{node}' (first at data row {bad[0] + 1})")
         for a in attr_cols:
             bad = self.con.execute(f"SELECT min(__row) FROM __people_raw WHERE {quote_ident(a)} IS NULL").fetchall()[0][0]
             if bad is not None:
@@ -170,25 +231,29 @@ class DuckDBEngine:
         # ---- edges: mapped to dense ids, canonical u < v, collapsed, all in one scan
         e_sql = self._relation_sql(edges_src, "edges", all_varchar=False)
         e_cols = self._columns(e_sql, edges_src, "edge", debug)
-        for c in (source, target) + ((weight,) if weight else ()):
+        expected = [source, target] + ([weight] if weight else [])
+        for c in expected:
             if c not in e_cols:
-                raise InputError(f"{edge_name}: no column '{c}'{closest_name(c, e_cols)}")
-        if weight:
-            wtype = e_cols[weight].upper()
-            numeric = any(t in wtype for t in ("INT", "DOUBLE", "FLOAT", "DECIMAL", "REAL", "NUMERIC"))
-            if not numeric:
-                raise InputError(f"{edge_name}: weight column '{weight}' is not numeric ({e_cols[weight]})")
+                raise _missing_column(edge_name, c, e_cols, expected, "column", debug)
+        for c in (source, target):
+            if not _ID_TYPE.match(str(e_cols[c]).upper()):
+                raise InputError(f"{edge_name}: id column '{c}' has type {e_cols[c]}; ids must be "
+                                 "integers or text")
+        if weight and not _NUMERIC_TYPE.match(str(e_cols[weight]).upper()):
+            raise InputError(f"{edge_name}: weight column '{weight}' is not numeric ({e_cols[weight]})")
         self.con.register("__ids", id_table)
-        w_expr = f"CAST({quote_ident(weight)} AS DOUBLE)" if weight else "NULL::DOUBLE"
+        # text weights (CSV) are parsed here; an unparseable one becomes NULL and is refused below
+        w_expr = f"TRY_CAST({quote_ident(weight)} AS DOUBLE)" if weight else "NULL::DOUBLE"
+        missing_a, missing_b = _missing_id_sql("e.a"), _missing_id_sql("e.b")
         # people ids are VARCHAR; compare edge ids as text so CSV and Parquet inputs mix.
         q = f"""
             CREATE OR REPLACE TEMP TABLE __mapped AS
             WITH e AS (SELECT CAST({quote_ident(source)} AS VARCHAR) AS a,
                               CAST({quote_ident(target)} AS VARCHAR) AS b, {w_expr} AS w
                        FROM {e_sql}),
-                 m AS (SELECT CASE WHEN e.a IS NULL OR e.b IS NULL OR trim(e.a) = '' OR trim(e.b) = ''
+                 m AS (SELECT CASE WHEN {missing_a} OR {missing_b}
                                    THEN {MISSING_ID} ELSE coalesce(ps.idx, {UNKNOWN_ID}) END AS s,
-                              CASE WHEN e.a IS NULL OR e.b IS NULL OR trim(e.a) = '' OR trim(e.b) = ''
+                              CASE WHEN {missing_a} OR {missing_b}
                                    THEN {MISSING_ID} ELSE coalesce(pt.idx, {UNKNOWN_ID}) END AS t,
                               e.w
                        FROM e LEFT JOIN __ids ps ON e.a = ps.id LEFT JOIN __ids pt ON e.b = pt.id)
@@ -235,7 +300,7 @@ class DuckDBEngine:
                               person_rows=person_rows, people=n_people,
                               duplicate_person_rows_collapsed=person_rows - n_people)
         return Network(people=people, n_people=n_people, n_edges=n_edges, engine=self, report=report,
-                       weighted=bool(weight))
+                       weighted=bool(weight), ids=ids.combine_chunks() if hasattr(ids, "combine_chunks") else ids)
 
     # ------------------------------------------------------------------ counting
 
