@@ -14,6 +14,8 @@ from .errors import (AggpubError, BudgetError, BundleError, GateError, InputErro
 from .ingest import Network, load_network
 from .pipeline import Release, build_release, publish, release_tables, run_release
 from .policy import ReleasePolicy, parse_policy, read_policy
+from .researcher import SumInterval, cell_mask, interval, sample_network, supergraph, synthetic_people, write_sample
+from .sweep import SweepResult, run_sweep, write_sweep
 
 __all__ = [
     "__version__",
@@ -23,4 +25,6 @@ __all__ = [
     "Network", "load_network",
     "Release", "build_release", "publish", "release_tables", "run_release",
     "ReleasePolicy", "parse_policy", "read_policy",
+    "SumInterval", "cell_mask", "interval", "sample_network", "supergraph", "synthetic_people", "write_sample",
+    "SweepResult", "run_sweep", "write_sweep",
 ]

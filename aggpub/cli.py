@@ -17,7 +17,7 @@ from .errors import AggpubError, UsageError
 EXIT_CODES_HELP = """exit codes:
   0 success          1 check found problems   2 usage error      3 input error
   4 policy error     5 privacy/budget error   6 gate failed      7 output error
-  8 bundle error     9 internal error
+  8 bundle error     9 internal error         130 interrupted (nothing published)
 """
 
 
@@ -37,6 +37,9 @@ def _add_input_options(p):
     p.add_argument("--drop-unknown", action="store_true", default=None,
                    help="drop edges naming people missing from the person table (default: fail)")
     p.add_argument("--engine", default="duckdb", choices=("duckdb", "spark"), help="counting engine")
+    p.add_argument("--memory-limit", metavar="SIZE",
+                   help="memory cap of the counting engine, e.g. 4GB (default: half the machine, at most 8GB); "
+                        "beyond it the engine spills to a temporary folder beside --out")
 
 
 def _add_common(p):
@@ -59,22 +62,30 @@ def build_parser() -> argparse.ArgumentParser:
     _add_input_options(p)
     p.add_argument("--out", required=True, type=Path, help="bundle folder to create")
     p.add_argument("--overwrite", action="store_true", help="replace an existing bundle at --out")
+    p.add_argument("--allow-inside-input", action="store_true",
+                   help="allow --out inside the folder of the edge or person file (refused by default)")
     p.add_argument("--seed", type=int, help="TESTS ONLY: fixed noise seed; the bundle is marked non-private")
+    p.add_argument("--report", type=Path, metavar="DIR",
+                   help="folder for the CONFIDENTIAL audit report (report.html, audit.json; true statistics, never for researchers); default: <out>.report beside the bundle")
     _add_common(p)
 
     p = sub.add_parser("check", help="verify a bundle (checksums, schema, metadata, invariants)",
-                       description="Verify a release bundle; exit 1 naming every problem found.")
+                       description="Verify a release bundle; exit 1 naming every problem found.",
+                       epilog=EXIT_CODES_HELP, formatter_class=argparse.RawDescriptionHelpFormatter)
     p.add_argument("bundle", type=Path, help="bundle folder")
     _add_common(p)
 
     p = sub.add_parser("demo", help="build the invented demo town and release it",
                        description="Generate the invented town of Quennet Vale (about 30,000 residents), "
-                       "write its people, contacts and an example policy, and release it.")
+                       "write its people, contacts and an example policy, and release it.",
+                       epilog=EXIT_CODES_HELP, formatter_class=argparse.RawDescriptionHelpFormatter)
     p.add_argument("--out", required=True, type=Path, help="bundle folder to create")
     p.add_argument("--data", type=Path, help="folder for the generated inputs (default: <out>-inputs)")
     p.add_argument("--people", type=int, default=30_000, help="number of residents (default 30000)")
     p.add_argument("--overwrite", action="store_true", help="replace an existing bundle at --out")
     p.add_argument("--seed", type=int, help="TESTS ONLY: fixed noise seed; the bundle is marked non-private")
+    p.add_argument("--report", type=Path, metavar="DIR",
+                   help="folder for the CONFIDENTIAL audit report (report.html, audit.json; true statistics, never for researchers); default: <out>.report beside the bundle")
     _add_common(p)
 
     p = sub.add_parser("ledger", help="list the spends of a lifetime ledger and the budget left",
@@ -82,6 +93,35 @@ def build_parser() -> argparse.ArgumentParser:
                        "with the epsilon left per dataset. Read only.")
     p.add_argument("file", type=Path, help="ledger file (SQLite)")
     p.add_argument("--dataset", help="only this dataset id")
+    _add_common(p)
+
+    p = sub.add_parser("sample", help="draw a synthetic network consistent with a bundle (researcher view)",
+                       description="Verify a bundle, then draw a synthetic contact network in which every "
+                       "superedge cell holds exactly its released number of distinct contacts, uniformly "
+                       "placed among the cell's possible pairs. The people are invented and numbered per "
+                       "supernode. Post-processing of public data: costs no privacy budget.")
+    p.add_argument("bundle", type=Path, help="bundle folder")
+    p.add_argument("--out", required=True, type=Path, help="Parquet file to write (columns source, target)")
+    p.add_argument("--people", type=Path, help="also write the person -> supernode table (Parquet)")
+    p.add_argument("--seed", type=int, help="fixed seed for the sampling (reproducible; costs no privacy)")
+    p.add_argument("--overwrite", action="store_true", help="replace existing output files")
+    _add_common(p)
+
+    p = sub.add_parser("sweep", help="INTERNAL planning aid: errors over a grid of epsilon x min_size",
+                       description="Internal planning aid (confidential, writes nothing public): expected and "
+                       "observed errors of a release over a grid of epsilon x min_size (x privacy unit), the "
+                       "true statistics computed once per grouping, and the cheapest setting meeting the "
+                       "policy's [gate]. Choosing parameters from the private data is itself a data-dependent "
+                       "step, and the final release draws fresh noise.")
+    _add_input_options(p)
+    p.add_argument("--epsilons", required=True, help="comma-separated total epsilons, e.g. 0.5,1,2")
+    p.add_argument("--min-sizes", required=True, help="comma-separated minimum supernode sizes, e.g. 10,20")
+    p.add_argument("--units", help="comma-separated privacy units to try (default: the policy's)")
+    p.add_argument("--max-contacts", type=int, help="contact cap for unit 'person' (default: the policy's)")
+    p.add_argument("--draws", type=int, default=3, help="real noise draws per grid point (default 3)")
+    p.add_argument("--out", required=True, type=Path, help="folder for sweep.csv, plots and README.txt")
+    p.add_argument("--overwrite", action="store_true", help="replace an existing sweep folder at --out")
+    p.add_argument("--seed", type=int, help="fixed seed of the planning draws")
     _add_common(p)
     return parser
 
@@ -96,15 +136,35 @@ def _print_release(release, path):
               f"{c['mechanism']} scale {c['scale']:.4g}")
     if m.get("seeded"):
         print("WARNING: seeded release, NOT private (tests only)")
+    _print_audit(release)
+
+
+def _print_audit(release):
+    audit = getattr(release, "audit", None)
+    if not audit:
+        return
+    dd, gate = audit.get("degree_distribution", {}), audit.get("gate", {})
+    if "ks" in dd:
+        print(f"audit: degree distribution KS {dd['ks']:.4f}, Wasserstein-1 {dd['wasserstein1']:.4f}")
+    if gate.get("checked"):
+        checks = ", ".join(f"{k} {gate[k]['measured']:.4g} <= {gate[k]['allowed']:g}" for k in gate["checked"])
+        print(f"gate passed: {checks}")
+    print(f"CONFIDENTIAL audit report (board only, not for researchers): {release.report_path}")
 
 
 def cmd_release(args):
+    from .bundle._files import check_outside_inputs
     from .pipeline import Progress, run_release
 
+    if not args.allow_inside_input:  # outputs never land beside the private inputs unless asked
+        check_outside_inputs(args.out, (args.edges, args.nodes))
+        if args.report is not None:
+            check_outside_inputs(args.report, (args.edges, args.nodes))
     release, path = run_release(args.policy, args.edges, args.nodes, args.out, seed=args.seed,
                                 overwrite=args.overwrite, source=args.source_column, target=args.target_column,
                                 node=args.node_column, weight=args.weight_column, drop_unknown=args.drop_unknown,
-                                engine=args.engine, progress=Progress(args.quiet), debug=args.debug)
+                                engine=args.engine, progress=Progress(args.quiet), debug=args.debug,
+                                memory_limit=args.memory_limit, report=args.report)
     _print_release(release, path)
     return 0
 
@@ -137,7 +197,8 @@ def cmd_demo(args):
     paths = write_demo_inputs(data, n_people=args.people)
     print(f"demo inputs (invented town): {paths['people']}, {paths['edges']}, {paths['policy']}")
     release, path = run_release(paths["policy"], paths["edges"], paths["people"], out, seed=args.seed,
-                                overwrite=args.overwrite, progress=progress, debug=args.debug)
+                                overwrite=args.overwrite, progress=progress, debug=args.debug,
+                                report=args.report)
     _print_release(release, path)
     print(f"verify it with:  aggpub check {path}")
     print(f"release again:   aggpub release --policy {paths['policy']} --edges {paths['edges']} "
@@ -166,7 +227,78 @@ def cmd_ledger(args):
     return 0
 
 
-COMMANDS = {"release": cmd_release, "check": cmd_check, "demo": cmd_demo, "ledger": cmd_ledger}
+def cmd_sample(args):
+    from .bundle import check_bundle, read_bundle
+    from .errors import BundleError
+    from .pipeline import Progress
+    from .researcher import sample_network, synthetic_people, write_sample
+
+    progress = Progress(args.quiet)
+    progress(f"checking bundle {args.bundle}")
+    res = check_bundle(args.bundle)
+    if not res.ok:
+        raise BundleError(f"{args.bundle}: bundle check failed ({len(res.problems)} problem(s), first: "
+                          f"{res.problems[0]}); run 'aggpub check' for the list")
+    for w in res.warnings:
+        print(f"warning: {w}", file=sys.stderr)
+    for path in (args.out, args.people):
+        if path is not None and path.exists() and not args.overwrite:
+            from .errors import OutputError
+            raise OutputError(f"{path}: output file already exists (use --overwrite to replace it)")
+    bundle = read_bundle(args.bundle)
+    progress("sampling the synthetic network")
+    table = sample_network(bundle, seed=args.seed)
+    out = write_sample(table, args.out, overwrite=args.overwrite)
+    print(f"wrote {table.num_rows:,} synthetic contacts among {int(bundle.supernodes.column('size').to_numpy().sum()):,} "
+          f"invented people to {out}")
+    if args.people is not None:
+        people = write_sample(synthetic_people(bundle), args.people, overwrite=args.overwrite)
+        print(f"wrote the person -> supernode table to {people}")
+    return 0
+
+
+def cmd_sweep(args):
+    from .pipeline import Progress
+    from .sweep import PLANNING_NOTE, parse_grid, run_sweep, write_sweep
+
+    epsilons = parse_grid(args.epsilons, float, "--epsilons")
+    min_sizes = parse_grid(args.min_sizes, int, "--min-sizes")
+    units = parse_grid(args.units, str, "--units") if args.units else None
+    if args.draws < 1:
+        raise UsageError(f"'--draws' must be >= 1, got {args.draws}")
+    out = args.out.absolute()
+    if out.exists() and not args.overwrite:
+        from .errors import OutputError
+        raise OutputError(f"{out}: output folder already exists (use --overwrite to replace it)")
+    if args.weight_column:
+        raise UsageError("'--weight-column': the sweep does not cover weight totals")
+    print(PLANNING_NOTE)
+    result = run_sweep(args.policy, args.edges, args.nodes, epsilons=epsilons, min_sizes=min_sizes, units=units,
+                       max_contacts=args.max_contacts, draws=args.draws, seed=args.seed,
+                       progress=Progress(args.quiet), engine=args.engine, source_column=args.source_column,
+                       target_column=args.target_column, node_column=args.node_column,
+                       drop_unknown=args.drop_unknown, memory_limit=args.memory_limit, debug=args.debug)
+    path = write_sweep(result, out, overwrite=args.overwrite)
+    print(f"{'unit':<7}{'min_size':>9}{'epsilon':>9}{'cm med rel err':>16}{'degree KS':>11}{'degree W1':>11}  gate")
+    for r in result.rows:
+        cm = r.get("contact_matrix_median_relative_error")
+        cm = "n/a" if cm is None or cm != cm else f"{cm:.4g}"
+        print(f"{r['unit']:<7}{r['min_size']:>9}{r['epsilon']:>9g}{cm:>16}{r['degree_ks']:>11.4g}"
+              f"{r['degree_wasserstein1']:>11.4g}  {'pass' if r['gate_passed'] else 'FAIL ' + r['gate_failed']}")
+    c = result.cheapest
+    if c is None:
+        print("no setting of the grid meets the policy's [gate] thresholds")
+    else:
+        print(f"cheapest setting meeting the [gate]: unit {c['unit']}, epsilon {c['epsilon']:g}, "
+              f"min_size {c['min_size']}" + ("" if result.thresholds else " (the policy sets no thresholds)"))
+    t = result.timings
+    print(f"{t['grid_points']} grid points, {t['groupings']} grouping(s) counted, {t['total_seconds']:.1f} s; "
+          f"table, plots and README.txt in {path} (confidential: do not publish)")
+    return 0
+
+
+COMMANDS = {"release": cmd_release, "check": cmd_check, "demo": cmd_demo, "ledger": cmd_ledger,
+            "sample": cmd_sample, "sweep": cmd_sweep}
 
 
 def main(argv=None) -> int:

@@ -11,6 +11,19 @@ missing from the person table is an error, or is dropped and counted when
 
 The edges never leave the counting engine; only the person table (attributes)
 comes back to Python as an Arrow table.
+
+What is accepted and what is refused (each refusal is an :class:`InputError`
+naming the file and the row, line or column, never a value from the file):
+
+* CSV must be comma-separated, TSV tab-separated, UTF-8; a UTF-8 byte-order mark
+  is accepted and dropped. The header must have distinct, non-empty names. A
+  ragged row, an unclosed quote or non-UTF-8 bytes are refused with the line number.
+* Ids are text. CSV ids are read verbatim, never re-typed (``007`` stays ``007``;
+  ids beyond 64 bits are fine). Parquet/Arrow id columns must be integers (any
+  width, signed or unsigned) or strings; floats, decimals, booleans, dates and
+  nested types are refused. An empty id, or one spelling a missing value
+  (:data:`MISSING_ID_SPELLINGS`), is refused.
+* Weights must be finite and non-negative numbers; text weights are parsed.
 """
 
 from __future__ import annotations

@@ -191,7 +191,10 @@ def read_policy(path) -> ReleasePolicy:
         data = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
         raise PolicyError(f"{path}: TOML syntax error: {exc}") from None
-    return parse_policy(data, base_dir=path.parent, source_path=path)
+    try:
+        return parse_policy(data, base_dir=path.parent, source_path=path)
+    except PolicyError as exc:  # name the file too: one line with the file and the key
+        raise PolicyError(f"{path}: {exc}") from None
 
 
 def parse_policy(data: Mapping[str, Any], base_dir=None, source_path=None) -> ReleasePolicy:
@@ -473,10 +476,15 @@ def _parse_input(sec: _Section | None) -> InputPolicy:
 
 def _check_cross_rules(policy: ReleasePolicy) -> None:
     comps = policy.components
-    if policy.privacy.unit == "edge" and comps.supernode_sizes.share is not None \
-            and policy.grouping.method in ("attributes", "given", "random"):
-        raise PolicyError("'components.supernode_sizes.share': under unit 'edge' with a public grouping the "
-                          "sizes have sensitivity 0 and are released exactly; remove the share")
+    if policy.privacy.unit == "edge" and comps.supernode_sizes.share is not None:
+        # public grouping: sensitivity 0; private grouping: the sizes are post-processing of its noisy
+        # output (already charged as 'grouping'). Either way a share here would be silently unused.
+        raise PolicyError("'components.supernode_sizes.share': under unit 'edge' the sizes are released "
+                          "exactly (public grouping, or post-processing of a private one); remove the share")
+    for c in comps.all():
+        if c.share is not None and not c.enabled:
+            raise PolicyError(f"'components.{c.name}.share' is set but the component is not enabled; "
+                              "its share would go unused")
     if policy.privacy.unit == "person" and not comps.supernode_sizes.enabled:
         raise PolicyError("'components.supernode_sizes.enabled' must be true under unit 'person': "
                           "the noisy sizes are needed to bound the superedge counts")

@@ -8,7 +8,9 @@ if [ ! -x .venv/bin/python ]; then
   "$PY" -m venv .venv
 fi
 .venv/bin/python -m pip install --quiet --upgrade pip >/dev/null
-.venv/bin/python -m pip install --quiet -e ".[test]"
+# AGGPUB_EXTRAS adds optional extras, e.g. AGGPUB_EXTRAS=spark (CI sets it; needs Java 17 for Spark)
+EXTRAS="test${AGGPUB_EXTRAS:+,$AGGPUB_EXTRAS}"
+.venv/bin/python -m pip install --quiet -e ".[$EXTRAS]"
 set +e
 .venv/bin/python -m pytest -q "$@"
 code=$?

@@ -7,6 +7,7 @@ import ctypes.util
 import hashlib
 import json
 import os
+import re
 import secrets
 import shutil
 from pathlib import Path
@@ -43,7 +44,77 @@ def fsync_path(path: Path) -> None:
 
 
 def temp_sibling(target: Path, tag: str) -> Path:
-    return target.parent / f".{target.name}.{tag}-{secrets.token_hex(4)}"
+    """A hidden sibling ``.NAME.TAG-PID-RANDOM`` of ``target`` (the writer's process id lets a later
+    release tell an abandoned folder from one being written)."""
+    return target.parent / f".{target.name}.{tag}-{os.getpid()}-{secrets.token_hex(4)}"
+
+
+def _pid_alive(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except (PermissionError, OverflowError, ValueError):
+        return True  # exists (owned by someone else) or unknowable: keep its folder
+    return True
+
+
+def stale_temp_siblings(target: Path, tags=("tmp",)) -> list[Path]:
+    """Temporary siblings of ``target`` left by a writer that no longer runs (killed mid-write).
+
+    A folder ``.NAME.tmp-PID-RANDOM`` is stale when process ``PID`` is gone. This
+    assumes every writer to one folder runs on this machine in the same process
+    namespace (the usual case); a folder whose writer may still run is kept.
+    """
+    target = Path(target)
+    parent = target.parent
+    out = []
+    if not parent.is_dir():
+        return out
+    pattern = re.compile(r"^\." + re.escape(target.name) + r"\.(" + "|".join(map(re.escape, tags)) +
+                         r")-(\d+)-[0-9a-f]{8}$")
+    try:
+        entries = list(parent.iterdir())
+    except OSError:
+        return out
+    for p in entries:
+        m = pattern.match(p.name)
+        if m and p.is_dir() and not p.is_symlink() and not _pid_alive(int(m.group(2))):
+            out.append(p)
+    return sorted(out)
+
+
+def remove_stale_temp_siblings(target: Path) -> list[Path]:
+    """Delete abandoned ``.NAME.tmp-*`` siblings of ``target`` (see :func:`stale_temp_siblings`).
+
+    Only ``tmp`` folders (never-published, partial writes) and empty ``probe`` folders of the
+    writability test are removed; an ``old``
+    folder can hold a previous bundle and is left for a person to decide.
+    """
+    removed = []
+    for p in stale_temp_siblings(target, ("tmp", "probe")):
+        shutil.rmtree(p, ignore_errors=True)
+        if not p.exists():
+            removed.append(p)
+    return removed
+
+
+def check_outside_inputs(target: Path, inputs) -> None:
+    """Refuse an output folder inside (or equal to) the folder of any input file.
+
+    Raises
+    ------
+    OutputError
+        ``target`` lies in an input file's folder.
+    """
+    out = Path(target).absolute().resolve()
+    for inp in inputs:
+        if inp is None or not isinstance(inp, (str, os.PathLike)):
+            continue
+        folder = Path(inp).absolute().resolve().parent
+        if out == folder or folder in out.parents:
+            raise OutputError(f"{Path(target)}: output would land inside the folder of input {Path(inp)}; "
+                              "choose a folder outside it (or pass --allow-inside-input)")
 
 
 def _rename_exchange(a: Path, b: Path) -> bool:
@@ -71,11 +142,19 @@ def prepare_target(target: Path, overwrite: bool) -> None:
     parent = target.parent
     if not parent.exists():
         raise OutputError(f"{parent}: parent folder of the output does not exist")
+    if not parent.is_dir():
+        raise OutputError(f"{parent}: parent of the output is not a folder")
     if not os.access(parent, os.W_OK | os.X_OK):
         raise OutputError(f"{parent}: output folder is not writable")
+    probe = temp_sibling(target, "probe")  # os.access says yes to root even on read-only file systems
+    try:
+        probe.mkdir()
+        probe.rmdir()
+    except OSError as exc:
+        raise OutputError(f"{parent}: cannot create a folder there ({exc.strerror})") from None
 
 
-def publish_directory(tmp: Path, target: Path, overwrite: bool) -> None:
+def publish_directory(tmp: Path, target: Path, overwrite: bool, _fault=None) -> None:
     """Move a fully written and synced ``tmp`` folder to ``target`` in one step.
 
     A new target appears by one ``rename``. An existing bundle is swapped with
@@ -86,11 +165,17 @@ def publish_directory(tmp: Path, target: Path, overwrite: bool) -> None:
     if target.exists():
         if _rename_exchange(tmp, target):
             fsync_path(target.parent)
+            if _fault:
+                _fault("after exchange")
             shutil.rmtree(tmp, ignore_errors=True)  # tmp now holds the old bundle
             return
         old = temp_sibling(target, "old")  # fallback: two renames (brief window without a bundle)
         os.rename(target, old)
-        os.rename(tmp, target)
+        try:
+            os.rename(tmp, target)
+        except BaseException:
+            os.rename(old, target)  # put the previous bundle back
+            raise
         fsync_path(target.parent)
         shutil.rmtree(old, ignore_errors=True)
         return

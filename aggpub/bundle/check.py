@@ -13,7 +13,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from .._version import BUNDLE_FORMAT
-from ._files import MANIFEST, manifest_digest, sha256_file
+from ._files import MANIFEST, manifest_digest, sha256_file, stale_temp_siblings
 from .write import PARQUET_META_KEY
 
 REQUIRED_MANIFEST_KEYS = ("format", "tool_version", "created_utc", "policy", "privacy_unit", "epsilon_total",
@@ -24,6 +24,12 @@ SCHEMAS = {
     "supernodes": {"supernode": pa.int64(), "size": pa.int64()},
     "superedges": {"supernode_a": pa.int64(), "supernode_b": pa.int64(), "edge_count": pa.int64(),
                    "possible_pairs": pa.int64(), "noise_scale": pa.float64(), "ci95_half_width": pa.int64()},
+    "degree_histograms": {"supernode": pa.int64(), "degree_bin": pa.int64(), "people": pa.int64(),
+                          "people_noisy": pa.int64(), "noise_scale": pa.float64(),
+                          "ci95_half_width": pa.int64()},
+    "weight_totals": {"supernode_a": pa.int64(), "supernode_b": pa.int64(), "weight_total": pa.int64(),
+                      "max_weight_total": pa.int64(), "noise_scale": pa.float64(),
+                      "ci95_half_width": pa.int64()},
 }
 
 
@@ -119,7 +125,7 @@ def check_bundle(path) -> CheckResult:
         else:
             try:
                 m = json.loads(meta)
-                for k in ("privacy_unit", "epsilon_total", "seeded"):
+                for k in ("privacy_unit", "epsilon_total", "seeded", "min_size", "components"):
                     if m.get(k) != manifest.get(k):
                         res.problems.append(f"{name}: metadata '{k}' differs from the manifest")
             except ValueError:
@@ -135,6 +141,9 @@ def check_bundle(path) -> CheckResult:
             res.problems.append(f"{name}: {table.num_rows} rows, manifest says {expected_rows}")
     res.checked.append("Parquet page checksums and schemas")
 
+    for stale in stale_temp_siblings(path.absolute(), ("tmp", "old")):
+        res.warnings.append(f"{stale.name}: temporary folder beside the bundle, left by an interrupted write "
+                            "(not part of the bundle; the next release to this path removes a 'tmp' one)")
     if res.problems:
         return res
     _check_invariants(manifest, tables, res)
@@ -155,12 +164,25 @@ def _check_invariants(manifest, tables, res):
     if not np.array_equal(ids, np.arange(n)):
         res.problems.append("supernodes.parquet: 'supernode' is not 0..n-1 in order")
     sizes = sn.column("size").to_numpy()
-    # Under a private size release the sizes are noisy; min_size binds the true sizes the grouping used.
-    if manifest.get("sizes_exact", True) and (sizes < k).any():
+    # Under a private size release (sizes_exact false) the sizes are noisy: the grouping decided its
+    # merges on noisy counts, so min_size binds those decisions, not the true sizes, and a released
+    # size may differ from the true one (and fall below min_size after the noise).
+    sizes_exact = manifest.get("sizes_exact", True)
+    if sizes_exact and (sizes < k).any():
         res.problems.append(f"supernodes.parquet: {(sizes < k).sum()} supernode(s) below min_size {k}")
     if (sizes < 0).any():
         res.problems.append("supernodes.parquet: negative sizes")
-    res.checked.append(f"every supernode has >= {k} members")
+    if sizes_exact:
+        if manifest.get("privacy_unit") == "person":
+            res.problems.append(f"{MANIFEST}: 'sizes_exact' is true under privacy unit 'person' "
+                                "(the sizes must be released with noise)")
+        res.checked.append(f"every supernode has >= {k} members")
+    else:
+        if not any(isinstance(c, dict) and c.get("name") == "supernode_sizes" for c in manifest["components"]) \
+                and manifest.get("privacy_unit") == "person":
+            res.problems.append(f"{MANIFEST}: noisy sizes but no 'supernode_sizes' spend in 'components'")
+        res.checked.append("noisy sizes: non-negative, with their spend recorded (min_size binds the "
+                           "grouping's noisy decisions)")
     se = tables.get("superedges")
     if se is not None:
         a = se.column("supernode_a").to_numpy()
@@ -183,4 +205,63 @@ def _check_invariants(manifest, tables, res):
             key = a * (n + 1) + b
             if len(np.unique(key)) != len(key):
                 res.problems.append("superedges.parquet: a cell appears twice")
-        res.checked.append("superedge counts: non-negative integers, a <= b, every cell once")
+        if sparse:  # sparse release: only cells whose noisy count reached the threshold (then clamped)
+            t = manifest.get("superedges_sparse_threshold")
+            if not isinstance(t, int) or isinstance(t, bool) or t < 1:
+                res.problems.append(f"{MANIFEST}: sparse superedges without an integer "
+                                    "'superedges_sparse_threshold' >= 1")
+            elif (c < np.minimum(t, cap)).any():
+                res.problems.append(f"superedges.parquet: {(c < np.minimum(t, cap)).sum()} row(s) below the "
+                                    f"sparse threshold {t}")
+            res.checked.append("sparse superedges: every listed cell at or above the threshold")
+        else:
+            res.checked.append("superedge counts: non-negative integers, a <= b, every cell once")
+    _check_degree_histograms(manifest, tables.get("degree_histograms"), sizes, res)
+    _check_weight_totals(tables.get("weight_totals"), n, res)
+
+
+def _check_degree_histograms(manifest, dh, sizes, res):
+    """Every (supernode, bin) once; bins non-negative and adding up to the released size."""
+    if dh is None:
+        return
+    n = len(sizes)
+    s = dh.column("supernode").to_numpy()
+    b = dh.column("degree_bin").to_numpy()
+    p = dh.column("people").to_numpy()
+    comp = {c.get("name"): c for c in manifest.get("components", []) if isinstance(c, dict)}
+    cap = ((manifest.get("policy") or {}).get("components") or {}).get("degree_histograms", {}).get("max_degree")
+    if ((s < 0) | (s >= n)).any():
+        res.problems.append("degree_histograms.parquet: supernode ids out of range")
+        return
+    if (p < 0).any():
+        res.problems.append("degree_histograms.parquet: negative 'people'")
+    if isinstance(cap, int):
+        if ((b < 0) | (b > cap)).any():
+            res.problems.append(f"degree_histograms.parquet: degree_bin outside 0..{cap}")
+        elif len(s) != n * (cap + 1) or len(np.unique(s * (cap + 1) + b)) != len(s):
+            res.problems.append(f"degree_histograms.parquet: {len(s)} rows, expected every one of the "
+                                f"{n * (cap + 1)} (supernode, bin) cells exactly once (zeros included)")
+    totals = np.bincount(s, weights=p, minlength=n)
+    if not np.array_equal(totals.astype(np.int64), np.asarray(sizes, dtype=np.int64)):
+        res.problems.append("degree_histograms.parquet: a supernode's bins do not add up to its size")
+    if "degree_histograms" not in comp:
+        res.problems.append("degree_histograms.parquet: no 'degree_histograms' spend in the manifest")
+    res.checked.append("degree histograms: every bin once, non-negative, adding up to the sizes")
+
+
+def _check_weight_totals(wt, n, res):
+    """Every cell once, totals in [0, max_weight_total]."""
+    if wt is None:
+        return
+    a = wt.column("supernode_a").to_numpy()
+    b = wt.column("supernode_b").to_numpy()
+    t = wt.column("weight_total").to_numpy()
+    cap = wt.column("max_weight_total").to_numpy()
+    if (a > b).any() or ((a < 0) | (b >= n)).any():
+        res.problems.append("weight_totals.parquet: supernode ids out of range or supernode_a > supernode_b")
+    if (t < 0).any() or (t > cap).any():
+        res.problems.append("weight_totals.parquet: weight_total outside [0, max_weight_total]")
+    if len(a) != n * (n + 1) // 2 or len(np.unique(a * (n + 1) + b)) != len(a):
+        res.problems.append(f"weight_totals.parquet: {len(a)} rows, expected every one of the "
+                            f"{n * (n + 1) // 2} cells exactly once (zeros included)")
+    res.checked.append("weight totals: every cell once, within [0, max_weight_total]")

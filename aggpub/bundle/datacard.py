@@ -40,11 +40,20 @@ def render_datacard(manifest: dict) -> str:
                    "reproducible, so it is NOT private. It must not leave the test environment.**\n"
                    if seeded else "")
     rows = manifest.get("rows", {})
+    sizes_text = ("" if manifest.get("sizes_exact", True) else
+                  "\n> **Sizes are noisy.** Under this privacy unit the supernode sizes are private: each `size` "
+                  "is a sum of noisy counts of the finest attribute cells (discrete Laplace noise, see the "
+                  "`supernode_sizes` row of the budget table), and supernodes were merged on those noisy "
+                  "counts. A true size can differ from the released one, and can be below the minimum.\n")
     extra_files = "".join(f"- `{stem}.parquet`: {desc}\n" for stem, desc in (
-        ("degree_histograms", "`supernode`, `degree_bin`, `people`: noisy number of members of each supernode "
-         "with that many contacts (the top bin counts everyone at the cap or above)."),
-        ("weight_totals", "`supernode_a`, `supernode_b`, `weight_total`: noisy totals of contact weights "
-         "clipped to the policy's bound, in integer units."),
+        ("degree_histograms", "`supernode`, `degree_bin`, `people`: number of members of each supernode "
+         "with that many contacts (the top bin counts everyone at the cap or above). `people_noisy` is the "
+         "noisy count as drawn (unbiased, may be negative; `ci95_half_width` applies to it); `people` is the "
+         "same noise made consistent by post-processing: non-negative integers adding up to the supernode's "
+         "`size` (least-squares projection, then rounding)."),
+        ("weight_totals", "`supernode_a`, `supernode_b`, `weight_total`: noisy totals of contact weights, "
+         "each weight clipped to the policy's bound and rounded to an integer unit, clamped to "
+         "`[0, max_weight_total]` (the bound times the possible pairs); every cell including zeros."),
     ) if stem in rows)
     return f"""# Aggregated contact network release
 {seeded_text}
@@ -66,10 +75,13 @@ Made by aggpub {manifest['tool_version']} on {manifest['created_utc']} (bundle f
 - `superedges.parquet`: one row per pair `supernode_a <= supernode_b`, **every pair
   including zeros**; `edge_count` is the noisy number of contacts between the two
   supernodes (within the supernode when `a = b`), clamped to `[0, possible_pairs]`;
+  `edge_count_unclamped` is the same noisy value before clamping (it can be negative):
+  clamping lifts empty cells above zero, so **sum `edge_count_unclamped`, not `edge_count`,
+  when you add up many cells** (its sums are unbiased);
   `possible_pairs` is `size_a * size_b` (or `size * (size - 1) / 2` within one);
   `noise_scale` is the scale of the discrete Laplace noise; `ci95_half_width` is the
   half-width of a 95% interval for the noise on one cell.
-{extra_files}- `manifest.json`: every parameter of the release and the SHA-256 of every file.
+{extra_files}{sizes_text}- `manifest.json`: every parameter of the release and the SHA-256 of every file.
   Verify with `aggpub check <this folder>`.
 
 ## Reading the noise

@@ -13,8 +13,8 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from ..errors import OutputError
-from ._files import MANIFEST, fsync_path, manifest_digest, prepare_target, publish_directory, sha256_file, \
-    temp_sibling
+from ._files import MANIFEST, fsync_path, manifest_digest, prepare_target, publish_directory, \
+    remove_stale_temp_siblings, sha256_file, temp_sibling
 
 #: key of the privacy parameters in each Parquet file's key-value metadata
 PARQUET_META_KEY = b"aggpub.privacy"
@@ -55,6 +55,7 @@ def write_bundle(target, tables: dict, manifest: dict, datacard: str, overwrite:
     """
     target = Path(target).absolute()
     prepare_target(target, overwrite)
+    remove_stale_temp_siblings(target)  # partial folders of a writer that was killed
     tmp = temp_sibling(target, "tmp")
     try:
         tmp.mkdir()
@@ -90,7 +91,7 @@ def write_bundle(target, tables: dict, manifest: dict, datacard: str, overwrite:
         fsync_path(tmp)
         if _fault:
             _fault("before publish")
-        publish_directory(tmp, target, overwrite)
+        publish_directory(tmp, target, overwrite, _fault=_fault)
     except BaseException as exc:
         shutil.rmtree(tmp, ignore_errors=True)
         if isinstance(exc, OSError):

@@ -82,6 +82,7 @@ def _clean_duckdb_message(exc: Exception, debug: bool) -> str:
 
 #: DuckDB types accepted for id columns: integers of any width, or text
 _ID_TYPE = re.compile(r"^(U?(TINYINT|SMALLINT|INTEGER|BIGINT|HUGEINT)|VARCHAR)$")
+_INT_TYPE = re.compile(r"^U?(TINYINT|SMALLINT|INTEGER|BIGINT|HUGEINT)$")
 _NUMERIC_TYPE = re.compile(r"^(U?(TINYINT|SMALLINT|INTEGER|BIGINT|HUGEINT)|FLOAT|DOUBLE|REAL|DECIMAL.*|VARCHAR)$")
 
 
@@ -102,8 +103,13 @@ def _missing_column(file_name, col, cols, expected, what, debug) -> InputError:
     """
     from ..errors import closest_name
 
+    import difflib
+
     cols = list(cols)
     is_header = debug or any(c in cols for c in expected)
+    if not is_header:  # a near-miss of the asked name without digits (ids have them) reads as a header
+        near = difflib.get_close_matches(str(col), [str(c) for c in cols], n=1, cutoff=0.75)
+        is_header = bool(near) and not any(ch.isdigit() for ch in near[0])
     hint = closest_name(col, cols) if is_header else ""
     if not is_header:
         if len(cols) == 1 and any(d in cols[0] for d in (";", "\t", "|", ",")):
@@ -125,18 +131,43 @@ class DuckDBEngine:
     threads : int, optional
         Worker threads (default: DuckDB's choice, all cores).
     temp_directory : str, optional
-        Where DuckDB spills when data exceed memory.
+        Where DuckDB spills when data exceed memory (kept as given). Default: a
+        private folder under ``spill_parent``, created by DuckDB only when it
+        spills and removed by :meth:`close` (or when the engine is
+        garbage-collected, or at exit).
+    spill_parent : str, optional
+        Folder in which to create the default spill folder (default: the
+        system's temporary folder; the release command uses the output's
+        folder, which is on a disk that holds the bundle).
     """
 
     name = "duckdb"
 
-    def __init__(self, memory_limit=None, threads=None, temp_directory=None):
+    def __init__(self, memory_limit=None, threads=None, temp_directory=None, spill_parent=None):
         self.con = duckdb.connect(":memory:")
-        self.con.execute(f"SET memory_limit={quote_literal(memory_limit or default_memory_limit())}")
+        self.memory_limit = memory_limit or default_memory_limit()
+        try:
+            self.con.execute(f"SET memory_limit={quote_literal(self.memory_limit)}")
+        except duckdb.Error:
+            from ..errors import UsageError
+
+            self.con.close()
+            raise UsageError(f"memory limit {self.memory_limit!r} is not a size such as '4GB' or '500MB'") from None
         if threads:
             self.con.execute(f"SET threads={int(threads)}")
-        if temp_directory:
-            self.con.execute(f"SET temp_directory={quote_literal(str(temp_directory))}")
+        self._cleanup = None
+        if not temp_directory:
+            import secrets
+            import shutil
+            import tempfile
+            import weakref
+
+            # DuckDB creates this folder only if it spills; nothing appears beside the output otherwise
+            temp_directory = os.path.join(spill_parent or tempfile.gettempdir(),
+                                          f".aggpub-spill-{os.getpid()}-{secrets.token_hex(6)}")
+            self._cleanup = weakref.finalize(self, shutil.rmtree, temp_directory, True)
+        self.temp_directory = str(temp_directory)
+        self.con.execute(f"SET temp_directory={quote_literal(self.temp_directory)}")
         self.con.execute("SET preserve_insertion_order=false")
         self._weighted = False
 
@@ -190,7 +221,13 @@ class DuckDBEngine:
         for a in attr_cols:
             if a not in p_cols:
                 raise _missing_column(people_name, a, p_cols, expected, "attribute column", debug)
+        # integer ids (Parquet, Arrow) also keep their native value: the edge mapping then joins on
+        # integers when the edge ids are integers too, which gives the same pairs as comparing the text
+        # (an integer's decimal text is unique) at a fraction of the cost
+        int_ids = _INT_TYPE.match(str(p_cols[node]).upper()) is not None
+        nid_sql = ", __nid" if int_ids else ""
         sel = ", ".join([f"CAST({quote_ident(node)} AS VARCHAR) AS id"] +
+                        ([f"{quote_ident(node)} AS __nid"] if int_ids else []) +
                         [f"CAST({quote_ident(a)} AS VARCHAR) AS {quote_ident(a)}" for a in attr_cols])
         try:
             raw = fetch_arrow(self.con.execute(f"SELECT {sel} FROM {p_sql}"))
@@ -211,22 +248,32 @@ class DuckDBEngine:
             if bad is not None:
                 raise InputError(f"{people_name}: column '{a}' is empty in data row {bad + 1}")
         attr_sql = "".join(", " + quote_ident(a) for a in attr_cols)
-        distinct = fetch_arrow(self.con.execute(
-            f"SELECT id{attr_sql}, min(__row) AS first FROM __people_raw GROUP BY ALL ORDER BY first"))
         n_ids = self.con.execute("SELECT count(DISTINCT id) FROM __people_raw").fetchall()[0][0]
+        if n_ids == person_rows:  # no repeated id: the rows are the people, in file order (no sort needed)
+            distinct = raw
+        else:
+            distinct = fetch_arrow(self.con.execute(
+                f"SELECT id{nid_sql}{attr_sql}, min(__row) AS first FROM __people_raw GROUP BY ALL ORDER BY first"))
         if distinct.num_rows != n_ids:
             conflicted = distinct.num_rows - n_ids
-            row = self.con.execute(
-                f"SELECT min(first) FROM (SELECT id, min(__row) AS first, count(DISTINCT ({attr_sql[2:] or 'id'})) AS k "
-                f"FROM __people_raw GROUP BY id) WHERE k > 1"
-            ).fetchall()[0][0]
+            tup = "row(" + (", ".join("p." + quote_ident(c) for c in attr_cols) or "p.id") + ")"
+            row, other = self.con.execute(  # error path: the first repeated id and its first differing row
+                f"WITH k AS (SELECT id, min(__row) AS first FROM __people_raw GROUP BY id "
+                f"           HAVING count(DISTINCT {tup.replace('p.', '')}) > 1 ORDER BY first LIMIT 1), "
+                f"     f AS (SELECT p.id, {tup} AS t FROM __people_raw p JOIN k ON p.__row = k.first) "
+                f"SELECT min(k.first), min(p.__row) FROM __people_raw p JOIN k ON p.id = k.id "
+                f"JOIN f ON f.id = p.id WHERE {tup} IS DISTINCT FROM f.t"
+            ).fetchall()[0]
             raise InputError(f"{people_name}: {conflicted} person id(s) appear more than once with conflicting "
-                             f"attributes (first at data row {int(row) + 1})")
+                             f"attributes (first at data row {int(row) + 1}, again with other attributes at "
+                             f"data row {int(other) + 1})")
         self.con.unregister("__people_raw")
         n_people = distinct.num_rows
         ids = distinct.column("id")
         people = distinct.select(attr_cols)
         id_table = pa.table({"id": ids, "idx": pa.array(np.arange(n_people, dtype=np.int32))})
+        if int_ids:
+            id_table = id_table.append_column("nid", distinct.column("__nid"))
 
         # ---- edges: mapped to dense ids, canonical u < v, collapsed, all in one scan
         e_sql = self._relation_sql(edges_src, "edges", all_varchar=False)
@@ -243,20 +290,31 @@ class DuckDBEngine:
             raise InputError(f"{edge_name}: weight column '{weight}' is not numeric ({e_cols[weight]})")
         self.con.register("__ids", id_table)
         # text weights (CSV) are parsed here; an unparseable one becomes NULL and is refused below
-        w_expr = f"TRY_CAST({quote_ident(weight)} AS DOUBLE)" if weight else "NULL::DOUBLE"
+        # (trim() keeps DuckDB from pushing the cast into the CSV reader, where it turns into a strict
+        # cast that fails on the first bad value with the value in its message)
+        w_expr = "NULL::DOUBLE"
+        if weight:
+            w_expr = (f"TRY_CAST(trim({quote_ident(weight)}) AS DOUBLE)" if str(e_cols[weight]).upper() == "VARCHAR"
+                      else f"CAST({quote_ident(weight)} AS DOUBLE)")
         missing_a, missing_b = _missing_id_sql("e.a"), _missing_id_sql("e.b")
-        # people ids are VARCHAR; compare edge ids as text so CSV and Parquet inputs mix.
+        # people ids are VARCHAR; compare edge ids as text so CSV and Parquet inputs mix,
+        # or as integers when both sides are integers (same pairs, much faster)
+        a_sql = f"CAST({quote_ident(source)} AS VARCHAR)"
+        b_sql = f"CAST({quote_ident(target)} AS VARCHAR)"
+        id_col = "id"
+        if int_ids and all(_INT_TYPE.match(str(e_cols[c]).upper()) for c in (source, target)):
+            a_sql, b_sql, id_col = quote_ident(source), quote_ident(target), "nid"
+            missing_a, missing_b = "(e.a IS NULL)", "(e.b IS NULL)"
         q = f"""
             CREATE OR REPLACE TEMP TABLE __mapped AS
-            WITH e AS (SELECT CAST({quote_ident(source)} AS VARCHAR) AS a,
-                              CAST({quote_ident(target)} AS VARCHAR) AS b, {w_expr} AS w
+            WITH e AS (SELECT {a_sql} AS a, {b_sql} AS b, {w_expr} AS w
                        FROM {e_sql}),
                  m AS (SELECT CASE WHEN {missing_a} OR {missing_b}
                                    THEN {MISSING_ID} ELSE coalesce(ps.idx, {UNKNOWN_ID}) END AS s,
                               CASE WHEN {missing_a} OR {missing_b}
                                    THEN {MISSING_ID} ELSE coalesce(pt.idx, {UNKNOWN_ID}) END AS t,
                               e.w
-                       FROM e LEFT JOIN __ids ps ON e.a = ps.id LEFT JOIN __ids pt ON e.b = pt.id)
+                       FROM e LEFT JOIN __ids ps ON e.a = ps.{id_col} LEFT JOIN __ids pt ON e.b = pt.{id_col})
             SELECT least(s, t) AS u, greatest(s, t) AS v, count(*) AS mult, sum(w) AS w,
                    count(*) FILTER (WHERE w IS NULL OR isnan(w) OR isinf(w) OR w < 0) AS bad_w
             FROM m GROUP BY 1, 2
@@ -264,43 +322,90 @@ class DuckDBEngine:
         try:
             self.con.execute(q)
         except duckdb.Error as exc:
+            self.con.unregister("__ids")
             raise InputError(f"{edge_name}: cannot read edge file: {_clean_duckdb_message(exc, debug)}") from None
+        try:
+            self._check_edges(e_sql, edge_name, people_name, source, target, weight, w_expr, drop_unknown)
         finally:
             self.con.unregister("__ids")
         stats = self.con.execute(f"""
             SELECT coalesce(sum(mult), 0),
-                   coalesce(sum(mult) FILTER (WHERE u = {MISSING_ID}), 0),
                    coalesce(sum(mult) FILTER (WHERE u = {UNKNOWN_ID}), 0),
                    coalesce(sum(mult) FILTER (WHERE u = v AND u >= 0), 0),
                    coalesce(sum(mult - 1) FILTER (WHERE u < v AND u >= 0), 0),
-                   count(*) FILTER (WHERE u < v AND u >= 0),
-                   coalesce(sum(bad_w) FILTER (WHERE u >= 0), 0)
+                   count(*) FILTER (WHERE u < v AND u >= 0)
             FROM __mapped""").fetchall()[0]
-        rows, missing, unknown, loops, dups, n_edges, bad_w = (int(x) for x in stats)
-        if rows == 0:
-            raise InputError(f"{edge_name}: the edge table has no rows")
-        if missing:
-            raise InputError(f"{edge_name}: {missing:,} edge row(s) have an empty '{source}' or '{target}'")
-        if unknown and not drop_unknown:
-            raise InputError(f"{edge_name}: {unknown:,} edge row(s) name people missing from {people_name} "
-                             f"(use --drop-unknown to drop them)")
-        if weight and bad_w:
-            raise InputError(f"{edge_name}: {bad_w:,} edge row(s) have an empty, NaN, infinite or negative "
-                             f"'{weight}'")
+        rows, unknown, loops, dups, n_edges = (int(x) for x in stats)
         if n_edges == 0:
             raise InputError(f"{edge_name}: no contacts left after dropping self-loops"
                              + (" and unknown people" if unknown else ""))
-        self.con.execute("""CREATE OR REPLACE TABLE edges AS
-                            SELECT CAST(u AS INTEGER) AS u, CAST(v AS INTEGER) AS v, w
-                            FROM __mapped WHERE u < v AND u >= 0""")
-        self.con.execute("DROP TABLE __mapped")
-        self._weighted = bool(weight)
+        self._publish_edges(weight)
         report = IngestReport(edge_rows=rows, edges=n_edges, self_loops_dropped=loops,
                               duplicate_rows_collapsed=dups, unknown_person_rows_dropped=unknown,
                               person_rows=person_rows, people=n_people,
                               duplicate_person_rows_collapsed=person_rows - n_people)
         return Network(people=people, n_people=n_people, n_edges=n_edges, engine=self, report=report,
                        weighted=bool(weight), ids=ids.combine_chunks() if hasattr(ids, "combine_chunks") else ids)
+
+    def _first_row(self, rel_sql, select, predicate):
+        """1-based data row of the first input row matching ``predicate`` (error path only).
+
+        Insertion order is preserved for this one query so the row number follows the file.
+        """
+        self.con.execute("SET preserve_insertion_order=true")
+        # and without statistics propagation: Parquet min/max statistics leave NaN out, and DuckDB 2.0.1
+        # then folds isnan(w) to false
+        self.con.execute("SET disabled_optimizers = 'statistics_propagation'")
+        try:
+            # the test sits in the aggregate, not a WHERE: DuckDB prunes Parquet row groups by their
+            # min/max statistics, which leave NaN out, so a pushed-down filter can miss a NaN row
+            row = self.con.execute(f"SELECT min(CASE WHEN {predicate} THEN __rn END) FROM "
+                                   f"(SELECT row_number() OVER () AS __rn, {select} FROM {rel_sql})").fetchall()[0][0]
+        except duckdb.Error:
+            row = None
+        finally:
+            self.con.execute("SET preserve_insertion_order=false")
+            self.con.execute("RESET disabled_optimizers")
+        return None if row is None else int(row)
+
+    def _check_edges(self, e_sql, edge_name, people_name, source, target, weight, w_expr, drop_unknown):
+        """Refuse empty edge tables, missing ids, unknown people and bad weights, naming the first row."""
+        stats = self.con.execute(f"""
+            SELECT coalesce(sum(mult), 0),
+                   coalesce(sum(mult) FILTER (WHERE u = {MISSING_ID}), 0),
+                   coalesce(sum(mult) FILTER (WHERE u = {UNKNOWN_ID}), 0),
+                   coalesce(sum(bad_w) FILTER (WHERE u >= 0), 0)
+            FROM __mapped""").fetchall()[0]
+        rows, missing, unknown, bad_w = (int(x) for x in stats)
+        if rows == 0:
+            raise InputError(f"{edge_name}: the edge table has no rows")
+        select = (f"CAST({quote_ident(source)} AS VARCHAR) AS a, CAST({quote_ident(target)} AS VARCHAR) AS b, "
+                  f"{w_expr} AS w")
+        missing_ab = f"({_missing_id_sql('a')} OR {_missing_id_sql('b')})"
+        known = f"(NOT {missing_ab} AND a IN (SELECT id FROM __ids) AND b IN (SELECT id FROM __ids))"
+
+        def at(predicate):
+            row = self._first_row(e_sql, select, predicate)
+            return f" (first at data row {row})" if row else ""
+
+        if missing:
+            raise InputError(f"{edge_name}: {missing:,} edge row(s) have an empty '{source}' or '{target}' "
+                             f"(or an id spelling a missing value: NaN, NA, null){at(missing_ab)}")
+        if unknown and not drop_unknown:
+            raise InputError(f"{edge_name}: {unknown:,} edge row(s) name people missing from {people_name}"
+                             f"{at(f'NOT {missing_ab} AND NOT {known}')} (use --drop-unknown to drop them)")
+        if weight and bad_w:
+            raise InputError(f"{edge_name}: {bad_w:,} edge row(s) have an empty, unparseable, NaN, infinite or "
+                             f"negative '{weight}'"
+                             f"{at(f'{known} AND (w IS NULL OR isnan(w) OR isinf(w) OR w < 0)')}")
+
+    def _publish_edges(self, weight):
+        """Keep the mapped, canonical contacts as table ``edges`` (inputs already validated)."""
+        self.con.execute("""CREATE OR REPLACE TABLE edges AS
+                            SELECT CAST(u AS INTEGER) AS u, CAST(v AS INTEGER) AS v, w
+                            FROM __mapped WHERE u < v AND u >= 0""")
+        self.con.execute("DROP TABLE __mapped")
+        self._weighted = bool(weight)
 
     # ------------------------------------------------------------------ counting
 
@@ -379,3 +484,5 @@ class DuckDBEngine:
 
     def close(self):
         self.con.close()
+        if self._cleanup is not None:
+            self._cleanup()  # the private spill folder

@@ -1,0 +1,68 @@
+"""Utility audit of a release against the true network (confidential), the gate and the board report.
+
+Everything this package computes from ``release.truth`` or ``release.network``
+is an unprotected statistic: it goes into the confidential report folder,
+never into the public bundle.
+
+API
+---
+``audit_release(release, *, monte_carlo=20, source=None, structure_samples=3, n_cut_queries=200,
+sanity_bound=None, seed=None, progress=None) -> dict``
+    All figures: ``degree_distribution`` (``ks``, ``wasserstein1``, ``l1``,
+    ``basis``, ``grouping_loss``, ``noise_added``, ``monte_carlo``), ``queries``
+    (per workload: ``mean_absolute_error``, ``rmse``, ``median_relative_error``,
+    ``p90_relative_error``, ``p99_relative_error``, ``expected_rmse``,
+    ``expected_mean_absolute_error``, ``monte_carlo``), ``error_split``,
+    ``structure``, ``budget``, ``grouping``, ``gate``. Keys starting with ``_``
+    hold plot arrays and are not serialised.
+``evaluate_gate(policy, audit) -> dict``; ``gate_failure_message(gate, ...) -> str``
+``write_report(directory, audit, *, overwrite=False) -> Path`` (``report.html`` + ``audit.json``)
+
+Metric functions for reuse (numpy in, float out; histograms indexed by degree):
+``ks_distance(p, q)``, ``wasserstein1_distance(p, q)``, ``l1_distance(p, q)``,
+``distribution_distances(p, q) -> {"ks", "wasserstein1", "l1"}``,
+``relative_errors(true, est, s)``, ``error_summary(true, est, s) -> dict``,
+``implied_degree_pmf(a, b, count, sizes) -> (pmf, method)`` (block-model degree
+distribution of a supergraph), ``sample_block_network(a, b, count, sizes, rng) -> (u, v)``,
+``structure_statistics(u, v, n, categories) -> dict``.
+Workload builders on cells (``aggpub.audit.queries``): ``superedge_cells_workload``,
+``contact_matrix_workload``, ``cut_workload``, ``degree_totals_workload``.
+"""
+
+from __future__ import annotations
+
+from ._audit import audit_release
+from .degrees import implied_degree_pmf
+from .gate import evaluate_gate, gate_failure_message
+from .metrics import (
+    distribution_distances,
+    error_summary,
+    ks_distance,
+    l1_distance,
+    relative_errors,
+    wasserstein1_distance,
+)
+from .structure import sample_block_network, structure_statistics
+
+__all__ = [
+    "audit_release",
+    "evaluate_gate",
+    "gate_failure_message",
+    "write_report",
+    "ks_distance",
+    "wasserstein1_distance",
+    "l1_distance",
+    "distribution_distances",
+    "relative_errors",
+    "error_summary",
+    "implied_degree_pmf",
+    "sample_block_network",
+    "structure_statistics",
+]
+
+
+def write_report(directory, audit, *, overwrite=False, **kwargs):
+    """Write ``report.html`` and ``audit.json`` into ``directory`` (see :func:`aggpub.audit.report.write_report`)."""
+    from .report import write_report as _write
+
+    return _write(directory, audit, overwrite=overwrite, **kwargs)

@@ -1,0 +1,152 @@
+"""Degree distributions: the true one, and the ones a release implies.
+
+A release without degree histograms still implies a degree distribution: read
+the supergraph as a block model (Hay, Miklau, Jensen, Towsley, Weis, PVLDB
+2008, sample graphs uniformly from the aggregate). A member of supernode ``a``
+then has a number of contacts in supernode ``b`` that is approximately
+``Binomial(m_ab, p_ab)`` with ``m_ab = s_b`` (``s_a - 1`` inside ``a``) and
+``p_ab = count_ab / possible_pairs_ab``; its degree is the sum over ``b`` of
+independent binomials (exactly hypergeometric per cell when ``count_ab`` edges
+are placed on distinct pairs; the binomial is the usual approximation). The
+degree distribution of the release is the mixture over supernodes weighted by
+size.
+
+The sum of binomials is computed exactly through its characteristic function
+on an FFT grid; for very many supernodes the Poisson approximation
+``Poisson(sum_b count_ab / s_a)`` (diagonal counted twice) is used instead.
+"""
+
+from __future__ import annotations
+
+__all__ = ["cell_matrix", "implied_degree_pmf", "released_histogram_degrees", "true_degree_histogram"]
+
+import numpy as np
+from scipy import stats
+
+from ..components import possible_pairs
+
+#: Above this many (supernode x supernode x grid) terms, use the Poisson approximation.
+MAX_EXACT_TERMS = 60_000_000
+
+
+def cell_matrix(a, b, count, n: int) -> np.ndarray:
+    """Symmetric dense ``n x n`` matrix of per-cell counts from upper-triangle cells."""
+    m = np.zeros((n, n), dtype=np.float64)
+    m[a, b] = count
+    m[b, a] = count
+    return m
+
+
+def true_degree_histogram(degrees) -> np.ndarray:
+    """Number of people with each degree, index = degree."""
+    return np.bincount(np.asarray(degrees, dtype=np.int64)).astype(np.float64)
+
+
+def _per_member_rates(a, b, count, sizes):
+    """Expected contacts of one member of each supernode (block model)."""
+    sizes = np.asarray(sizes, dtype=np.float64)
+    count = np.asarray(count, dtype=np.float64)
+    ends = np.bincount(a, weights=count, minlength=len(sizes)) + np.bincount(b, weights=count, minlength=len(sizes))
+    return ends / np.maximum(sizes, 1.0)
+
+
+def implied_degree_pmf(a, b, count, sizes, *, method: str = "auto") -> tuple[np.ndarray, str]:
+    """Degree distribution implied by superedge counts read as a block model.
+
+    Parameters
+    ----------
+    a, b : array_like of int
+        Cells ``a <= b`` (every cell, or only non-zero ones).
+    count : array_like
+        Edges in each cell (true or released; clamped to ``[0, possible pairs]``).
+    sizes : array_like of int
+        Members of each supernode.
+    method : {"auto", "binomial", "poisson"}
+        ``binomial``: exact sum of per-cell binomials (FFT); ``poisson``: the
+        Poisson approximation; ``auto``: binomial unless too large.
+
+    Returns
+    -------
+    pmf : numpy.ndarray
+        Probability of each degree ``0..K`` for a person drawn uniformly.
+    method : str
+        The method used.
+
+    References
+    ----------
+    M. Hay, G. Miklau, D. Jensen, D. Towsley, P. Weis, "Resisting structural
+    re-identification in anonymized social networks", PVLDB 1(1), 2008.
+    """
+    a = np.asarray(a, dtype=np.int64)
+    b = np.asarray(b, dtype=np.int64)
+    sizes = np.asarray(sizes, dtype=np.int64)
+    n = len(sizes)
+    cap = possible_pairs(sizes, a, b).astype(np.float64)
+    count = np.clip(np.asarray(count, dtype=np.float64), 0.0, cap)
+    weights = sizes / sizes.sum()
+    lam = _per_member_rates(a, b, count, sizes)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        p_cell = np.where(cap > 0, count / np.where(cap > 0, cap, 1.0), 0.0)
+    var = np.zeros(n)
+    # variance of a member of a: sum_b m_ab p (1 - p)
+    m_ab = sizes[b].astype(np.float64)
+    m_ba = sizes[a].astype(np.float64)
+    diag = a == b
+    m_ab = np.where(diag, sizes[a] - 1.0, m_ab)
+    m_ba = np.where(diag, 0.0, m_ba)
+    pq = p_cell * (1 - p_cell)
+    var += np.bincount(a, weights=m_ab * pq, minlength=n) + np.bincount(b, weights=m_ba * pq, minlength=n)
+    top = int(np.ceil(np.max(lam + 12 * np.sqrt(np.maximum(var, lam)) + 20))) if n else 1
+    grid = 1 << max(4, int(np.ceil(np.log2(top + 1))))
+    if method == "auto":
+        method = "binomial" if n * n * grid <= MAX_EXACT_TERMS else "poisson"
+    if method == "poisson":
+        k = np.arange(top + 1)
+        pmf = np.zeros(top + 1)
+        for lo in range(0, n, 256):  # chunks of supernodes; bounded memory
+            hi = min(n, lo + 256)
+            pmf += weights[lo:hi] @ stats.poisson.pmf(k[None, :], lam[lo:hi, None])
+        return pmf, "poisson"
+    if method != "binomial":
+        raise ValueError(f"'method' must be 'auto', 'binomial' or 'poisson', got {method!r}")
+    # log characteristic function of each member's degree on the FFT grid
+    # Hermitian symmetry phi(-theta) = conj(phi(theta)): half the grid suffices. With
+    # z = 1 - p + p e^{i theta}: log|z| = log1p(-2 p (1 - p) (1 - cos theta)) / 2 and
+    # arg z = atan2(p sin theta, 1 - p + p cos theta), in real arithmetic.
+    theta = 2 * np.pi * np.arange(grid // 2 + 1) / grid
+    p_mat = np.zeros((n, n))
+    p_mat[a, b] = p_cell
+    p_mat[b, a] = p_cell
+    trials = np.broadcast_to(sizes[None, :].astype(np.float64), (n, n)).copy()
+    np.fill_diagonal(trials, sizes - 1.0)
+    one_minus_cos, sin_t, cos_t = 1 - np.cos(theta), np.sin(theta), np.cos(theta)
+    pmf_sum = np.zeros(grid)
+    step = max(1, MAX_EXACT_TERMS // (8 * n * len(theta)))  # rows of supernodes per chunk (bounded memory)
+    for lo in range(0, n, step):
+        hi = min(n, lo + step)
+        pm = p_mat[lo:hi, :, None]
+        tr = trials[lo:hi, :, None]
+        with np.errstate(divide="ignore", invalid="ignore"):
+            # z = 0 (log -inf) only at p = 1/2, theta = pi; a cell with no trials contributes nothing
+            log_abs = 0.5 * np.log1p(-2 * pm * (1 - pm) * one_minus_cos)
+            re = np.sum(np.where((pm == 0) | (tr == 0), 0.0, tr * log_abs), axis=1)
+        arg = np.arctan2(pm * sin_t, 1 - pm + pm * cos_t)
+        im = np.sum(tr * arg, axis=1)
+        phi = np.exp(re) * (np.cos(im) + 1j * np.sin(im))
+        # phi_j = E[exp(i theta_j D)] -> p_k = (1/L) sum_j phi_j exp(-i theta_j k) = irfft(conj(phi))_k
+        member_pmf = np.fft.irfft(np.conj(phi), n=grid, axis=1)
+        pmf_sum += weights[lo:hi] @ member_pmf
+    pmf = np.clip(pmf_sum[: top + 1], 0.0, None)
+    return pmf / pmf.sum(), "binomial"
+
+
+def released_histogram_degrees(table, n_bins: int | None = None) -> np.ndarray:
+    """Total released people per degree bin from a ``degree_histograms`` table.
+
+    The released counts are noisy; negative sums are clamped to 0. The last bin
+    counts people with ``cap`` or more contacts.
+    """
+    bins = np.asarray(table.column("degree_bin").to_numpy(zero_copy_only=False), dtype=np.int64)
+    people = np.asarray(table.column("people").to_numpy(zero_copy_only=False), dtype=np.float64)
+    n_bins = n_bins or int(bins.max()) + 1
+    return np.clip(np.bincount(bins, weights=people, minlength=n_bins), 0.0, None)

@@ -1,0 +1,135 @@
+"""Query workloads over the superedge table, as sparse linear maps on cells.
+
+Every workload is a matrix ``W`` (queries x cells) so that the answers are
+``W @ counts`` for the true and for the released table alike, and the noise
+variance of query ``q`` is ``var * sum_j W[q, j]**2`` (independent noise of
+variance ``var`` on every cell, before clamping). Building the matrices needs
+only public labels and sizes; evaluating them on the true table is the
+confidential part.
+
+Workloads
+---------
+``superedge_cells``
+    Every cell of the table (zeros included).
+``contact_matrix:<attribute>``
+    Cells summed by the value the attribute takes in each supernode's label:
+    one query per unordered pair of values. Rows and columns are the values as
+    the labels state them: a generalised value (``0-9`` beside ``5-9``) is its
+    own row, and ``*`` collects the supernodes whose label leaves the
+    attribute open. Each supernode is in exactly one row, so the query is a sum
+    of released cells and grouping loses nothing on it; what it cannot do is
+    split a generalised supernode into finer values.
+``cut_queries``
+    Edges between two random disjoint sets of supernodes (each supernode goes
+    to the first set, the second set or neither with probability 1/3).
+``supernode_degree_totals``
+    Sum of the degrees of each supernode's members (cells touching the
+    supernode, the diagonal cell counted twice).
+"""
+
+from __future__ import annotations
+
+__all__ = ["superedge_cells_workload", "contact_matrix_workload", "cut_workload", "degree_totals_workload",
+           "Workload"]
+
+from dataclasses import dataclass, field
+
+import numpy as np
+from scipy import sparse
+
+
+@dataclass
+class Workload:
+    """A named set of linear queries on the cells (``matrix`` is ``None`` for the identity)."""
+
+    name: str
+    matrix: sparse.csr_matrix | None
+    n_cells: int
+    labels: list = field(default_factory=list)
+    notes: list = field(default_factory=list)
+
+    def answer(self, cells: np.ndarray) -> np.ndarray:
+        """Answers for one table (``cells``: 1-D) or many (2-D: draws x cells -> draws x queries)."""
+        cells = np.asarray(cells, dtype=np.float64)
+        if self.matrix is None:
+            return cells
+        if cells.ndim == 1:
+            return self.matrix @ cells
+        return np.asarray((self.matrix @ cells.T).T)
+
+    def noise_variance(self, cell_variance: float) -> np.ndarray:
+        """Variance of each query answer from independent cell noise (before clamping)."""
+        if self.matrix is None:
+            return np.full(self.n_cells, float(cell_variance))
+        sq = self.matrix.multiply(self.matrix)
+        return np.asarray(sq.sum(axis=1)).ravel() * float(cell_variance)
+
+    @property
+    def n_queries(self) -> int:
+        return self.n_cells if self.matrix is None else self.matrix.shape[0]
+
+
+def superedge_cells_workload(n_cells: int) -> Workload:
+    """Every cell on its own."""
+    return Workload("superedge_cells", None, n_cells)
+
+
+def contact_matrix_workload(a, b, values, attribute: str) -> Workload:
+    """Cells summed by the (unordered) pair of label values of ``attribute``.
+
+    Parameters
+    ----------
+    a, b : numpy.ndarray
+        Supernodes of every cell (``a <= b``).
+    values : sequence of str
+        The attribute's value in each supernode's label.
+    """
+    values = np.asarray(values, dtype=object)
+    cats, code = np.unique(values.astype(str), return_inverse=True)
+    k = len(cats)
+    ca, cb = code[a], code[b]
+    lo, hi = np.minimum(ca, cb), np.maximum(ca, cb)
+    pair = lo * k - (lo * (lo - 1)) // 2 + (hi - lo)  # upper-triangle index of (lo, hi)
+    used, q = np.unique(pair, return_inverse=True)
+    n_cells = len(a)
+    mat = sparse.csr_matrix((np.ones(n_cells), (q, np.arange(n_cells))), shape=(len(used), n_cells))
+    ti, tj = np.triu_indices(k)
+    labels = [(str(cats[ti[u]]), str(cats[tj[u]])) for u in used]
+    generalised = int(sum(1 for c in cats if c == "*"))
+    notes = [f"{k} value(s) of '{attribute}' as stated in the supernode labels"
+             + (" (including '*' for supernodes that leave it open)" if generalised else "")]
+    return Workload(f"contact_matrix:{attribute}", mat, n_cells, labels=labels, notes=notes)
+
+
+def cut_workload(a, b, n_groups: int, n_queries: int, rng: np.random.Generator,
+                 max_entries: int = 50_000_000) -> Workload:
+    """Random cut queries: edges between two random disjoint sets of supernodes."""
+    n_cells = len(a)
+    n_queries = int(max(1, min(n_queries, max_entries // max(n_cells, 1))))
+    side = rng.integers(0, 3, size=(n_queries, n_groups))  # 0: first set, 1: second, 2: neither
+    rows, cols = [], []
+    step = max(1, 20_000_000 // max(n_cells, 1))
+    for lo in range(0, n_queries, step):
+        s = side[lo:lo + step]
+        inc = ((s[:, a] == 0) & (s[:, b] == 1)) | ((s[:, a] == 1) & (s[:, b] == 0))
+        r, c = np.nonzero(inc)
+        rows.append(r + lo)
+        cols.append(c)
+    rows = np.concatenate(rows)
+    cols = np.concatenate(cols)
+    mat = sparse.csr_matrix((np.ones(len(rows)), (rows, cols)), shape=(n_queries, n_cells))
+    return Workload("cut_queries", mat, n_cells,
+                    notes=[f"{n_queries} random cuts; each supernode joins set 1, set 2 or neither with "
+                           "probability 1/3"])
+
+
+def degree_totals_workload(a, b, n_groups: int) -> Workload:
+    """Sum of member degrees per supernode."""
+    n_cells = len(a)
+    idx = np.arange(n_cells)
+    diag = a == b
+    rows = np.concatenate([a, b[~diag]])
+    cols = np.concatenate([idx, idx[~diag]])
+    vals = np.concatenate([np.where(diag, 2.0, 1.0), np.ones(int((~diag).sum()))])
+    mat = sparse.csr_matrix((vals, (rows, cols)), shape=(n_groups, n_cells))
+    return Workload("supernode_degree_totals", mat, n_cells)

@@ -1,0 +1,508 @@
+"""The confidential report for the governance board: ``report.html`` and ``audit.json``.
+
+The folder holds true (unprotected) statistics of the private network. It is
+written outside the public bundle, atomically (a temporary sibling folder,
+synced, then renamed), and every page says CONFIDENTIAL.
+"""
+
+from __future__ import annotations
+
+__all__ = ["write_report", "render_html", "audit_to_json", "check_report_target", "default_report_path",
+           "REPORT_HTML", "AUDIT_JSON"]
+
+import base64
+import html
+import io
+import json
+import math
+import os
+import shutil
+from pathlib import Path
+
+import numpy as np
+
+from ..bundle._files import _rename_exchange, fsync_path, temp_sibling
+from ..bundle.datacard import CAUTIONS
+from ..errors import OutputError
+
+REPORT_HTML = "report.html"
+AUDIT_JSON = "audit.json"
+CONFIDENTIAL = ("CONFIDENTIAL: this report holds unprotected statistics of the private network. "
+                "For the governance board and the data steward only. Do not publish it, do not give it to "
+                "researchers, do not put it in the bundle.")
+DEFERENCE = ("This report supports a decision; it does not make one. Whether the release may leave the "
+             "organisation is for its data-protection officer and ethics board to decide, under the law that "
+             "applies (for example GDPR or HIPAA).")
+
+
+def default_report_path(bundle: Path) -> Path:
+    """The default report folder: a sibling of the bundle, ``<bundle>.report``."""
+    bundle = Path(bundle).absolute()
+    return bundle.parent / f"{bundle.name}.report"
+
+
+def check_report_target(target: Path, overwrite: bool, bundle: Path | None = None) -> None:
+    """Refuse a report folder that exists (unless ``overwrite`` and it is a report), or sits inside the bundle."""
+    target = Path(target).absolute()
+    if bundle is not None:
+        b = Path(bundle).absolute()
+        if target == b or b in target.parents:
+            raise OutputError(f"{target}: the confidential report must not be written inside the public bundle "
+                              f"{b}")
+        if target in b.parents:
+            raise OutputError(f"{target}: the report folder must not contain the bundle {b}")
+    if target.exists() or target.is_symlink():
+        if not target.is_dir():
+            raise OutputError(f"{target}: report path exists and is not a folder")
+        if not overwrite:
+            raise OutputError(f"{target}: report folder already exists (use --overwrite to replace it)")
+        if any(target.iterdir()) and not (target / AUDIT_JSON).exists():
+            raise OutputError(f"{target}: refusing to replace a non-empty folder that is not an aggpub report")
+    if not target.parent.exists():
+        raise OutputError(f"{target.parent}: parent folder of the report does not exist")
+    if not os.access(target.parent, os.W_OK | os.X_OK):
+        raise OutputError(f"{target.parent}: report folder is not writable")
+
+
+# ---------------------------------------------------------------------- JSON
+
+
+def _clean(obj):
+    if isinstance(obj, dict):
+        return {str(k): _clean(v) for k, v in obj.items() if not str(k).startswith("_")}
+    if isinstance(obj, (list, tuple)):
+        return [_clean(v) for v in obj]
+    if isinstance(obj, np.ndarray):
+        return [_clean(v) for v in obj.tolist()]
+    if isinstance(obj, (np.integer,)):
+        return int(obj)
+    if isinstance(obj, (float, np.floating)):
+        f = float(obj)
+        return f if math.isfinite(f) else None
+    if isinstance(obj, np.bool_):
+        return bool(obj)
+    return obj
+
+
+def audit_to_json(audit: dict) -> str:
+    """``audit.json`` text: every figure of the audit plus the plotted curves (NaN written as null)."""
+    body = _clean(audit)
+    plot = audit.get("_plot", {})
+    curves = {}
+    for key in ("true_pmf", "grouping_pmf", "block_pmf", "released_pmf"):
+        if key in plot:
+            curves[key] = [float(x) for x in np.asarray(plot[key])]
+    if curves:
+        body.setdefault("degree_distribution", {})["curves"] = curves
+    return json.dumps(body, indent=2, sort_keys=False, allow_nan=False) + "\n"
+
+
+# ---------------------------------------------------------------------- plots
+
+
+def _png(fig) -> str:
+    buf = io.BytesIO()
+    fig.savefig(buf, format="png", dpi=80)
+    import matplotlib.pyplot as plt
+
+    plt.close(fig)
+    return base64.b64encode(buf.getvalue()).decode("ascii")
+
+
+def _plots(audit: dict) -> dict:
+    import matplotlib
+
+    matplotlib.use("Agg", force=True)
+    import matplotlib.pyplot as plt
+
+    plot = audit.get("_plot", {})
+    out = {}
+    if "true_pmf" in plot and "released_pmf" in plot:
+        fig, (ax1, ax2) = plt.subplots(1, 2, figsize=(10, 4.2))
+        fig.subplots_adjust(left=0.08, right=0.98, bottom=0.16, top=0.9, wspace=0.25)
+        series = [("true network", plot["true_pmf"], "-", "#222222"),
+                  (plot.get("released_basis", "released"), plot["released_pmf"], "--", "#c0392b")]
+        if "grouping_pmf" in plot:
+            series.append(("aggregate without noise", plot["grouping_pmf"], ":", "#2471a3"))
+        for name, pmf, ls, colour in series:
+            pmf = np.asarray(pmf, dtype=float)
+            k = np.arange(len(pmf))
+            keep = (k >= 1) & (pmf > 1e-9)
+            ax1.plot(k[keep], pmf[keep], ls, color=colour, label=name, marker="o", markersize=2.5)
+            ccdf = 1 - np.cumsum(pmf)
+            keep2 = (k >= 1) & (ccdf > 1e-9)
+            ax2.plot(k[keep2], ccdf[keep2], ls, color=colour, label=name)
+        for ax, title in ((ax1, "share of people with degree k"), (ax2, "share with degree above k")):
+            ax.set_xscale("log")
+            ax.set_yscale("log")
+            ax.set_xlabel("degree k (log scale; degree 0 in the table)")
+            ax.set_title(title, fontsize=10)
+            ax.grid(True, which="both", alpha=0.3)
+        ax1.legend(fontsize=8)
+        out["degrees"] = _png(fig)
+    rel = plot.get("rel_errors", {})
+    if rel:
+        fig, ax = plt.subplots(figsize=(8, 4.2))
+        fig.subplots_adjust(left=0.1, right=0.97, bottom=0.16, top=0.9)
+        floor = 1e-4
+        for name, r in rel.items():
+            r = np.sort(np.maximum(np.asarray(r, dtype=float), floor))
+            ax.plot(r, np.arange(1, len(r) + 1) / len(r), label=name)
+        ax.set_xscale("log")
+        ax.set_xlabel(f"relative error |released - true| / max(true, s)  (values below {floor:g} drawn at {floor:g})")
+        ax.set_ylabel("share of queries at or below")
+        ax.set_title("error distribution of each query workload", fontsize=10)
+        ax.grid(True, which="both", alpha=0.3)
+        ax.legend(fontsize=8)
+        out["errors"] = _png(fig)
+    comps = audit.get("budget", {}).get("components") or []
+    if comps:
+        fig, ax = plt.subplots(figsize=(7, 2.4))
+        fig.subplots_adjust(left=0.05, right=0.97, bottom=0.55, top=0.85)
+        names = [c["name"] for c in comps]
+        eps = [c["epsilon"] for c in comps]
+        total = audit["budget"].get("epsilon_total") or sum(eps)
+        unspent = max(0.0, total - sum(eps))
+        left = 0.0
+        colours = ["#2471a3", "#c0392b", "#239b56", "#b9770e", "#7d3c98", "#566573"]
+        for i, (n, e) in enumerate(zip(names, eps)):
+            ax.barh([0], [e], left=left, color=colours[i % len(colours)], label=f"{n}: {e:.3g}")
+            left += e
+        if unspent > 1e-12:
+            ax.barh([0], [unspent], left=left, color="#d5d8dc", label=f"unspent: {unspent:.3g}")
+        ax.set_yticks([])
+        ax.set_xlim(0, max(total, left))
+        ax.set_xlabel("epsilon")
+        ax.set_title(f"privacy budget of this release (total epsilon {total:g})", fontsize=10)
+        ax.legend(fontsize=8, loc="upper center", bbox_to_anchor=(0.5, -0.6), ncol=3)
+        out["budget"] = _png(fig)
+    if "sizes" in plot:
+        sizes = np.asarray(plot["sizes"])
+        fig, ax = plt.subplots(figsize=(7, 3.4))
+        fig.subplots_adjust(left=0.1, right=0.97, bottom=0.17, top=0.9)
+        ax.hist(sizes, bins=min(40, max(5, len(sizes) // 4)), color="#566573")
+        ax.axvline(audit["grouping"]["min_size_policy"], color="#c0392b", ls="--", label="min_size")
+        ax.set_xlabel("people in the supernode")
+        ax.set_ylabel("supernodes")
+        ax.set_title("supernode sizes", fontsize=10)
+        ax.legend(fontsize=8)
+        out["sizes"] = _png(fig)
+    return out
+
+
+# ---------------------------------------------------------------------- HTML
+
+
+def _fmt(x, digits=4):
+    if x is None:
+        return "n/a"
+    if isinstance(x, bool):
+        return "yes" if x else "no"
+    if isinstance(x, (int, np.integer)):
+        return f"{int(x):,}"
+    if isinstance(x, (float, np.floating)):
+        if not math.isfinite(float(x)):
+            return "n/a"
+        return f"{float(x):.{digits}g}"
+    return html.escape(str(x))
+
+
+def _table(header, rows, cls="") -> str:
+    head = "".join(f"<th>{html.escape(h)}</th>" for h in header)
+    body = "".join("<tr>" + "".join(f"<td>{c}</td>" for c in r) + "</tr>" for r in rows)
+    return f'<table class="{cls}"><thead><tr>{head}</tr></thead><tbody>{body}</tbody></table>'
+
+
+def _img(key, plots, alt) -> str:
+    if key not in plots:
+        return ""
+    return f'<figure><img class="plot" alt="{html.escape(alt)}" src="data:image/png;base64,{plots[key]}"></figure>'
+
+
+def _spread_text(mc):
+    if not mc:
+        return "n/a"
+    return f"{_fmt(mc['mean'])} &plusmn; {_fmt(mc['sd'], 2)} [{_fmt(mc['p05'])}, {_fmt(mc['p95'])}]"
+
+
+_CSS = """
+body { font-family: Georgia, 'DejaVu Serif', serif; margin: 0; color: #1b1b1b; background: #fbfbf8; }
+main { max-width: 1000px; margin: 0 auto; padding: 4.5em 1.5em 5em; }
+.mark { background: #7b241c; color: #fff; font: bold 13px/1.4 'DejaVu Sans', Arial, sans-serif;
+        padding: 6px 14px; text-align: center; letter-spacing: 0.02em; }
+.mark.top { position: fixed; top: 0; left: 0; right: 0; z-index: 10; }
+.mark.bottom { position: fixed; bottom: 0; left: 0; right: 0; z-index: 10; }
+h1 { font-size: 1.6em; margin-bottom: 0.2em; } h2 { border-bottom: 2px solid #7b241c; padding-bottom: 3px;
+     margin-top: 2em; font-size: 1.25em; }
+table { border-collapse: collapse; margin: 0.8em 0; font: 13px 'DejaVu Sans', Arial, sans-serif; }
+th, td { border: 1px solid #c8c8c0; padding: 4px 8px; text-align: right; vertical-align: top; }
+th { background: #ecebe4; } td:first-child, th:first-child { text-align: left; }
+.pass { color: #1e6b34; font-weight: bold; } .fail { color: #a11b1b; font-weight: bold; }
+.verdict { font-size: 1.2em; padding: 0.6em 1em; border-left: 6px solid; background: #fff; }
+.verdict.pass { border-color: #1e6b34; } .verdict.fail { border-color: #a11b1b; }
+.note { color: #555; font-size: 0.92em; } img.plot { max-width: 100%; border: 1px solid #ddd; background: #fff; }
+.caution { background: #fff7e6; border: 1px solid #e0b050; padding: 0.8em 1em; }
+@media print {
+  .mark.top, .mark.bottom { position: fixed; -webkit-print-color-adjust: exact; print-color-adjust: exact; }
+  main { padding-top: 3em; padding-bottom: 3em; } h2 { break-after: avoid; } figure { break-inside: avoid; }
+}
+"""
+
+_SCRIPT = """
+<script>
+window.addEventListener('load', function () {
+  var imgs = document.querySelectorAll('img.plot'), ok = 0;
+  imgs.forEach(function (im) {
+    var good = im.complete && im.naturalWidth > 0;
+    im.setAttribute('data-loaded', good ? 'yes' : 'no');
+    if (good) { ok += 1; }
+  });
+  var p = document.getElementById('image-check');
+  p.setAttribute('data-images', String(imgs.length));
+  p.setAttribute('data-images-loaded', String(ok));
+  p.textContent = 'Figures shown: ' + ok + ' of ' + imgs.length + '.';
+});
+</script>
+"""
+
+
+def render_html(audit: dict) -> str:
+    """The board report as one self-contained HTML page (figures embedded as PNG)."""
+    plots = _plots(audit)
+    gate = audit.get("gate", {"passed": True, "checked": []})
+    dd = audit.get("degree_distribution", {})
+    parts = []
+    title = audit.get("title") or "release"
+    parts.append(f"<h1>Utility audit: {html.escape(str(title))}</h1>")
+    parts.append(f'<p class="note">Made {html.escape(str(audit.get("created_utc")))} from the true network '
+                 f'({_fmt(audit["network"]["people"])} people, {_fmt(audit["network"]["contacts"])} contacts) '
+                 "and the release built from it, before publication.</p>")
+    if audit.get("seeded_release"):
+        parts.append('<p class="verdict fail">This release was built with a fixed noise seed (tests only): '
+                     "it is NOT private and must not be published.</p>")
+
+    # decision
+    parts.append("<h2>1. Gate decision</h2>")
+    if gate.get("checked"):
+        verdict = "passed: the release may be published" if gate["passed"] else \
+            "FAILED: the release was refused and no bundle was written"
+        parts.append(f'<p class="verdict {"pass" if gate["passed"] else "fail"}">Gate {verdict}.</p>')
+        rows = []
+        for key in gate["checked"]:
+            e = gate[key]
+            what = e["measures"] + (f" ({html.escape(e['attribute'])})" if e.get("attribute") else "")
+            res = '<span class="pass">pass</span>' if e["passed"] else '<span class="fail">fail</span>'
+            meas = _fmt(e["measured"]) if e["measured"] is not None else html.escape(e.get("reason", "n/a"))
+            rows.append([f"<code>{key}</code>", what, _fmt(e["allowed"]), meas, res])
+        parts.append(_table(["threshold", "measures", "allowed", "measured", "result"], rows))
+        if not gate["passed"]:
+            parts.append('<p class="note">The noise of this attempt was drawn on the private data, so its '
+                         "privacy budget counts as spent even though nothing was published.</p>")
+    else:
+        parts.append('<p class="verdict pass">The policy sets no gate thresholds; nothing was checked.</p>')
+
+    # degree distribution
+    parts.append("<h2>2. Degree distribution</h2>")
+    if "ks" in dd:
+        parts.append(f'<p class="note">Released side: {html.escape(dd.get("basis", ""))}. True mean degree '
+                     f'{_fmt(dd.get("true_mean_degree"))}, largest degree {_fmt(dd.get("true_max_degree"))}.</p>')
+        parts.append(_img("degrees", plots, "degree distribution, true against released, log axes"))
+        rows = []
+        for label, key in (("release against true network", None), ("grouping alone (no noise)", "grouping_loss"),
+                           ("added by noise (difference)", "noise_added")):
+            src = dd if key is None else dd.get(key, {})
+            rows.append([label, _fmt(src.get("ks")), _fmt(src.get("wasserstein1")), _fmt(src.get("l1"))])
+        mc = dd.get("monte_carlo")
+        if mc:
+            rows.append(["fresh noise draws: mean &plusmn; sd [5%, 95%]", _spread_text(mc.get("ks")),
+                         _spread_text(mc.get("wasserstein1")), _spread_text(mc.get("l1"))])
+        parts.append(_table(["", "KS distance", "Wasserstein-1", "L1"], rows))
+        parts.append('<p class="note">KS: largest gap between the two cumulative distributions. Wasserstein-1: '
+                     "area between them, in contacts per person. L1: sum of absolute differences of the shares. "
+                     "Distances do not add up, so the noise row is a difference of two distances.</p>")
+    else:
+        parts.append(f"<p>{html.escape(dd.get('basis', 'not measured'))}</p>")
+
+    # queries
+    parts.append("<h2>3. Query error</h2>")
+    q = audit.get("queries", {})
+    if q:
+        rows = []
+        for name, w in q.items():
+            mc = w.get("monte_carlo", {})
+            rows.append([html.escape(name), _fmt(w["n_queries"]), _fmt(w["mean_absolute_error"]),
+                         _fmt(w.get("expected_mean_absolute_error")), _fmt(w["mean_signed_error"]),
+                         _fmt(w["rmse"]), _fmt(w.get("expected_rmse")), _fmt(w["median_relative_error"]),
+                         _fmt(w["p90_relative_error"]), _fmt(w["p99_relative_error"]),
+                         _spread_text(mc.get("mean_absolute_error"))])
+        parts.append(_table(["workload", "queries", "mean abs. error", "expected (variance)", "mean signed error",
+                             "RMSE", "expected RMSE", "median rel. error", "p90 rel. error", "p99 rel. error",
+                             "mean abs. error, fresh draws: mean ± sd [5%, 95%]"], rows))
+        s = audit["settings"]["sanity_bound"]
+        parts.append(f'<p class="note">Relative error is |released &minus; true| / max(true, s) with sanity bound '
+                     f"s = {_fmt(s)} ({html.escape(audit['settings']['sanity_bound_rule'])}). Expected figures "
+                     "come from each mechanism's variance before clamping; clamping noisy counts at 0 pushes the "
+                     "many empty cells up, which shows as a positive mean signed error and makes sums of cells "
+                     "err more than the variance alone predicts. The spread column re-draws the noise on the "
+                     "true table. Every workload here is an exact sum of superedge cells, so grouping alone "
+                     "loses nothing on it; all of its error is noise.</p>")
+        cells = q.get("superedge_cells", {})
+        if "released_total_minus_true_total" in cells:
+            diff = cells["released_total_minus_true_total"]
+            parts.append(f'<p class="note">All released cells together hold {_fmt(int(abs(diff)))} contacts '
+                         f'{"more" if diff >= 0 else "fewer"} than the true network '
+                         f'({_fmt(cells.get("zero_cells_true"))} of {_fmt(cells["n_queries"])} cells are truly '
+                         "empty). Researchers summing many cells inherit this bias.</p>")
+        for name, w in q.items():
+            for n in w.get("notes", []):
+                parts.append(f'<p class="note"><b>{html.escape(name)}</b>: {html.escape(n)}</p>')
+        parts.append(_img("errors", plots, "cumulative distribution of relative errors per workload"))
+    else:
+        parts.append("<p>No superedge counts were released; no query workload was measured.</p>")
+
+    # structure
+    parts.append("<h2>4. Structure of networks sampled from the release</h2>")
+    st = audit.get("structure", {})
+    if "true" in st:
+        keys = [k for k in st["true"] if k != "people"]
+        rows = []
+        for k in keys:
+            rows.append([html.escape(k), _fmt(st["true"][k]),
+                         _spread_text(st["sampled_from_true_aggregate"].get(k)),
+                         _spread_text(st["sampled_from_release"].get(k))])
+        parts.append(_table(["statistic", "true network", "sampled from the aggregate without noise "
+                             "(mean ± sd [5%, 95%])", "sampled from the release"], rows))
+        parts.append(f'<p class="note">{html.escape(st["note"])}. Sampler: {html.escape(st["sampler"])}. '
+                     "Assortativity by an attribute uses the attribute as the supernode labels state it.</p>")
+    else:
+        parts.append(f"<p>Skipped: {html.escape(str(st.get('skipped', 'not run')))}.</p>")
+
+    # budget
+    parts.append("<h2>5. Privacy budget</h2>")
+    b = audit.get("budget", {})
+    parts.append(f"<p>Privacy unit <b>{html.escape(str(b.get('privacy_unit')))}</b>, total epsilon "
+                 f"<b>{_fmt(b.get('epsilon_total'))}</b>, spent {_fmt(b.get('epsilon_spent'))}.</p>")
+    parts.append(_img("budget", plots, "privacy budget by component"))
+    rows = [[html.escape(c["name"]), _fmt(c["epsilon"]), _fmt(c["sensitivity"]), html.escape(c["mechanism"]),
+             _fmt(c["scale"])] for c in b.get("components", [])]
+    if rows:
+        parts.append(_table(["component", "epsilon", "sensitivity", "mechanism", "noise scale"], rows))
+
+    # grouping
+    parts.append("<h2>6. Grouping</h2>")
+    g = audit.get("grouping", {})
+    parts.append(f"<p>Method <b>{html.escape(str(g.get('method')))}</b> "
+                 f"({'public data only' if g.get('public') else 'uses private data; budget charged'}): "
+                 f"{_fmt(g.get('supernodes'))} supernodes of {_fmt(g.get('size_min'))} to {_fmt(g.get('size_max'))} "
+                 f"people (median {_fmt(g.get('size_median'))}; policy minimum {_fmt(g.get('min_size_policy'))}).</p>")
+    parts.append(_img("sizes", plots, "histogram of supernode sizes"))
+    rows = []
+    for attr, info in g.get("attributes", {}).items():
+        rows.append([html.escape(attr)] + [f"{_fmt(info[k]['supernodes'])} / {_fmt(info[k]['people'])}"
+                                           for k in ("exact", "generalised", "residual")]
+                    + [_fmt(info["distinct_label_values"])])
+    if rows:
+        parts.append(_table(["attribute", "exact value (supernodes / people)", "generalised value",
+                             "left open (*)", "distinct label values"], rows))
+    for n in g.get("notes", []):
+        parts.append(f'<p class="note">{html.escape(n)}</p>')
+
+    # cautions
+    parts.append("<h2>7. Cautions</h2>")
+    parts.append(f'<div class="caution"><p>{html.escape(CAUTIONS)}</p><p>{html.escape(DEFERENCE)}</p></div>')
+    for n in audit.get("notes", []):
+        parts.append(f'<p class="note">{html.escape(n)}</p>')
+    parts.append('<p id="image-check" class="note">Figures: not yet checked.</p>')
+
+    body = "\n".join(parts)
+    mark = html.escape(CONFIDENTIAL)
+    return f"""<!DOCTYPE html>
+<html lang="en"><head><meta charset="utf-8">
+<meta name="robots" content="noindex">
+<title>CONFIDENTIAL utility audit: {html.escape(str(title))}</title>
+<style>{_CSS}</style></head>
+<body>
+<div class="mark top">{mark}</div>
+<main>
+{body}
+</main>
+<div class="mark bottom">{mark}</div>
+{_SCRIPT}
+</body></html>
+"""
+
+
+# ---------------------------------------------------------------------- writing
+
+
+def _write_synced(path: Path, text: str) -> None:
+    with open(path, "w", encoding="utf-8") as fh:
+        fh.write(text)
+        fh.flush()
+        os.fsync(fh.fileno())
+
+
+def _remove_abandoned(target: Path) -> None:
+    """Remove temporary report folders a killed earlier run left beside ``target``.
+
+    Only hidden siblings named like this writer's own (``.<name>.tmp-*``,
+    ``.<name>.old-*``) holding nothing but report files are removed.
+    """
+    for pattern in (f".{target.name}.tmp-*", f".{target.name}.old-*"):
+        for p in target.parent.glob(pattern):
+            try:
+                if p.is_dir() and not p.is_symlink() and {c.name for c in p.iterdir()} <= {AUDIT_JSON, REPORT_HTML}:
+                    shutil.rmtree(p, ignore_errors=True)
+            except OSError:
+                pass
+
+
+def write_report(directory, audit: dict, *, overwrite: bool = False, bundle=None) -> Path:
+    """Write ``report.html`` and ``audit.json`` into a new folder, atomically.
+
+    Parameters
+    ----------
+    directory : path
+        Report folder to create (must not be inside the bundle).
+    audit : dict
+        From :func:`aggpub.audit.audit_release`.
+    overwrite : bool
+        Replace an existing report folder.
+    bundle : path, optional
+        The bundle it belongs to (the report is refused inside it).
+
+    Returns
+    -------
+    pathlib.Path
+        The report folder.
+    """
+    target = Path(directory).absolute()
+    check_report_target(target, overwrite, bundle)
+    json_text = audit_to_json(audit)
+    html_text = render_html(audit)
+    _remove_abandoned(target)
+    tmp = temp_sibling(target, "tmp")
+    try:
+        tmp.mkdir()
+        _write_synced(tmp / AUDIT_JSON, json_text)
+        _write_synced(tmp / REPORT_HTML, html_text)
+        fsync_path(tmp)
+        check_report_target(target, overwrite, bundle)
+        if target.exists():
+            if not _rename_exchange(tmp, target):
+                old = temp_sibling(target, "old")
+                os.rename(target, old)
+                os.rename(tmp, target)
+                shutil.rmtree(old, ignore_errors=True)
+            else:
+                shutil.rmtree(tmp, ignore_errors=True)
+        else:
+            os.rename(tmp, target)
+        fsync_path(target.parent)
+    except OSError as exc:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise OutputError(f"{target}: cannot write the report: {exc.strerror or exc}") from None
+    finally:
+        if tmp.exists() and tmp != target:
+            shutil.rmtree(tmp, ignore_errors=True)
+    return target

@@ -1,0 +1,624 @@
+"""The trade-off explorer: expected and observed errors over a grid of epsilon x min_size (x unit).
+
+An internal planning aid for the data steward. For every grid point it reports
+the errors a release at that setting would have -- analytic expectations from
+the mechanism's variance beside a few real noise draws -- and names the cheapest
+setting (smallest epsilon) that meets the policy's ``[gate]`` thresholds.
+
+Why it is fast: the true statistics depend on the grouping only, not on epsilon.
+People are grouped once per ``(unit, min_size)`` (once per grid point only when
+the grouping itself is noisy, e.g. unit ``person``, whose sizes are private) and
+the engine counts superedges once per grouping; each epsilon then costs only a
+few vectorised noise draws on those counts.
+
+It is confidential and not a release: choosing parameters by looking at errors
+measured on the private data is itself a data-dependent step that no epsilon
+covers, and the final release draws fresh noise. Nothing here is written to a
+bundle, charged to a ledger, or meant to leave the steward's desk.
+
+References
+----------
+A. Ghosh, T. Roughgarden, M. Sundararajan, "Universally utility-maximizing
+privacy mechanisms", STOC 2009 (discrete Laplace noise, its variance and E|Z|).
+
+X. Xiao, G. Wang, J. Gehrke, "Differential privacy via wavelet transforms",
+ICDE 2010 (relative error with a sanity bound).
+
+M. Hay, G. Miklau, D. Jensen, D. Towsley, P. Weis, "Resisting structural
+re-identification in anonymized social networks", PVLDB 1(1), 2008 (degree
+distribution implied by a supergraph read as a block model).
+"""
+
+from __future__ import annotations
+
+__all__ = ["SweepResult", "run_sweep", "write_sweep", "parse_grid", "PLANNING_NOTE", "SWEEP_COLUMNS"]
+
+import csv
+import dataclasses
+import io
+import json
+import math
+import os
+import shutil
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from . import components as comp
+from .errors import OutputError, PolicyError, PrivacyError, UsageError
+from .noise.accountant import ReleaseBudget
+from .noise.mechanisms import GeometricMechanism
+from .noise.sampler import make_random_source
+from .policy import PRIVACY_UNITS, ReleasePolicy, epsilon_shares, read_policy
+
+PLANNING_NOTE = (
+    "INTERNAL PLANNING AID - CONFIDENTIAL, NOT A RELEASE. These figures were measured on the private data. "
+    "Choosing parameters from them is itself a data-dependent step that no epsilon covers, and the final "
+    "release draws fresh noise, so its errors will differ from these. Do not publish or share this folder.")
+
+#: Marker line of a sweep folder's README.txt (lets --overwrite replace only a sweep folder).
+_MARKER = "aggpub trade-off sweep"
+
+SWEEP_COLUMNS = [
+    ("unit", "privacy unit"),
+    ("min_size", "minimum supernode size (k)"),
+    ("epsilon", "total epsilon of the release"),
+    ("supernodes", "number of supernodes of the grouping"),
+    ("cells", "superedge cells released"),
+    ("superedge_epsilon", "epsilon share of the superedge counts"),
+    ("noise_scale", "discrete Laplace scale of each superedge cell (sensitivity / epsilon share)"),
+    ("expected_superedge_mean_absolute_error", "analytic E|Z| per cell, 2a/(1-a^2), before clamping"),
+    ("expected_superedge_mean_absolute_error_clamped",
+     "analytic mean over cells of E|clip(T+Z, 0, cap) - T| (exact law of the clamped error)"),
+    ("sparse_threshold", "sparse release: noisy cells below it are dropped (empty: dense release)"),
+    ("superedge_mean_absolute_error", "observed, mean over the noise draws (clamped as released)"),
+    ("superedge_mean_absolute_error_sd", "spread over the draws"),
+    ("superedge_median_relative_error", "observed, mean over draws; relative error with sanity bound"),
+    ("contact_matrix_attribute", "attribute of the contact matrix (the gate's)"),
+    ("expected_contact_matrix_median_relative_error_unclamped",
+     "median over contact-matrix cells of E|noise sum| / max(true, s), exact law, before clamping"),
+    ("expected_contact_matrix_median_relative_error",
+     "the same with clamping: exact per-cell bias and variance of the clamped error, sum by normal law"),
+    ("contact_matrix_median_relative_error", "observed, mean over draws"),
+    ("contact_matrix_median_relative_error_max", "observed, worst draw"),
+    ("contact_matrix_p90_relative_error", "observed, mean over draws"),
+    ("degree_ks", "degree-distribution KS distance, observed, mean over draws"),
+    ("degree_ks_max", "worst draw"),
+    ("degree_wasserstein1", "degree-distribution Wasserstein-1, observed, mean over draws"),
+    ("degree_wasserstein1_max", "worst draw"),
+    ("degree_ks_grouping_only", "KS of the aggregate without noise (what grouping alone loses)"),
+    ("degree_wasserstein1_grouping_only", "Wasserstein-1 of the aggregate without noise"),
+    ("degree_basis", "block_model (from superedges) or histograms (released degree histograms)"),
+    ("gate_passed", "policy thresholds met by the mean over draws"),
+    ("gate_passed_every_draw", "policy thresholds met by every draw"),
+    ("gate_failed", "thresholds not met (mean over draws)"),
+    ("draws", "noise draws at this grid point"),
+]
+
+
+def parse_grid(text: str, kind, name: str) -> list:
+    """``"0.5,1,2"`` -> ``[0.5, 1.0, 2.0]`` (sorted, unique), naming the option on error."""
+    items = [t.strip() for t in str(text).split(",") if t.strip()]
+    if not items:
+        raise UsageError(f"'{name}': give a comma-separated list, got {text!r}")
+    out = []
+    for t in items:
+        try:
+            v = kind(t)
+        except ValueError:
+            raise UsageError(f"'{name}': {t!r} is not a valid {kind.__name__}") from None
+        if kind is float and (not math.isfinite(v) or v <= 0):
+            raise UsageError(f"'{name}': every epsilon must be a finite number > 0, got {t!r}")
+        if kind is int and v < 1:
+            raise UsageError(f"'{name}': every minimum size must be an integer >= 1, got {t!r}")
+        if kind is str and v not in PRIVACY_UNITS:
+            raise UsageError(f"'{name}': unknown privacy unit {t!r} (choose from {', '.join(PRIVACY_UNITS)})")
+        out.append(v)
+    return sorted(set(out), key=out.index) if kind is str else sorted(set(out))
+
+
+@dataclass
+class SweepResult:
+    """Rows of the sweep (one dict per grid point), the cheapest passing setting and notes."""
+
+    rows: list
+    cheapest: dict | None
+    thresholds: dict
+    notes: list = field(default_factory=list)
+    timings: dict = field(default_factory=dict)
+    network: dict = field(default_factory=dict)
+
+    def as_dict(self) -> dict:
+        return {"planning_note": PLANNING_NOTE, "rows": self.rows, "cheapest": self.cheapest,
+                "thresholds": self.thresholds, "notes": self.notes, "timings": self.timings,
+                "network": self.network}
+
+
+def _silent(message: str) -> None:
+    pass
+
+
+def _policy_at(policy: ReleasePolicy, unit: str, epsilon: float, min_size: int, max_contacts) -> ReleasePolicy:
+    privacy = dataclasses.replace(policy.privacy, unit=unit, epsilon=float(epsilon),
+                                  max_contacts=max_contacts if unit == "person" else None)
+    grouping = dataclasses.replace(policy.grouping, min_size=int(min_size))
+    return policy.replace(privacy=privacy, grouping=grouping, ledger=None)
+
+
+def _expected_abs_sum(scale: float, m: np.ndarray) -> np.ndarray:
+    """``E|S|`` for ``S`` a sum of ``m`` discrete Laplace draws of ``scale`` (exact law, one per distinct m)."""
+    from .researcher import sum_noise_pmf
+
+    out = np.zeros(len(m))
+    for mv in np.unique(m):
+        if mv == 0:
+            continue
+        pmf = sum_noise_pmf([scale], [int(mv)])
+        if pmf is None:  # pragma: no cover - enormous scales: normal approximation
+            var = mv * 2 * math.exp(-1 / scale) / (-math.expm1(-1 / scale)) ** 2
+            val = math.sqrt(2 * var / math.pi)
+        else:
+            val = 2.0 * float(np.dot(np.arange(len(pmf)), pmf))
+        out[m == mv] = val
+    return out
+
+
+def _clamped_error_moments(scale: float, true, cap, chunk_values: int = 4_000_000):
+    """Per cell: mean, variance and mean absolute value of ``clip(T + Z, 0, cap) - T``.
+
+    ``Z`` is discrete Laplace of ``scale``; the error equals ``clip(Z, -T, cap - T)``,
+    whose law depends on ``(T, cap - T)`` only through their values up to ``L``, the
+    point beyond which the noise has mass ``2 alpha^(L+1) / (1 + alpha) < e^-40``. The
+    moments are computed once per distinct pair ``(min(T, L), min(cap - T, L))`` on the
+    grid ``-L..L`` (vectorised over the pairs, in chunks).
+    """
+    alpha = math.exp(-1.0 / scale)
+    L = int(math.ceil(40.0 * scale)) + 2
+    true = np.asarray(true, dtype=np.int64)
+    lo = np.clip(true, 0, L)
+    hi = np.clip(np.asarray(cap, dtype=np.int64) - true, 0, L)
+    key = lo * (L + 1) + hi
+    present = np.zeros((L + 1) ** 2, dtype=bool)
+    present[key] = True
+    ids = np.flatnonzero(present)
+    z = np.arange(-L, L + 1, dtype=np.float64)
+    pmf = alpha ** np.abs(z)
+    pmf /= pmf.sum()
+    mean = np.empty(len(ids))
+    second = np.empty(len(ids))
+    absm = np.empty(len(ids))
+    step = max(1, chunk_values // len(z))
+    for s in range(0, len(ids), step):
+        part = ids[s:s + step]
+        e = np.clip(z[None, :], -(part // (L + 1))[:, None], (part % (L + 1))[:, None])
+        mean[s:s + step] = e @ pmf
+        second[s:s + step] = (e * e) @ pmf
+        absm[s:s + step] = np.abs(e) @ pmf
+    where = np.searchsorted(ids, key)
+    m = mean[where]
+    return m, np.maximum(second[where] - m * m, 0.0), absm[where]
+
+
+def _normal_abs_mean(mu, var):
+    """``E|X|`` for ``X ~ Normal(mu, var)`` (folded normal mean)."""
+    from scipy.stats import norm
+
+    sd = np.sqrt(np.maximum(var, 1e-300))
+    return sd * math.sqrt(2 / math.pi) * np.exp(-mu * mu / (2 * sd * sd)) + mu * (1 - 2 * norm.cdf(-mu / sd))
+
+
+class _GroupingTruth:
+    """True statistics of one grouping (computed once, reused by every epsilon)."""
+
+    def __init__(self, network, grouping, true_hist, label_cols, s_bound, degrees_cap):
+        from .audit import degrees as deg
+        from .audit import queries as qw
+        from .audit.metrics import distribution_distances
+
+        self.grouping = grouping
+        self.n_groups = grouping.n_supernodes
+        self.true_sizes = grouping.sizes()
+        self.pub_sizes = comp.released_sizes(grouping)
+        nz_a, nz_b, nz_c = network.engine.superedge_counts(grouping.assignment)
+        self.st = comp.dense_truth(self.n_groups, nz_a, nz_b, nz_c)
+        self.cap_pub = comp.possible_pairs(self.pub_sizes, self.st.a, self.st.b)
+        labels = {c: [str(x) for x in grouping.labels.column(c).to_pylist()] for c in label_cols}
+        self.workloads = {c: qw.contact_matrix_workload(self.st.a, self.st.b, labels[c], c) for c in label_cols}
+        self.cm_truth = {c: w.answer(self.st.count.astype(np.float64)) for c, w in self.workloads.items()}
+        self.cm_cells = {c: np.asarray(w.matrix.sum(axis=1)).ravel().astype(np.int64)
+                         for c, w in self.workloads.items()}
+        self.s_bound = s_bound
+        self.true_hist = true_hist
+        self.hist_truth = None
+        if degrees_cap is not None:  # degree histograms released: the audit compares those
+            self.hist_truth = np.asarray(network.engine.degree_histograms(grouping.assignment, self.n_groups,
+                                                                          degrees_cap), dtype=np.int64)
+            top = degrees_cap
+            self.true_capped = np.concatenate([true_hist[:top], [true_hist[top:].sum()]]).astype(np.float64)
+            self.grouping_only = {"ks": 0.0, "wasserstein1": 0.0}
+            self.deg_method = None
+        else:
+            pmf, self.deg_method = deg.implied_degree_pmf(self.st.a, self.st.b, self.st.count, self.true_sizes)
+            self.grouping_only = distribution_distances(true_hist, pmf)
+
+
+def run_sweep(policy, edges=None, people=None, *, epsilons, min_sizes, units=None, max_contacts=None,
+              draws: int = 3, seed: int | None = None, progress=None, network=None, engine: str = "duckdb",
+              source_column=None, target_column=None, node_column=None, drop_unknown=None,
+              sanity_bound: float | None = None, memory_limit: str | None = None,
+              debug: bool = False) -> SweepResult:
+    """Expected and observed errors of a release over a grid of settings (confidential planning aid).
+
+    Parameters
+    ----------
+    policy : ReleasePolicy or path
+        The base policy; each grid point replaces its epsilon, min_size and unit.
+    edges, people : path or pyarrow.Table
+        The private inputs (not needed when ``network`` is given).
+    epsilons : sequence of float
+        Total epsilon of the release at each grid point.
+    min_sizes : sequence of int
+    units : sequence of str, optional
+        Privacy units to try (default: the policy's). ``person`` needs ``max_contacts``
+        (from the policy or the argument).
+    max_contacts : int, optional
+        Contact cap for unit ``person`` (default: the policy's).
+    draws : int, default 3
+        Real noise draws per grid point (vectorised over cells).
+    seed : int, optional
+        Seed of the planning draws (they are never published either way).
+    progress : callable, optional
+        Stage messages (the CLI prints them on stderr).
+    network : aggpub.Network, optional
+        An already ingested network (then ``edges`` and ``people`` are ignored).
+    sanity_bound : float, optional
+        ``s`` of the relative errors (default as the auditor: 0.1% of the contacts, at least 1).
+    memory_limit : str, optional
+        Memory cap of the counting engine (e.g. ``"4GB"``).
+
+    Returns
+    -------
+    SweepResult
+    """
+    from .audit.degrees import implied_degree_pmf, released_histogram_degrees, true_degree_histogram
+    from .audit.gate import evaluate_gate
+    from .audit.metrics import DEFAULT_SANITY_FRACTION, distribution_distances, error_summary
+    from .engines import make_engine
+    from .ingest import load_network
+    from .pipeline import _needed_attributes, make_grouping
+
+    progress = progress or _silent
+    t_start = time.perf_counter()
+    if not isinstance(policy, ReleasePolicy):
+        policy = read_policy(policy)
+    epsilons = sorted(set(float(e) for e in epsilons))
+    min_sizes = sorted(set(int(k) for k in min_sizes))
+    units = list(units) if units else [policy.privacy.unit]
+    if not epsilons or not min_sizes:
+        raise UsageError("the sweep needs at least one epsilon and one minimum size")
+    if isinstance(draws, bool) or not isinstance(draws, int) or draws < 1:
+        raise UsageError(f"'draws' must be an integer >= 1, got {draws!r}")
+    D = max_contacts if max_contacts is not None else policy.privacy.max_contacts
+    if "person" in units and D is None:
+        raise PolicyError("unit 'person' needs the promised contact cap: set 'privacy.max_contacts' in the "
+                          "policy (with unit = 'person') or pass --max-contacts")
+    if not policy.components.superedge_counts.enabled:
+        raise PolicyError("'components.superedge_counts.enabled' is false: the sweep measures superedge counts")
+    early_notes = []
+    if policy.components.weight_totals.enabled:
+        early_notes.append("weight totals are not measured by the sweep (their share of epsilon is still "
+                           "taken from the budget at every grid point)")
+        progress(f"note: {early_notes[-1]}")
+    source = make_random_source(seed)
+
+    t0 = time.perf_counter()
+    if network is None:
+        inp = policy.input
+        progress("reading edges and people (once for the whole sweep)")
+        network = load_network(edges, people, source=source_column or inp.source,
+                               target=target_column or inp.target, node=node_column or inp.node, weight=None,
+                               drop_unknown=inp.drop_unknown if drop_unknown is None else drop_unknown,
+                               attributes=_needed_attributes(policy), debug=debug,
+                               engine=make_engine(engine, **({"memory_limit": memory_limit} if memory_limit
+                                                             else {})))
+    timings = {"ingest_seconds": time.perf_counter() - t0}
+    true_deg = network.engine.degrees(network.n_people)
+    true_hist = true_degree_histogram(true_deg).astype(np.float64)
+    s_bound = float(sanity_bound) if sanity_bound else max(1.0, DEFAULT_SANITY_FRACTION * network.n_edges)
+    gate_attr = policy.gate.contact_matrix_attribute or (policy.grouping.attributes[0]
+                                                         if policy.grouping.attributes else None)
+    thresholds = {k: getattr(policy.gate, k) for k in ("max_degree_ks", "max_degree_wasserstein",
+                                                       "max_contact_matrix_median_relative_error",
+                                                       "max_superedge_median_relative_error")
+                  if getattr(policy.gate, k) is not None}
+    hp = policy.components.degree_histograms
+    notes = early_notes
+    rows = []
+    cache = {}
+    n_groupings = 0
+    t_truth = 0.0
+    t_noise = 0.0
+    for unit in units:
+        if unit == "person":
+            comp.check_contact_cap(true_deg, D)
+        for k in min_sizes:
+            for eps in epsilons:
+                pol = _policy_at(policy, unit, eps, k, D)
+                shares = epsilon_shares(pol)
+                key = (unit, k)
+                truth = cache.get(key)
+                if truth is None:
+                    t1 = time.perf_counter()
+                    try:
+                        grouping = make_grouping(network, pol, _fresh_budget(pol), source, shares)
+                    except PrivacyError as exc:
+                        notes.append(f"unit {unit}, min_size {k}: no grouping ({exc})")
+                        progress(f"unit {unit}, min_size {k}: skipped ({exc})")
+                        break
+                    label_cols = [c for c in grouping.labels.column_names if c not in ("supernode", "size")]
+                    truth = _GroupingTruth(network, grouping, true_hist, label_cols, s_bound,
+                                           hp.max_degree if hp.enabled else None)
+                    n_groupings += 1
+                    t_truth += time.perf_counter() - t1
+                    if grouping.public:
+                        cache[key] = truth
+                    progress(f"unit {unit}, min_size {k}: {truth.n_groups:,} supernodes, true counts computed"
+                             + ("" if grouping.public else f" (noisy grouping at epsilon {eps:g})"))
+                t1 = time.perf_counter()
+                row = _grid_point(truth, pol, shares, unit, k, eps, D, draws, source, gate_attr, hp,
+                                  implied_degree_pmf, released_histogram_degrees, distribution_distances,
+                                  error_summary, evaluate_gate)
+                t_noise += time.perf_counter() - t1
+                rows.append(row)
+                progress(f"unit {unit}, min_size {k}, epsilon {eps:g}: contact matrix median relative error "
+                         f"{row['contact_matrix_median_relative_error']:.4g}, degree KS {row['degree_ks']:.4g}"
+                         + (", gate passed" if row["gate_passed"] else ", gate failed"))
+    timings.update(groupings=n_groupings, truth_seconds=t_truth, noise_and_metrics_seconds=t_noise,
+                   total_seconds=time.perf_counter() - t_start, grid_points=len(rows))
+    passing = [r for r in rows if r["gate_passed"]]
+    cheapest = None
+    if passing:  # smallest epsilon; then the larger min_size and the stronger unit
+        cheapest = min(passing, key=lambda r: (r["epsilon"], -r["min_size"], 0 if r["unit"] == "person" else 1))
+    if not thresholds:
+        notes.append("the policy sets no [gate] thresholds: every setting passes, the cheapest is the smallest "
+                     "epsilon")
+    notes.append("expected_* columns are analytic, from the noise law (columns marked unclamped ignore the "
+                 "clamping at 0 and at the possible pairs); the others come from real noise draws "
+                 "post-processed as a release is")
+    if any(r.get("sparse_threshold") is not None for r in rows):
+        notes.append("sparse superedge releases (method 'sparse' or 'auto' on very many cells) are modelled "
+                     "with their threshold, cells below it read as 0")
+    return SweepResult(rows=rows, cheapest=cheapest, thresholds=thresholds, notes=notes, timings=timings,
+                       network={"people": int(network.n_people), "contacts": int(network.n_edges),
+                                "sanity_bound": s_bound})
+
+
+def _fresh_budget(policy):
+    """A fresh budget for one planned grouping (nothing is charged anywhere persistent)."""
+    return ReleaseBudget(policy.privacy.epsilon)
+
+
+def _grid_point(truth, pol, shares, unit, k, eps, D, draws, source, gate_attr, hp, implied_degree_pmf,
+                released_histogram_degrees, distribution_distances, error_summary, evaluate_gate) -> dict:
+    """Analytic expectations and ``draws`` real noise draws at one setting."""
+    st = truth.st
+    sens = comp.sensitivity(unit, "superedge_counts", D)
+    eps_se = shares["superedge_counts"]
+    mech = GeometricMechanism(epsilon=eps_se, sensitivity=sens)
+    threshold = comp.superedge_sparse_threshold(pol.components.superedge_counts, truth.n_groups, eps_se, sens)
+    n_cells = len(st.count)
+    true_t = st.count.astype(np.float64)
+    al = mech.alpha
+    row = {"unit": unit, "min_size": k, "epsilon": eps, "supernodes": truth.n_groups, "cells": n_cells,
+           "superedge_epsilon": eps_se, "noise_scale": mech.scale, "sparse_threshold": threshold,
+           "expected_superedge_mean_absolute_error": 2 * al / (1 - al * al)}
+    cm_attr = gate_attr if gate_attr in truth.workloads else (next(iter(truth.workloads), None))
+    row["contact_matrix_attribute"] = cm_attr
+    c_mean, c_var, c_abs = _clamped_error_moments(mech.scale, st.count, truth.cap_pub)
+    row["expected_superedge_mean_absolute_error_clamped"] = float(c_abs.mean())
+    if cm_attr is not None:
+        w = truth.workloads[cm_attr]
+        denom = np.maximum(truth.cm_truth[cm_attr], truth.s_bound)
+        e_abs = _expected_abs_sum(mech.scale, truth.cm_cells[cm_attr])
+        row["expected_contact_matrix_median_relative_error_unclamped"] = float(np.median(e_abs / denom))
+        e_clamped = _normal_abs_mean(w.answer(c_mean), w.answer(c_var))
+        row["expected_contact_matrix_median_relative_error"] = float(np.median(e_clamped / denom))
+    figs = {n: [] for n in ("se_mae", "se_mre", "cm_mre", "cm_p90", "ks", "w1")}
+    gates = []
+    hist_mech = None
+    for _ in range(draws):
+        noisy = st.count + mech.noise(n_cells, source)
+        rel = np.clip(noisy, 0, truth.cap_pub)
+        if threshold is not None:
+            rel = np.where(noisy >= threshold, rel, 0)
+        se = error_summary(true_t, rel.astype(np.float64), truth.s_bound)
+        figs["se_mae"].append(se["mean_absolute_error"])
+        figs["se_mre"].append(se["median_relative_error"])
+        audit = {"queries": {"superedge_cells": {"median_relative_error": se["median_relative_error"]}},
+                 "degree_distribution": {}}
+        for c, w in truth.workloads.items():
+            e = error_summary(truth.cm_truth[c], w.answer(rel), truth.s_bound)
+            audit["queries"][f"contact_matrix:{c}"] = {"median_relative_error": e["median_relative_error"]}
+            if c == cm_attr:
+                figs["cm_mre"].append(e["median_relative_error"])
+                figs["cm_p90"].append(e["p90_relative_error"])
+        if truth.hist_truth is not None:
+            eps_h = shares["degree_histograms"]
+            sens_h = comp.sensitivity(unit, "degree_histograms", D)
+            table, _, hist_mech = comp.release_degree_histograms(truth.hist_truth, truth.pub_sizes, eps_h, sens_h,
+                                                                 source)
+            d = distribution_distances(truth.true_capped, released_histogram_degrees(table, hp.max_degree + 1))
+        else:
+            pmf, _ = implied_degree_pmf(st.a, st.b, rel, truth.pub_sizes, method=truth.deg_method)
+            d = distribution_distances(truth.true_hist, pmf)
+        figs["ks"].append(d["ks"])
+        figs["w1"].append(d["wasserstein1"])
+        audit["degree_distribution"] = {"ks": d["ks"], "wasserstein1": d["wasserstein1"]}
+        gates.append(evaluate_gate(pol, audit)["passed"])
+    mean = {n: float(np.mean(v)) if v else float("nan") for n, v in figs.items()}
+    row.update({
+        "superedge_mean_absolute_error": mean["se_mae"],
+        "superedge_mean_absolute_error_sd": float(np.std(figs["se_mae"], ddof=1)) if draws > 1 else 0.0,
+        "superedge_median_relative_error": mean["se_mre"],
+        "contact_matrix_median_relative_error": mean["cm_mre"],
+        "contact_matrix_median_relative_error_max": float(np.max(figs["cm_mre"])) if figs["cm_mre"] else None,
+        "contact_matrix_p90_relative_error": mean["cm_p90"],
+        "degree_ks": mean["ks"], "degree_ks_max": float(np.max(figs["ks"])),
+        "degree_wasserstein1": mean["w1"], "degree_wasserstein1_max": float(np.max(figs["w1"])),
+        "degree_ks_grouping_only": float(truth.grouping_only["ks"]),
+        "degree_wasserstein1_grouping_only": float(truth.grouping_only["wasserstein1"]),
+        "degree_basis": "histograms" if truth.hist_truth is not None else "block_model",
+        "draws": int(draws),
+    })
+    mean_audit = {"queries": {"superedge_cells": {"median_relative_error": mean["se_mre"]}},
+                  "degree_distribution": {"ks": mean["ks"], "wasserstein1": mean["w1"]}}
+    if cm_attr is not None:
+        mean_audit["queries"][f"contact_matrix:{cm_attr}"] = {"median_relative_error": mean["cm_mre"]}
+    gate = evaluate_gate(pol, mean_audit)
+    row["gate_passed"] = bool(gate["passed"])
+    row["gate_passed_every_draw"] = bool(all(gates))
+    row["gate_failed"] = ";".join(gate["failed"])
+    return row
+
+
+# --------------------------------------------------------------------------- output
+
+
+def _csv_text(rows) -> str:
+    buf = io.StringIO()
+    names = [c for c, _ in SWEEP_COLUMNS]
+    w = csv.DictWriter(buf, fieldnames=names, extrasaction="ignore", lineterminator="\n")
+    w.writeheader()
+    for r in rows:
+        w.writerow({k: ("" if r.get(k) is None else (f"{r[k]:.6g}" if isinstance(r.get(k), float) else r[k]))
+                    for k in names})
+    return buf.getvalue()
+
+
+def _readme(result: SweepResult) -> str:
+    lines = [f"{_MARKER} (confidential)", "", PLANNING_NOTE, "",
+             f"network: {result.network.get('people', 0):,} people, {result.network.get('contacts', 0):,} "
+             f"contacts; relative errors use the sanity bound s = {result.network.get('sanity_bound', 1):g}",
+             ""]
+    if result.cheapest:
+        c = result.cheapest
+        lines.append(f"cheapest setting meeting the policy's [gate]: unit {c['unit']}, epsilon {c['epsilon']:g}, "
+                     f"min_size {c['min_size']} (decided on the mean over {c['draws']} noise draws"
+                     + ("" if c["gate_passed_every_draw"] else "; NOT met by every draw") + ")")
+    else:
+        lines.append("no setting of the grid meets the policy's [gate] thresholds")
+    lines.append("thresholds: " + (", ".join(f"{k} = {v:g}" for k, v in result.thresholds.items()) or "none"))
+    lines += ["", "files:", "  sweep.csv    one row per grid point (columns below)",
+              "  sweep.json   the same figures, the notes and the timings",
+              "  errors_vs_epsilon.png   key errors against epsilon, one line per (unit, min_size)", "",
+              "columns of sweep.csv:"]
+    lines += [f"  {c:<48} {d}" for c, d in SWEEP_COLUMNS]
+    lines += ["", "notes:"] + [f"  - {n}" for n in result.notes]
+    return "\n".join(lines) + "\n"
+
+
+def _plot(result: SweepResult, path: Path) -> None:
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+    from matplotlib import ticker
+
+    panels = [("degree_ks", None, "degree_ks_max", "degree distribution KS", "max_degree_ks"),
+              ("degree_wasserstein1", None, "degree_wasserstein1_max", "degree distribution Wasserstein-1",
+               "max_degree_wasserstein"),
+              ("contact_matrix_median_relative_error", "expected_contact_matrix_median_relative_error",
+               "contact_matrix_median_relative_error_max", "contact matrix median relative error",
+               "max_contact_matrix_median_relative_error"),
+              ("superedge_mean_absolute_error", "expected_superedge_mean_absolute_error_clamped", None,
+               "superedge cell mean absolute error", None)]
+    fig, axes = plt.subplots(2, 2, figsize=(11, 8))
+    series = sorted({(r["unit"], r["min_size"]) for r in result.rows})
+    eps_ticks = sorted({r["epsilon"] for r in result.rows})
+    for ax, (col, exp_col, max_col, title, gate_key) in zip(axes.ravel(), panels):
+        for i, (unit, k) in enumerate(series):
+            rs = sorted((r for r in result.rows if r["unit"] == unit and r["min_size"] == k),
+                        key=lambda r: r["epsilon"])
+            x = [r["epsilon"] for r in rs]
+            y = [r[col] for r in rs]
+            color = f"C{i % 10}"
+            ax.plot(x, y, "o-", color=color, label=f"{unit}, min_size {k} (observed)")
+            if max_col:
+                ax.plot(x, [r[max_col] for r in rs], "v", color=color, alpha=0.5, markersize=4)
+            if exp_col and all(r.get(exp_col) is not None for r in rs):
+                ax.plot(x, [r[exp_col] for r in rs], "--", color=color, alpha=0.8)
+        if gate_key and gate_key in result.thresholds:
+            ax.axhline(result.thresholds[gate_key], color="k", linestyle=":", label="gate threshold")
+        ax.set_xscale("log")
+        ax.set_yscale("log")
+        ax.set_xticks(eps_ticks)
+        ax.xaxis.set_major_formatter(ticker.FuncFormatter(lambda v, _: f"{v:g}"))
+        ax.xaxis.set_minor_formatter(ticker.NullFormatter())
+        ax.yaxis.set_major_formatter(ticker.LogFormatter())
+        ax.yaxis.set_minor_formatter(ticker.LogFormatter(labelOnlyBase=False, minor_thresholds=(2, 0.4)))
+        ax.set_xlabel("epsilon")
+        ax.set_title(title, fontsize=10)
+        ax.grid(True, which="both", alpha=0.3)
+    axes[0, 0].legend(fontsize=7)
+    fig.suptitle("INTERNAL PLANNING AID - confidential, not a release\n"
+                 "solid: observed (mean of draws; triangles worst draw), dashed: analytic expectation",
+                 fontsize=10, color="darkred")
+    fig.subplots_adjust(left=0.07, right=0.98, bottom=0.07, top=0.88, wspace=0.22, hspace=0.32)
+    fig.savefig(path, format="png", dpi=90)
+    plt.close(fig)
+
+
+def _fsync_file(path: Path) -> None:
+    fd = os.open(path, os.O_RDONLY)
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)
+
+
+def write_sweep(result: SweepResult, out, *, overwrite: bool = False) -> Path:
+    """Write the sweep folder (``README.txt``, ``sweep.csv``, ``sweep.json``, ``errors_vs_epsilon.png``).
+
+    Written into a temporary folder beside ``out`` and moved into place; an existing
+    ``out`` is replaced only with ``overwrite`` and only if it is a sweep folder.
+    """
+    from .bundle._files import fsync_path, temp_sibling
+
+    out = Path(out).absolute()
+    if out.exists():
+        if not out.is_dir():
+            raise OutputError(f"{out}: output path exists and is not a folder")
+        if not overwrite:
+            raise OutputError(f"{out}: output folder already exists (use --overwrite to replace it)")
+        readme = out / "README.txt"
+        if any(out.iterdir()) and not (readme.is_file() and readme.read_text("utf-8", "replace")
+                                       .startswith(_MARKER)):
+            raise OutputError(f"{out}: refusing to replace a non-empty folder that is not a sweep folder")
+    if not out.parent.is_dir():
+        raise OutputError(f"{out.parent}: parent folder of the output does not exist")
+    tmp = temp_sibling(out, "tmp")
+    try:
+        tmp.mkdir()
+        (tmp / "README.txt").write_text(_readme(result), encoding="utf-8")
+        (tmp / "sweep.csv").write_text(_csv_text(result.rows), encoding="utf-8")
+        (tmp / "sweep.json").write_text(json.dumps(result.as_dict(), indent=1, default=float), encoding="utf-8")
+        _plot(result, tmp / "errors_vs_epsilon.png")
+        for f in tmp.iterdir():
+            _fsync_file(f)
+        fsync_path(tmp)
+        if out.exists():
+            old = temp_sibling(out, "old")
+            os.rename(out, old)
+            os.rename(tmp, out)
+            shutil.rmtree(old, ignore_errors=True)
+        else:
+            os.rename(tmp, out)
+        fsync_path(out.parent)
+    except OSError as exc:
+        raise OutputError(f"{out}: cannot write the sweep ({exc.strerror})") from None
+    finally:
+        if tmp.exists():
+            shutil.rmtree(tmp, ignore_errors=True)
+    return out

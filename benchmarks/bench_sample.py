@@ -1,0 +1,70 @@
+"""Benchmark: sampling synthetic networks from a release (aggpub.researcher.sample_network).
+
+Builds a public release-like table in memory (no private data involved: random sizes and
+counts), samples about 10 million distinct contacts from it, and compares the time with
+a baseline measured in the same run: numpy drawing the same number of random integer
+pairs (``Generator.integers(0, n_people, size=(2, m))``, which makes no effort to keep
+pairs distinct or inside cells). Figures are ratios against that baseline.
+
+Run:  /work/venv/bin/python benchmarks/bench_sample.py [--edges 10000000] [--supernodes 1000] [--repeat 3]
+"""
+
+from __future__ import annotations
+
+import argparse
+import time
+import types
+
+import numpy as np
+import pyarrow as pa
+
+from aggpub import components as comp
+from aggpub.researcher import sample_network
+
+
+def make_release(n_supernodes: int, edges: int, dense_share: float, seed: int = 0):
+    rng = np.random.default_rng(seed)
+    sizes = rng.integers(200, 4000, size=n_supernodes)
+    a, b = comp.all_cells(n_supernodes)
+    cap = comp.possible_pairs(sizes, a, b)
+    counts = rng.poisson(edges * (1 - dense_share) / len(a), size=len(a))
+    # a few cells asking for most of their pairs (the complement path)
+    dense = rng.choice(np.flatnonzero(a == b), size=max(1, n_supernodes // 20), replace=False)
+    want = edges * dense_share / len(dense)
+    counts[dense] = np.minimum(cap[dense], (0.8 * cap[dense]).astype(np.int64))
+    counts[dense] = np.minimum(counts[dense], int(want))
+    counts = np.minimum(counts, cap)
+    tables = {"supernodes": pa.table({"supernode": np.arange(n_supernodes), "size": sizes}),
+              "superedges": pa.table({"supernode_a": a, "supernode_b": b, "edge_count": counts,
+                                      "possible_pairs": cap, "noise_scale": np.ones(len(a))})}
+    return types.SimpleNamespace(tables=tables, manifest={}), int(sizes.sum()), int(counts.sum())
+
+
+def main():
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--edges", type=int, default=10_000_000)
+    ap.add_argument("--supernodes", type=int, default=1000)
+    ap.add_argument("--dense-share", type=float, default=0.05, help="share of edges in near-full cells")
+    ap.add_argument("--repeat", type=int, default=3)
+    args = ap.parse_args()
+    rel, n_people, m = make_release(args.supernodes, args.edges, args.dense_share)
+    cells = rel.tables["superedges"].num_rows
+    print(f"release: {args.supernodes:,} supernodes, {n_people:,} people, {cells:,} cells, {m:,} contacts")
+    base_t, samp_t = [], []
+    for r in range(args.repeat):  # interleaved, so machine load affects both alike
+        rng = np.random.default_rng(r)
+        t0 = time.perf_counter()
+        rng.integers(0, n_people, size=(2, m))
+        base_t.append(time.perf_counter() - t0)
+        t0 = time.perf_counter()
+        out = sample_network(rel, seed=r)
+        samp_t.append(time.perf_counter() - t0)
+        assert out.num_rows == m
+    b, s = min(base_t), min(samp_t)
+    print(f"baseline numpy integers(2 x {m:,}): best {b:.3f} s")
+    print(f"sample_network ({m:,} distinct contacts): best {s:.3f} s  (median {np.median(samp_t):.3f} s)")
+    print(f"ratio sample / baseline: {s / b:.1f}x   ({m / s / 1e6:.2f} M contacts/s)")
+
+
+if __name__ == "__main__":
+    main()

@@ -1,0 +1,387 @@
+"""Tests for the auditor (:mod:`aggpub.audit`).
+
+Outside references: scipy (``ks_2samp``, ``wasserstein_distance``, ``cityblock``,
+``binom`` for sums of binomials, ``chisquare`` for uniform sampling), networkx
+(clustering, transitivity, assortativity, components, ``cut_size``, degrees on its
+shipped example graphs: Zachary's karate club, Les Miserables, Florentine families,
+Davis southern women), worked examples of the published formulas, and the discrete
+Laplace pmf for the exact expected error under clamping.
+"""
+
+from __future__ import annotations
+
+import itertools
+
+import networkx as nx
+import numpy as np
+import pytest
+from scipy import stats
+from scipy.spatial.distance import cityblock
+
+import aggpub
+from aggpub import components as comp
+from aggpub.audit import (
+    audit_release,
+    distribution_distances,
+    error_summary,
+    evaluate_gate,
+    gate_failure_message,
+    implied_degree_pmf,
+    ks_distance,
+    l1_distance,
+    relative_errors,
+    sample_block_network,
+    structure_statistics,
+    wasserstein1_distance,
+)
+from aggpub.audit import queries as qw
+from aggpub.noise.sampler import SeededRandomSource
+from aggpub.policy import parse_policy
+
+from .conftest import graph_tables, simple_policy
+
+# --------------------------------------------------------------------------- distribution metrics
+
+
+@pytest.mark.parametrize("seed", range(5))
+def test_ks_and_wasserstein_match_scipy_on_integer_samples(seed):
+    rng = np.random.default_rng(seed)
+    x = rng.poisson(rng.uniform(1, 12), size=rng.integers(50, 400))
+    y = rng.negative_binomial(3, 0.3, size=rng.integers(50, 400))
+    hx, hy = np.bincount(x), np.bincount(y)
+    # scipy.stats.ks_2samp: two-sample KS statistic = sup |F_x - F_y| over the empirical CDFs
+    assert ks_distance(hx, hy) == pytest.approx(stats.ks_2samp(x, y).statistic, abs=1e-12)
+    # scipy.stats.wasserstein_distance: first Wasserstein distance between the samples
+    assert wasserstein1_distance(hx, hy) == pytest.approx(stats.wasserstein_distance(x, y), rel=1e-10)
+    # weighted form on the common support
+    k = np.arange(max(len(hx), len(hy)))
+    px = np.pad(hx, (0, len(k) - len(hx))) / hx.sum()
+    py = np.pad(hy, (0, len(k) - len(hy))) / hy.sum()
+    assert wasserstein1_distance(px, py) == pytest.approx(
+        stats.wasserstein_distance(k, k, u_weights=px + 1e-300, v_weights=py + 1e-300), rel=1e-9)
+    assert l1_distance(hx, hy) == pytest.approx(cityblock(px, py), abs=1e-12)
+
+
+def test_distances_are_zero_for_identical_and_maximal_for_disjoint():
+    p = [0, 3, 5, 2]
+    d = distribution_distances(p, np.array(p) * 7)  # normalisation: counts and shares alike
+    assert d == {"ks": pytest.approx(0), "wasserstein1": pytest.approx(0), "l1": pytest.approx(0)}
+    d = distribution_distances([1, 0, 0, 0], [0, 0, 0, 1])
+    assert d["ks"] == pytest.approx(1.0) and d["l1"] == pytest.approx(2.0)
+    assert d["wasserstein1"] == pytest.approx(3.0)  # all mass moved by 3 degrees
+    with pytest.raises(ValueError):
+        ks_distance([0, 0], [1])
+
+
+def test_relative_error_with_sanity_bound_worked_example():
+    # Xiao, Wang, Gehrke, "Differential privacy via wavelet transforms", ICDE 2010:
+    # relative error |x_hat - x| / max(x, s).  With s = 10:
+    true = [0, 5, 100]
+    est = [2, 4, 130]
+    np.testing.assert_allclose(relative_errors(true, est, 10), [2 / 10, 1 / 10, 30 / 100])
+    s = error_summary(true, est, 10)
+    assert s["mean_absolute_error"] == pytest.approx((2 + 1 + 30) / 3)
+    assert s["mean_signed_error"] == pytest.approx((2 - 1 + 30) / 3)
+    assert s["median_relative_error"] == pytest.approx(0.2)
+    assert s["p90_relative_error"] == pytest.approx(np.percentile([0.2, 0.1, 0.3], 90))
+    with pytest.raises(ValueError):
+        relative_errors(true, est, 0)
+
+
+# --------------------------------------------------------------------------- block-model degrees
+
+
+def test_implied_degree_pmf_is_the_sum_of_binomials():
+    sizes = np.array([5, 7, 4])
+    a, b = comp.all_cells(3)
+    counts = np.array([4, 10, 0, 6, 9, 3])  # (0,0) (0,1) (0,2) (1,1) (1,2) (2,2)
+    pmf, method = implied_degree_pmf(a, b, counts, sizes)
+    assert method == "binomial"
+    P = comp.possible_pairs(sizes, a, b)
+    p = dict(zip(zip(a.tolist(), b.tolist()), counts / P))
+
+    def binom(n, q):
+        return stats.binom.pmf(np.arange(n + 1), n, q)
+
+    ref = np.zeros(80)
+    for g in range(3):
+        member = np.array([1.0])
+        for h in range(3):
+            q = p[(min(g, h), max(g, h))]
+            member = np.convolve(member, binom(sizes[h] - (g == h), q))  # scipy.stats.binom, convolved
+        ref[: len(member)] += sizes[g] / sizes.sum() * member
+    np.testing.assert_allclose(pmf, ref[: len(pmf)], atol=1e-12)
+    assert ref[len(pmf):].sum() < 1e-12
+    # Poisson approximation keeps the mean (sum of count_ab / size_a, diagonal twice)
+    pp, m2 = implied_degree_pmf(a, b, counts, sizes, method="poisson")
+    assert m2 == "poisson"
+    assert np.dot(np.arange(len(pp)), pp) == pytest.approx(np.dot(np.arange(len(pmf)), pmf), rel=1e-9)
+
+
+def test_grouping_loss_is_zero_on_a_graph_that_is_exactly_a_block_model():
+    # Complete multipartite graph (networkx): every member of a part has the same degree and the
+    # parts as supernodes hold full or empty cells, so the aggregate loses nothing.
+    G = nx.complete_multipartite_graph(3, 5, 8)
+    part = {n: d["subset"] for n, d in G.nodes(data=True)}
+    edges, people = graph_tables(G, {"part": part})
+    rel = aggpub.release_tables(edges, people, simple_policy(["part"]), seed=1)
+    out = audit_release(rel, monte_carlo=0, structure_samples=0, source=SeededRandomSource(2))
+    g = out["degree_distribution"]["grouping_only"]
+    assert g["ks"] == pytest.approx(0, abs=1e-9) and g["wasserstein1"] == pytest.approx(0, abs=1e-9)
+    assert out["degree_distribution"]["true_mean_degree"] == pytest.approx(
+        np.mean([d for _, d in G.degree()]))
+
+
+# --------------------------------------------------------------------------- sampler and structure
+
+
+def test_sampler_places_exactly_the_counts_on_distinct_pairs():
+    rng = np.random.default_rng(3)
+    sizes = np.array([6, 9, 40, 3])
+    a, b = comp.all_cells(4)
+    P = comp.possible_pairs(sizes, a, b)
+    counts = np.minimum(P, np.array([15, 54, 2, 36, 300, 27, 600, 100, 120, 3]))  # dense and sparse cells
+    u, v = sample_block_network(a, b, counts, sizes, rng)
+    group = np.repeat(np.arange(4), sizes)
+    assert (u < v).all()
+    assert len(set(zip(u.tolist(), v.tolist()))) == len(u) == counts.sum()
+    got = np.zeros(len(a), dtype=np.int64)
+    np.add.at(got, comp.cell_index(group[u], group[v], 4), 1)
+    np.testing.assert_array_equal(got, counts)
+
+
+def test_sampler_is_uniform_over_pairs_of_a_cell():
+    # 2 of the 15 pairs of a 6-member supernode, many times: each pair equally often (chi-square).
+    rng = np.random.default_rng(4)
+    freq = np.zeros(15)
+    pair_id = {p: i for i, p in enumerate(itertools.combinations(range(6), 2))}
+    for _ in range(3000):
+        u, v = sample_block_network([0], [0], [2], [6], rng)
+        for x, y in zip(u, v):
+            freq[pair_id[(x, y)]] += 1
+    assert stats.chisquare(freq).pvalue > 1e-3
+
+
+def test_sampled_degrees_follow_the_implied_distribution():
+    rng = np.random.default_rng(5)
+    sizes = np.array([300, 500, 200])
+    a, b = comp.all_cells(3)
+    counts = np.array([900, 1500, 100, 2500, 800, 300])
+    pmf, _ = implied_degree_pmf(a, b, counts, sizes)
+    u, v = sample_block_network(a, b, counts, sizes, rng)
+    deg = np.bincount(np.concatenate([u, v]), minlength=sizes.sum())
+    assert ks_distance(np.bincount(deg), pmf) < 0.03
+
+
+@pytest.mark.parametrize("name", ["karate", "lesmis", "florentine", "davis", "union"])
+def test_structure_statistics_match_networkx(name):
+    if name == "karate":
+        G = nx.karate_club_graph()
+    elif name == "lesmis":
+        G = nx.les_miserables_graph()
+    elif name == "florentine":
+        G = nx.florentine_families_graph()
+    elif name == "davis":
+        G = nx.davis_southern_women_graph()
+    else:  # disconnected: the largest component is not everyone
+        G = nx.disjoint_union(nx.karate_club_graph(), nx.florentine_families_graph())
+    G = nx.convert_node_labels_to_integers(G, label_attribute="orig")
+    e = np.array(list(G.edges()))
+    n = G.number_of_nodes()
+    cat = {n_: (d.get("club") or str(d.get("bipartite", n_ % 3))) for n_, d in G.nodes(data=True)}
+    _, codes = np.unique([str(cat[i]) for i in range(n)], return_inverse=True)
+    nx.set_node_attributes(G, {i: int(codes[i]) for i in range(n)}, "cat")
+    st = structure_statistics(e[:, 0], e[:, 1], n, {"cat": codes})
+    assert st["average_clustering"] == pytest.approx(nx.average_clustering(G), abs=1e-12)
+    assert st["transitivity"] == pytest.approx(nx.transitivity(G), abs=1e-12)
+    assert st["degree_assortativity"] == pytest.approx(nx.degree_assortativity_coefficient(G), abs=1e-9)
+    assert st["assortativity:cat"] == pytest.approx(nx.attribute_assortativity_coefficient(G, "cat"), abs=1e-9)
+    lcc = max(len(c) for c in nx.connected_components(G)) / n
+    assert st["largest_component_fraction"] == pytest.approx(lcc)
+
+
+# --------------------------------------------------------------------------- workloads
+
+
+@pytest.fixture(scope="module")
+def lesmis_release():
+    G = nx.les_miserables_graph()
+    deg = dict(G.degree())
+    band = {n: ("low" if d <= 2 else "mid" if d <= 8 else "high") for n, d in deg.items()}
+    group = {n: i % 4 for i, n in enumerate(sorted(G))}
+    edges, people = graph_tables(G, {"band": band, "group": group})
+    rel = aggpub.release_tables(edges, people, simple_policy(["band", "group"], min_size=1), seed=7)
+    return G, band, group, rel
+
+
+def test_workloads_match_networkx_counts(lesmis_release):
+    G, band, group, rel = lesmis_release
+    st = rel.truth["superedges"]
+    n = rel.grouping.n_supernodes
+    labels = rel.grouping.labels
+    sn_band = labels.column("band").to_pylist()
+    # person -> supernode: the release's own assignment, indexed like the person table
+    names = [str(x) for x in G.nodes()]
+    sn_of = dict(zip(names, rel.grouping.assignment.tolist()))
+    # contact matrix by band: networkx edge counts by the pair of attribute values
+    w = qw.contact_matrix_workload(st.a, st.b, sn_band, "band")
+    got = dict(zip(w.labels, w.answer(st.count)))
+    ref = {}
+    for x, y in G.edges():
+        key = tuple(sorted((band[x], band[y])))
+        ref[key] = ref.get(key, 0) + 1
+    assert {k: v for k, v in got.items() if v} == ref
+    # cut queries: networkx.cut_size between the people of the two supernode sets
+    rng = np.random.default_rng(0)
+    cw = qw.cut_workload(st.a, st.b, n, 25, rng)
+    rng = np.random.default_rng(0)
+    side = rng.integers(0, 3, size=(25, n))
+    answers = cw.answer(st.count)
+    for q in range(25):
+        S = [p for p in names if side[q, sn_of[p]] == 0]
+        T = [p for p in names if side[q, sn_of[p]] == 1]
+        assert answers[q] == nx.cut_size(G, S, T)
+    # degree totals: sum of networkx degrees of each supernode's members
+    dw = qw.degree_totals_workload(st.a, st.b, n)
+    tot = np.zeros(n)
+    for p, d in G.degree():
+        tot[sn_of[p]] += d
+    np.testing.assert_array_equal(dw.answer(st.count), tot)
+    # noise variance of a sum of k independent cells is k times the cell variance
+    np.testing.assert_allclose(cw.noise_variance(2.0), 2.0 * np.asarray(cw.matrix.sum(axis=1)).ravel())
+
+
+def test_monte_carlo_matches_the_exact_clamped_error(lesmis_release):
+    """The Monte Carlo mean absolute error of single cells against its exact value.
+
+    Exact: E|clip(t + Z, 0, cap) - t| with Z discrete Laplace, from the pmf
+    (1 - alpha) / (1 + alpha) alpha^|z| (Ghosh, Roughgarden, Sundararajan, STOC 2009).
+    """
+    _, _, _, rel = lesmis_release
+    out = audit_release(rel, monte_carlo=200, structure_samples=0, source=SeededRandomSource(11))
+    cells = out["queries"]["superedge_cells"]
+    mech = rel.mechanisms["superedge_counts"]
+    st = rel.truth["superedges"]
+    cap = comp.possible_pairs(rel.truth["sizes"], st.a, st.b)
+    z = np.arange(-60, 61)
+    pz = mech.pmf(z)
+    exact = np.mean([(pz * np.abs(np.clip(t + z, 0, c) - t)).sum() for t, c in zip(st.count, cap)])
+    mc = cells["monte_carlo"]["mean_absolute_error"]
+    assert abs(mc["mean"] - exact) < 4 * mc["sd"] / np.sqrt(mc["draws"]) + 1e-9
+    # before clamping: RMSE from the variance 2 alpha / (1 - alpha)^2 and E|Z| = 2 alpha / (1 - alpha^2)
+    al = mech.alpha
+    assert cells["expected_rmse"] == pytest.approx(np.sqrt(2 * al / (1 - al) ** 2))
+    assert cells["expected_mean_absolute_error"] == pytest.approx(2 * al / (1 - al ** 2))
+    assert (pz * np.abs(z)).sum() == pytest.approx(2 * al / (1 - al ** 2), rel=1e-9)
+
+
+def test_audit_figures_and_decomposition(lesmis_release):
+    _, _, _, rel = lesmis_release
+    out = audit_release(rel, monte_carlo=5, structure_samples=2, source=SeededRandomSource(3), seed=1)
+    dd = out["degree_distribution"]
+    for k in ("ks", "wasserstein1", "l1"):
+        assert dd[k] == pytest.approx(dd["grouping_loss"][k] + dd["noise_added"][k])
+        assert 0 <= dd[k]
+    for name in ("superedge_cells", "contact_matrix:band", "contact_matrix:group", "cut_queries",
+                 "supernode_degree_totals"):
+        w = out["queries"][name]
+        assert {"mean_absolute_error", "median_relative_error", "p90_relative_error", "p99_relative_error",
+                "expected_rmse", "monte_carlo"} <= set(w)
+    # the released answers: recompute one workload from the public table
+    st = rel.truth["superedges"]
+    released = rel.tables["superedges"].column("edge_count").to_numpy()
+    assert out["queries"]["superedge_cells"]["mean_absolute_error"] == pytest.approx(
+        np.mean(np.abs(released - st.count)))
+    s = out["structure"]
+    assert s["true"]["contacts"] == rel.network.n_edges
+    assert s["sampled_from_true_aggregate"]["contacts"]["mean"] == rel.network.n_edges
+    assert s["sampled_from_release"]["contacts"]["mean"] == released.sum()
+    assert out["gate"]["passed"] and out["gate"]["checked"] == []
+
+
+def test_audit_uses_released_degree_histograms_when_present():
+    G = nx.karate_club_graph()
+    club = {n: d["club"] for n, d in G.nodes(data=True)}
+    edges, people = graph_tables(G, {"club": club})
+    pol = simple_policy(["club"], components={"degree_histograms": {"enabled": True, "max_degree": 10}})
+    rel = aggpub.release_tables(edges, people, pol, seed=2)
+    out = audit_release(rel, monte_carlo=3, structure_samples=0, source=SeededRandomSource(1))
+    dd = out["degree_distribution"]
+    assert dd["basis"].startswith("released per-supernode degree histograms")
+    deg = np.minimum([d for _, d in G.degree()], 10)
+    released = aggpub.audit.degrees.released_histogram_degrees(rel.tables["degree_histograms"], 11)
+    assert dd["ks"] == pytest.approx(ks_distance(np.bincount(deg, minlength=11), released))
+    assert dd["monte_carlo"]["ks"]["draws"] == 3
+
+
+# --------------------------------------------------------------------------- gate
+
+
+def _policy(**gate):
+    return parse_policy(simple_policy(["band"], gate=gate))
+
+
+def test_gate_pass_fail_and_unmeasurable():
+    audit = {"degree_distribution": {"ks": 0.04, "wasserstein1": 0.3},
+             "queries": {"contact_matrix:band": {"median_relative_error": 0.12},
+                         "superedge_cells": {"median_relative_error": 0.0}}}
+    g = evaluate_gate(_policy(max_degree_ks=0.05, max_contact_matrix_median_relative_error=0.10), audit)
+    assert not g["passed"] and g["failed"] == ["max_contact_matrix_median_relative_error"]
+    assert g["max_degree_ks"] == {"allowed": 0.05, "measured": 0.04, "passed": True, "excess": 0.0,
+                                  "measures": "degree-distribution KS distance"}
+    assert g["max_contact_matrix_median_relative_error"]["excess"] == pytest.approx(0.02)
+    msg = gate_failure_message(g, epsilon=1.0, report_path="R")
+    assert "max_contact_matrix_median_relative_error: measured 0.12 > allowed 0.1 (over by 0.02)" in msg
+    assert "No bundle was written" in msg and "counts as spent" in msg
+    # a threshold on a figure the audit could not measure (no superedges released) fails
+    no_edges = {"degree_distribution": audit["degree_distribution"], "queries": {}}
+    g = evaluate_gate(_policy(max_degree_wasserstein=1.0, max_contact_matrix_median_relative_error=0.5),
+                      no_edges)
+    assert g["failed"] == ["max_contact_matrix_median_relative_error"]
+    assert "not measurable" in g["max_contact_matrix_median_relative_error"]["reason"]
+    assert "not measurable" in gate_failure_message(g)
+    # the boundary passes (measured <= allowed), zero tolerance fails any error
+    assert evaluate_gate(_policy(max_degree_ks=0.04), audit)["passed"]
+    assert not evaluate_gate(_policy(max_degree_ks=0.0), audit)["passed"]
+
+
+def test_audit_of_a_sparse_release_reads_absent_cells_as_zero():
+    # Cormode, Procopiuc, Srivastava, Tran (ICDT 2012): cells below the threshold are not published.
+    G = nx.les_miserables_graph()
+    group = {n: i % 6 for i, n in enumerate(sorted(G))}
+    edges, people = graph_tables(G, {"group": group})
+    pol = simple_policy(["group"], components={"superedge_counts": {"method": "sparse", "sparse_threshold": 2}})
+    rel = aggpub.release_tables(edges, people, pol, seed=4)
+    assert rel.manifest.get("superedges_sparse")
+    out = audit_release(rel, monte_carlo=20, structure_samples=1, source=SeededRandomSource(5))
+    n = rel.grouping.n_supernodes
+    t = rel.tables["superedges"]
+    released = np.zeros(n * (n + 1) // 2)
+    released[comp.cell_index(t.column("supernode_a").to_numpy(), t.column("supernode_b").to_numpy(), n)] = \
+        t.column("edge_count").to_numpy()
+    st = rel.truth["superedges"]
+    true = np.zeros(n * (n + 1) // 2)
+    true[comp.cell_index(st.a, st.b, n)] = st.count
+    assert out["queries"]["superedge_cells"]["mean_absolute_error"] == pytest.approx(np.mean(np.abs(released - true)))
+    assert any("sparse superedge release" in note for note in out["notes"])
+    assert out["structure"]["sampled_from_release"]["contacts"]["mean"] == released.sum()
+
+
+def test_audit_under_the_person_unit_uses_the_noisy_sizes_and_the_cap_d():
+    import tomllib
+
+    from aggpub.demo import demo_policy_text, generate_town
+
+    edges, people = generate_town(1500, seed=3)
+    raw = tomllib.loads(demo_policy_text())
+    raw["privacy"] = {"unit": "person", "epsilon": 1.0, "max_contacts": 40}
+    rel = aggpub.release_tables(edges, people, parse_policy(raw), seed=6)
+    out = audit_release(rel, monte_carlo=3, structure_samples=1, source=SeededRandomSource(8))
+    mech = rel.mechanisms["superedge_counts"]
+    assert mech.sensitivity == 40
+    assert out["queries"]["superedge_cells"]["expected_rmse"] == pytest.approx(np.sqrt(mech.variance()))
+    noisy_sizes = rel.tables["supernodes"].column("size").to_numpy()
+    # the grouping-only side uses the true sizes, the released side the noisy ones
+    assert not np.array_equal(noisy_sizes, rel.truth["sizes"])
+    assert out["structure"]["sampled_from_release"]["mean_degree"]["mean"] == pytest.approx(
+        2 * rel.tables["superedges"].column("edge_count").to_numpy().sum() / noisy_sizes.sum())

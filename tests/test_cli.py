@@ -1,0 +1,93 @@
+"""The command line: help, exit codes, one-line errors, the check command (issue 7 item 1, issue 2 item 9)."""
+
+from __future__ import annotations
+
+import pytest
+
+from aggpub import errors
+from aggpub.cli import EXIT_CODES_HELP, main
+from tests._badinput import Scenario, error_lines, no_plots  # noqa: F401
+
+pytestmark = pytest.mark.usefixtures("no_plots")
+
+DOCUMENTED = {0: "success", 1: "check found problems", 2: "usage error", 3: "input error", 4: "policy error",
+              5: "privacy/budget error", 6: "gate failed", 7: "output error", 8: "bundle error",
+              9: "internal error", 130: "interrupted (nothing published)"}
+
+
+def test_exit_code_table_matches_the_error_classes():
+    for code, text in DOCUMENTED.items():
+        assert f"{code} {text}" in EXIT_CODES_HELP
+    by_class = {errors.UsageError: 2, errors.InputError: 3, errors.PolicyError: 4, errors.PrivacyError: 5,
+                errors.BudgetError: 5, errors.GateError: 6, errors.OutputError: 7, errors.BundleError: 8,
+                errors.AggpubError: 9}
+    for cls, code in by_class.items():
+        assert cls.exit_code == code
+
+
+@pytest.mark.parametrize("command", ["release", "check", "demo"])
+def test_every_command_has_help_with_the_exit_codes(command, capsys):
+    with pytest.raises(SystemExit) as exc:
+        main([command, "--help"])
+    assert exc.value.code == 0
+    out = capsys.readouterr().out
+    assert "exit codes:" in out and "3 input error" in out and "--debug" in out
+
+
+def test_top_level_help_and_version(capsys):
+    with pytest.raises(SystemExit):
+        main(["--help"])
+    assert "exit codes:" in capsys.readouterr().out
+    with pytest.raises(SystemExit) as exc:
+        main(["--version"])
+    assert exc.value.code == 0 and capsys.readouterr().out.startswith("aggpub ")
+
+
+def test_release_then_check(tmp_path, capsys):
+    s = Scenario(tmp_path)
+    assert main(s.argv() + ["--quiet", "--seed", "1"]) == 0
+    out = capsys.readouterr().out
+    assert str(s.out) in out and "seeded" in out.lower()
+    assert main(["check", str(s.out)]) == 0
+    captured = capsys.readouterr()
+    assert "bundle verified" in captured.out and "seeded bundle" in captured.err
+
+
+def test_check_a_folder_that_is_not_a_bundle(tmp_path, capsys):
+    (tmp_path / "x.txt").write_text("x")
+    assert main(["check", str(tmp_path)]) == 1
+    assert "manifest.json: missing" in capsys.readouterr().out
+
+
+def test_check_a_missing_path(tmp_path, capsys):
+    assert main(["check", str(tmp_path / "nothing")]) == 1
+    assert "not a folder" in capsys.readouterr().out
+
+
+def test_usage_errors_are_one_line(capsys):
+    assert main(["release"]) == 2
+    err = capsys.readouterr().err
+    assert len(error_lines(err)) == 1 and "usage error" in err
+    assert main(["frobnicate"]) == 2
+    assert len(error_lines(capsys.readouterr().err)) == 1
+
+
+def test_debug_reraises(tmp_path):
+    s = Scenario(tmp_path)
+    s.people.write_bytes(b"")
+    with pytest.raises(errors.InputError):
+        main(s.argv() + ["--debug"])
+
+
+def test_keyboard_interrupt_is_one_line(tmp_path, capsys, monkeypatch):
+    import aggpub.pipeline as pipeline
+
+    def interrupted(*a, **k):
+        raise KeyboardInterrupt
+
+    monkeypatch.setattr(pipeline, "load_network", interrupted)
+    s = Scenario(tmp_path)
+    assert main(s.argv()) == 130
+    err = capsys.readouterr().err
+    assert error_lines(err) == ["aggpub: interrupted; nothing was published"]
+    assert not s.out.exists()
