@@ -67,6 +67,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--seed", type=int, help="TESTS ONLY: fixed noise seed; the bundle is marked non-private")
     p.add_argument("--report", type=Path, metavar="DIR",
                    help="folder for the CONFIDENTIAL audit report (report.html, audit.json; true statistics, never for researchers); default: <out>.report beside the bundle")
+    p.add_argument("--audit-draws", type=int, default=20, metavar="N",
+                   help="fresh noise draws of the audit's Monte Carlo error spread (default 20; fewer is faster "
+                        "on very large tables, 0 skips the spread)")
     _add_common(p)
 
     p = sub.add_parser("check", help="verify a bundle (checksums, schema, metadata, invariants)",
@@ -152,6 +155,12 @@ def _print_audit(release):
     print(f"CONFIDENTIAL audit report (board only, not for researchers): {release.report_path}")
 
 
+def _non_negative(value, option):
+    if value < 0:
+        raise UsageError(f"aggpub release: {option} must be >= 0, got {value}")
+    return value
+
+
 def cmd_release(args):
     from .bundle._files import check_outside_inputs
     from .pipeline import Progress, run_release
@@ -164,7 +173,8 @@ def cmd_release(args):
                                 overwrite=args.overwrite, source=args.source_column, target=args.target_column,
                                 node=args.node_column, weight=args.weight_column, drop_unknown=args.drop_unknown,
                                 engine=args.engine, progress=Progress(args.quiet), debug=args.debug,
-                                memory_limit=args.memory_limit, report=args.report)
+                                memory_limit=args.memory_limit, report=args.report,
+                                monte_carlo=_non_negative(args.audit_draws, "--audit-draws"))
     _print_release(release, path)
     return 0
 

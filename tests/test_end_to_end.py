@@ -116,3 +116,16 @@ def test_every_command_has_help(capsys):
             main(cmd + ["--help"])
         assert exc.value.code == 0
     assert "usage" in capsys.readouterr().out
+
+
+def test_audit_draws_option(tmp_path, capsys):
+    from aggpub.demo import write_demo_inputs
+
+    paths = write_demo_inputs(tmp_path / "in", n_people=2000)
+    base = ["release", "--policy", str(paths["policy"]), "--edges", str(paths["edges"]),
+            "--nodes", str(paths["people"]), "--quiet"]
+    assert main(base + ["--out", str(tmp_path / "b"), "--audit-draws", "-1"]) == 2
+    assert main(base + ["--out", str(tmp_path / "b"), "--audit-draws", "0"]) == 0
+    audit = json.loads((tmp_path / "b.report" / "audit.json").read_text())
+    assert audit["settings"]["monte_carlo_draws"] == 0
+    assert "monte_carlo" not in audit["queries"]["superedge_cells"]
