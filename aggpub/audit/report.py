@@ -346,6 +346,15 @@ def render_html(audit: dict) -> str:
                      "err more than the variance alone predicts. The spread column re-draws the noise on the "
                      "true table. Every workload here is an exact sum of superedge cells, so grouping alone "
                      "loses nothing on it; all of its error is noise.</p>")
+        urows = [[html.escape(name), _fmt(w["from_unclamped_counts"]["mean_absolute_error"]),
+                  _fmt(w["from_unclamped_counts"]["median_relative_error"]),
+                  _fmt(w["from_unclamped_counts"]["p90_relative_error"])]
+                 for name, w in q.items() if "from_unclamped_counts" in w]
+        if urows:
+            parts.append('<p class="note">The same workloads answered by summing <code>edge_count_unclamped</code> '
+                         "(the noisy counts before clamping, also in the bundle, unbiased), as the researcher "
+                         "data card advises for sums:</p>")
+            parts.append(_table(["workload", "mean abs. error", "median rel. error", "p90 rel. error"], urows))
         cells = q.get("superedge_cells", {})
         if "released_total_minus_true_total" in cells:
             diff = cells["released_total_minus_true_total"]
