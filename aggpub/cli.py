@@ -197,7 +197,7 @@ def cmd_check(args):
 
 
 def cmd_demo(args):
-    from .demo import DEMO_POLICY_FILE, write_demo_inputs
+    from .demo import write_demo_inputs
     from .pipeline import Progress, run_release
 
     out = args.out.absolute()

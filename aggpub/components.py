@@ -206,8 +206,7 @@ def release_superedge_counts(truth: SuperedgeTruth, public_sizes, epsilon: float
         "noise_scale": pa.array(np.full(n, mech.scale)),
         "ci95_half_width": pa.array(np.full(n, mech.interval_half_width(confidence), dtype=np.int64)),
     })
-    spend = Spend(name="superedge_counts", epsilon=epsilon, sensitivity=sens, mechanism=mech.name,
-                  scale=mech.scale)
+    spend = Spend.of("superedge_counts", mech)
     return table, spend, mech
 
 
@@ -235,8 +234,7 @@ def release_cell_counts(true_counts, epsilon: float, source, sens: float = 1.0):
     """
     mech = GeometricMechanism(epsilon=epsilon, sensitivity=sens)
     noisy = mech.randomise(np.asarray(true_counts, dtype=np.int64), source)
-    spend = Spend(name="supernode_sizes", epsilon=epsilon, sensitivity=sens, mechanism=mech.name,
-                  scale=mech.scale)
+    spend = Spend.of("supernode_sizes", mech)
     return noisy, spend, mech
 
 
@@ -308,8 +306,7 @@ def release_degree_histograms(truth, sizes, epsilon: float, sens: float, source,
         "noise_scale": pa.array(np.full(n, mech.scale)),
         "ci95_half_width": pa.array(np.full(n, mech.interval_half_width(confidence), dtype=np.int64)),
     })
-    spend = Spend(name="degree_histograms", epsilon=epsilon, sensitivity=sens, mechanism=mech.name,
-                  scale=mech.scale)
+    spend = Spend.of("degree_histograms", mech)
     return table, spend, mech
 
 
@@ -342,6 +339,5 @@ def release_weight_totals(truth: SuperedgeTruth, public_sizes, clip: int, epsilo
         "noise_scale": pa.array(np.full(n, mech.scale)),
         "ci95_half_width": pa.array(np.full(n, mech.interval_half_width(confidence), dtype=np.int64)),
     })
-    spend = Spend(name="weight_totals", epsilon=epsilon, sensitivity=sens, mechanism=mech.name,
-                  scale=mech.scale)
+    spend = Spend.of("weight_totals", mech)
     return table, spend, mech

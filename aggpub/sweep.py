@@ -570,14 +570,6 @@ def _plot(result: SweepResult, path: Path) -> None:
     plt.close(fig)
 
 
-def _fsync_file(path: Path) -> None:
-    fd = os.open(path, os.O_RDONLY)
-    try:
-        os.fsync(fd)
-    finally:
-        os.close(fd)
-
-
 def write_sweep(result: SweepResult, out, *, overwrite: bool = False) -> Path:
     """Write the sweep folder (``README.txt``, ``sweep.csv``, ``sweep.json``, ``errors_vs_epsilon.png``).
 
@@ -606,7 +598,7 @@ def write_sweep(result: SweepResult, out, *, overwrite: bool = False) -> Path:
         (tmp / "sweep.json").write_text(json.dumps(result.as_dict(), indent=1, default=float), encoding="utf-8")
         _plot(result, tmp / "errors_vs_epsilon.png")
         for f in tmp.iterdir():
-            _fsync_file(f)
+            fsync_path(f)
         fsync_path(tmp)
         if out.exists():
             old = temp_sibling(out, "old")

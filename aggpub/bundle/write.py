@@ -9,7 +9,6 @@ import os
 import shutil
 from pathlib import Path
 
-import pyarrow as pa
 import pyarrow.parquet as pq
 
 from ..errors import OutputError

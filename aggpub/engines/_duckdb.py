@@ -203,8 +203,6 @@ class DuckDBEngine:
 
     def load(self, edges_src, people_src, *, source, target, node, weight, drop_unknown, attributes,
              debug=False) -> Network:
-        from ..errors import closest_name
-
         edge_name = "edge table" if isinstance(edges_src, pa.Table) else str(edges_src)
         people_name = "person table" if isinstance(people_src, pa.Table) else str(people_src)
 

@@ -18,6 +18,12 @@ class Spend:
     mechanism: str
     scale: float
 
+    @classmethod
+    def of(cls, name: str, mechanism) -> "Spend":
+        """The spend of one use of ``mechanism`` (its epsilon, sensitivity, name and scale)."""
+        return cls(name=name, epsilon=float(mechanism.epsilon), sensitivity=float(mechanism.sensitivity),
+                   mechanism=mechanism.name, scale=float(mechanism.scale))
+
     def as_dict(self) -> dict:
         return {"name": self.name, "epsilon": self.epsilon, "sensitivity": self.sensitivity,
                 "mechanism": self.mechanism, "scale": self.scale}

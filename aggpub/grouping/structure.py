@@ -109,8 +109,7 @@ def noisy_degrees(degrees, epsilon: float, source, name: str = "grouping_degrees
     """
     mech = GeometricMechanism(epsilon=epsilon, sensitivity=DEGREE_SENSITIVITY)
     noisy = mech.randomise(np.asarray(degrees, dtype=np.int64), source)
-    return noisy, Spend(name=name, epsilon=mech.epsilon, sensitivity=float(DEGREE_SENSITIVITY),
-                        mechanism=mech.name, scale=mech.scale)
+    return noisy, Spend.of(name, mech)
 
 
 # --------------------------------------------------------------------------- step 2
@@ -197,8 +196,7 @@ def _profile_features(engine, assignment, n_groups, dhat, epsilon, source, name,
     logd = np.log1p(np.maximum(np.asarray(dhat, dtype=np.float64), 0.0))
     sd = logd.std()
     feats[:, n_groups] = DEGREE_FEATURE_WEIGHT * (logd - logd.mean()) / (sd if sd > 0 else 1.0)
-    spend = Spend(name=name, epsilon=mech.epsilon, sensitivity=float(PROFILE_SENSITIVITY),
-                  mechanism=mech.name, scale=mech.scale)
+    spend = Spend.of(name, mech)
     return feats, spend
 
 
