@@ -91,3 +91,16 @@ def test_missing_files(tmp_path):
         load_network(tmp_path / "nope.csv", write(tmp_path, "p.csv", PEOPLE_CSV))
     with pytest.raises(InputError, match="person file not found"):
         load_network(write(tmp_path, "e.csv", EDGES_CSV), tmp_path / "nope.csv")
+
+
+def test_degrees_are_kept_per_load_and_forgotten_on_reload(tmp_path):
+    from aggpub.engines import make_engine
+
+    engine = make_engine("duckdb")
+    people = write(tmp_path, "p.csv", PEOPLE_CSV)
+    load_network(write(tmp_path, "e.csv", EDGES_CSV), people, engine=engine)
+    first = engine.degrees(4)
+    first[:] = 99  # callers get a copy; the kept value is not changed
+    assert engine.degrees(4).tolist() == [2, 2, 1, 1]
+    load_network(write(tmp_path, "f.csv", "source,target\np3,p4\n"), people, engine=engine)
+    assert engine.degrees(4).tolist() == [0, 0, 1, 1]

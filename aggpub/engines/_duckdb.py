@@ -404,6 +404,7 @@ class DuckDBEngine:
                             FROM __mapped WHERE u < v AND u >= 0""")
         self.con.execute("DROP TABLE __mapped")
         self._weighted = bool(weight)
+        self._degrees = None  # new edges: forget degrees of a previous load
 
     # ------------------------------------------------------------------ counting
 
@@ -441,12 +442,20 @@ class DuckDBEngine:
         return (res["a"].astype(np.int64), res["b"].astype(np.int64), res["t"].astype(np.int64))
 
     def degrees(self, n_people: int) -> np.ndarray:
-        """Number of contacts of every person (int64 array of length ``n_people``)."""
+        """Number of contacts of every person (int64 array of length ``n_people``).
+
+        Computed by one pass over the edges and kept: the cap check, the degree
+        histograms, a structural grouping and the audit all ask for it.
+        """
+        cached = getattr(self, "_degrees", None)
+        if cached is not None and len(cached) == n_people:
+            return cached.copy()
         res = self.con.execute("""
             SELECT x, count(*) AS d FROM (SELECT u AS x FROM edges UNION ALL SELECT v FROM edges)
             GROUP BY x""").fetchnumpy()
         out = np.zeros(n_people, dtype=np.int64)
         out[res["x"].astype(np.int64)] = res["d"]
+        self._degrees = out.copy()  # the edges do not change after load
         return out
 
     def degree_histograms(self, assignment: np.ndarray, n_groups: int, cap: int) -> np.ndarray:
