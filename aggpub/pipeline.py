@@ -378,7 +378,7 @@ def publish(release: Release, out, *, overwrite: bool = False, _fault=None) -> P
 
 def run_release(policy, edges, people, out, *, seed=None, overwrite=False, source=None, target=None,
                 node=None, weight=None, drop_unknown=None, engine="duckdb", progress=None, debug=False,
-                memory_limit=None, report=None, monte_carlo=20):
+                memory_limit=None, report=None, monte_carlo=None):
     """The whole release from files: read, build, audit, gate, publish. Returns ``(release, bundle_path)``.
 
     The audit (:func:`aggpub.audit.audit_release`) compares the release with the
@@ -392,8 +392,8 @@ def run_release(policy, edges, people, out, *, seed=None, overwrite=False, sourc
     from the machine); the engine spills beyond it into a private folder beside
     ``out``, removed afterwards.
     """
-    from .audit import audit_release, gate_failure_message
-    from .audit.report import check_report_target, default_report_path, write_report
+    from ._warm import warm_imports
+    from .audit.report import check_report_target, default_report_path
     from .bundle._files import prepare_target
     from .engines import make_engine
     from .errors import GateError
@@ -401,6 +401,9 @@ def run_release(policy, edges, people, out, *, seed=None, overwrite=False, sourc
     progress = progress or _silent
     if not isinstance(policy, ReleasePolicy):
         policy = read_policy(policy)
+    # the audit's, the accountant's and the report's libraries (about 3 s of imports) load in the
+    # background while DuckDB reads the input
+    warm_imports()
     out = Path(out).absolute()
     prepare_target(out, overwrite)  # fail before the work, not after
     report_dir = Path(report).absolute() if report is not None else default_report_path(out)
@@ -424,6 +427,11 @@ def run_release(policy, edges, people, out, *, seed=None, overwrite=False, sourc
             release.manifest["ledger"] = charge.as_dict()
             progress(f"ledger: charged epsilon {charge.epsilon:g} to '{charge.dataset}', "
                      f"{charge.remaining:g} of {charge.lifetime_epsilon:g} left")
+        from ._warm import wait_for_warm_imports
+        from .audit import audit_release, gate_failure_message
+        from .audit.report import write_report
+
+        wait_for_warm_imports()
         progress("auditing the release against the true network (confidential)")
         release.audit = audit_release(release, monte_carlo=monte_carlo, progress=progress)
         gate = release.audit["gate"]

@@ -116,6 +116,19 @@ def test_implied_degree_pmf_is_the_sum_of_binomials():
     pp, m2 = implied_degree_pmf(a, b, counts, sizes, method="poisson")
     assert m2 == "poisson"
     assert np.dot(np.arange(len(pp)), pp) == pytest.approx(np.dot(np.arange(len(pmf)), pmf), rel=1e-9)
+    # and is the size-weighted mixture of scipy.stats.poisson laws with those means
+    rates = (np.bincount(a, weights=counts, minlength=3) + np.bincount(b, weights=counts, minlength=3)) / sizes
+    ref_p = sum(sizes[g] / sizes.sum() * stats.poisson.pmf(np.arange(len(pp)), rates[g]) for g in range(3))
+    np.testing.assert_allclose(pp, ref_p, rtol=1e-12, atol=1e-15)
+
+
+def test_poisson_pmf_helper_matches_scipy():
+    """The audit's log-space Poisson pmf against scipy.stats.poisson.pmf, rate 0 included."""
+    from aggpub.audit.degrees import _poisson_pmf
+
+    k = np.arange(200)[None, :]
+    lam = np.array([0.0, 1e-9, 0.3, 1.0, 7.5, 60.0, 150.0])[:, None]
+    np.testing.assert_allclose(_poisson_pmf(k, lam), stats.poisson.pmf(k, lam), rtol=1e-10, atol=1e-300)
 
 
 def test_grouping_loss_is_zero_on_a_graph_that_is_exactly_a_block_model():

@@ -18,9 +18,19 @@ from networkx.algorithms.community import greedy_modularity_communities
 
 from aggpub import load_network
 from aggpub.components import cell_index, dense_truth
+from aggpub.engines import _duckdb
 from aggpub.pipeline import release_tables
 
 from .conftest import graph_tables, simple_policy
+
+
+@pytest.fixture(autouse=True, params=["numpy-dense", "sql"])
+def counting_path(request, monkeypatch):
+    """Every test here runs on both counting paths of the DuckDB engine: the dense numpy table (small
+    tables, the default) and the join + GROUP BY in SQL (tables above DENSE_COUNT_MAX_CELLS)."""
+    if request.param == "sql":
+        monkeypatch.setattr(_duckdb, "DENSE_COUNT_MAX_CELLS", 0)
+    return request.param
 
 
 def quotient_counts(G, blocks):

@@ -11,7 +11,6 @@ from datetime import datetime, timezone
 import numpy as np
 
 from .. import components as comp
-from ..noise.sampler import make_random_source
 from . import degrees as deg
 from . import queries as qw
 from . import structure as struct
@@ -23,6 +22,11 @@ MAX_STRUCTURE_EDGES = 500_000  # above this the sampled-structure comparison is 
 MAX_AUDIT_CELLS = 30_000_000
 #: Bound on draws x cells held in memory at once by the Monte Carlo.
 MC_CHUNK_VALUES = 20_000_000
+#: Monte Carlo draws when none are asked for: as many as fit ``MC_DEFAULT_VALUES`` values
+#: (draws x cells), between ``MC_DEFAULT_MIN`` and ``MC_DEFAULT_MAX``.
+MC_DEFAULT_MAX = 20
+MC_DEFAULT_MIN = 5
+MC_DEFAULT_VALUES = 10_000_000
 RESIDUAL = "*"
 
 
@@ -50,24 +54,70 @@ def _label_columns(release):
     return [c for c in labels.column_names if c not in ("supernode", "size")]
 
 
-def _mc_draws(mech, truth, cap, draws, source, threshold=None):
-    """Yield chunks of re-drawn released tables (draws x cells), post-processed as the release is.
+def _mc_draws(mech, truth, draws, source):
+    """Yield chunks of fresh noisy tables ``truth + noise`` (draws x cells), before post-processing.
 
-    ``clip(truth + noise, 0, cap)`` on every cell; with a sparse ``threshold``,
-    cells whose noisy value is below it are absent (read as 0), which is the law
-    the sparse release samples (noise every cell, then threshold).
+    One noise draw serves every figure that reads it (each applies :func:`_post_process`
+    with its own bounds), so the Monte Carlo draws each value once.
     """
     n = len(truth)
     per = max(1, MC_CHUNK_VALUES // max(n, 1))
     done = 0
     while done < draws:
         r = min(per, draws - done)
-        noisy = truth[None, :] + mech.noise((r, n), source)
-        out = np.clip(noisy, 0, cap[None, :])
-        if threshold is not None:
-            out = np.where(noisy >= threshold, out, 0)
-        yield out
+        yield truth[None, :] + mech.noise((r, n), source)
         done += r
+
+
+def _post_process(noisy, cap, threshold=None):
+    """A noisy table post-processed as the release is.
+
+    ``clip(noisy, 0, cap)`` on every cell; with a sparse ``threshold``, cells
+    whose noisy value is below it are absent (read as 0), which is the law the
+    sparse release samples (noise every cell, then threshold).
+    """
+    out = np.clip(noisy, 0, cap[None, :])
+    if threshold is not None:
+        out = np.where(noisy >= threshold, out, 0)
+    return out
+
+
+def default_monte_carlo(n_cells: int) -> int:
+    """Monte Carlo draws the audit makes by default on a table of ``n_cells`` cells.
+
+    20 draws up to 500,000 cells; fewer above (each draw costs a pass over every
+    cell and every workload), never fewer than 5. The spread of an error figure
+    over 5 draws is rough but its mean is not: the expected errors beside it are
+    exact.
+    """
+    per = MC_DEFAULT_VALUES // max(int(n_cells), 1)
+    return int(min(MC_DEFAULT_MAX, max(MC_DEFAULT_MIN, per)))
+
+
+def _audit_source():
+    """Randomness for the audit's Monte Carlo: PCG64 seeded from the operating system's entropy.
+
+    The re-drawn tables are never published (only error figures computed from
+    them go into the confidential report), so a fast generator seeded once from
+    the operating system serves; reading the operating system's source for each
+    of millions of values costs seconds on large tables.
+    """
+    import secrets
+
+    from ..noise.sampler import SeededRandomSource
+
+    return SeededRandomSource(secrets.randbits(63))
+
+
+def _mc_errors(true, estimate, sanity_bound: float) -> tuple[float, float, float]:
+    """Mean absolute, median relative and p90 relative error (the Monte Carlo's figures).
+
+    The same definitions as :func:`aggpub.audit.metrics.error_summary`, without
+    the figures the Monte Carlo does not keep.
+    """
+    abs_err = np.abs(estimate - true)
+    p50, p90 = np.percentile(abs_err / np.maximum(true, sanity_bound), [50, 90])
+    return float(abs_err.mean()), float(p50), float(p90)
 
 
 def _spread(values) -> dict:
@@ -89,7 +139,7 @@ def _expected_abs(mech, var_q, single_cell: bool):
     return np.sqrt(2 * np.asarray(var_q) / math.pi)
 
 
-def audit_release(release, *, monte_carlo: int = 20, source=None, structure_samples: int = 3,
+def audit_release(release, *, monte_carlo: int | None = None, source=None, structure_samples: int = 3,
                   n_cut_queries: int = 200, sanity_bound: float | None = None, seed: int | None = None,
                   progress=None) -> dict:
     """Audit a built release against the true network it came from.
@@ -98,12 +148,14 @@ def audit_release(release, *, monte_carlo: int = 20, source=None, structure_samp
     ----------
     release : aggpub.pipeline.Release
         From :func:`aggpub.pipeline.build_release` (holds the confidential truth).
-    monte_carlo : int
+    monte_carlo : int, optional
         Number of fresh noise draws on the true table for the spread of each
-        error figure (0: none).
+        error figure (0: none; default :func:`default_monte_carlo` of the number
+        of superedge cells: 20 on small tables, at least 5 on large ones).
     source : aggpub.noise.RandomSource, optional
-        Randomness for the Monte Carlo noise (default: operating-system entropy).
-        Separate from the release's own noise; the re-drawn tables are never published.
+        Randomness for the Monte Carlo noise (default: PCG64 seeded from the
+        operating system's entropy, see :func:`_audit_source`). Separate from the
+        release's own noise; the re-drawn tables are never published.
     structure_samples : int
         Synthetic networks sampled from the release (and as many from the true
         aggregate) for the structure comparison (0: skip).
@@ -131,10 +183,12 @@ def audit_release(release, *, monte_carlo: int = 20, source=None, structure_samp
     from .gate import evaluate_gate
 
     progress = progress or _silent
-    source = source or make_random_source(None)
+    source = source or _audit_source()
     rng = np.random.default_rng(seed)
     network, grouping, policy = release.network, release.grouping, release.policy
     n_groups = grouping.n_supernodes
+    if monte_carlo is None:
+        monte_carlo = default_monte_carlo(n_groups * (n_groups + 1) // 2)
     true_sizes = np.asarray(release.truth["sizes"], dtype=np.int64)
     pub_sizes = _col(release.tables["supernodes"], "size").astype(np.int64)
     n_edges = int(network.n_edges)
@@ -185,6 +239,7 @@ def audit_release(release, *, monte_carlo: int = 20, source=None, structure_samp
             out["notes"].append(f"sparse superedge release: cells whose noisy count fell below {threshold} are "
                                 "absent and read as 0 (the Monte Carlo applies the same threshold)")
     mech = release.mechanisms.get("superedge_counts")
+    deg_mc = None
     dd = {"true_mean_degree": float(true_deg.mean()), "true_max_degree": int(true_deg.max())}
     plot["true_pmf"] = true_hist / true_hist.sum()
     if have_edges:
@@ -234,17 +289,10 @@ def audit_release(release, *, monte_carlo: int = 20, source=None, structure_samp
         plot["released_pmf"] = block_pmf
         plot["released_basis"] = "block model of the released superedges"
         if monte_carlo and mech is not None:
-            ks, w1, l1 = [], [], []
-            n_deg_draws = int(min(monte_carlo, 5))  # each draw recomputes the block-model mixture
-            for chunk in _mc_draws(mech, st.count, cap_true, n_deg_draws, source, threshold):
-                for row in chunk:
-                    pmf, _ = deg.implied_degree_pmf(st.a, st.b, row, true_sizes, method=method)
-                    d = distribution_distances(true_hist, pmf)
-                    ks.append(d["ks"])
-                    w1.append(d["wasserstein1"])
-                    l1.append(d["l1"])
-            dd["monte_carlo"] = {"ks": _spread(ks), "wasserstein1": _spread(w1), "l1": _spread(l1),
-                                 "note": f"{n_deg_draws} fresh noise draws on the true superedge table"}
+            # filled by the Monte Carlo of the query workloads below, from its first draws
+            deg_mc = {"draws": int(min(monte_carlo, 5)),  # each draw recomputes the block-model mixture
+                      "terms": deg.block_model_terms(st.a, st.b, true_sizes), "ks": [], "wasserstein1": [],
+                      "l1": []}
     else:
         dd["basis"] = "not measurable: the release has neither superedge counts nor degree histograms"
         out["notes"].append(dd["basis"])
@@ -271,14 +319,27 @@ def audit_release(release, *, monte_carlo: int = 20, source=None, structure_samp
                     for w in workloads}
         if monte_carlo and mech is not None:
             progress(f"audit: {int(monte_carlo)} fresh noise draws on the true table (Monte Carlo)")
-            for chunk in _mc_draws(mech, st.count, cap_pub, int(monte_carlo), source, threshold):
+            true_answers = {w.name: w.answer(true_t) for w in workloads}
+            for noisy in _mc_draws(mech, st.count, int(monte_carlo), source):
+                if deg_mc is not None:  # the degree distribution's spread, from the same draws
+                    for row in _post_process(noisy[:deg_mc["draws"] - len(deg_mc["ks"])], cap_true, threshold):
+                        pmf, _ = deg.implied_degree_pmf(st.a, st.b, row, true_sizes, method=method,
+                                                        terms=deg_mc["terms"])
+                        for k, v in distribution_distances(true_hist, pmf).items():
+                            deg_mc[k].append(v)
+                chunk = _post_process(noisy, cap_pub, threshold).astype(np.float64)  # once for all workloads
+                del noisy
                 for w in workloads:
-                    ans = w.answer(chunk)
-                    tru = w.answer(true_t)
-                    for row in ans:
-                        e = error_summary(tru, row, s_bound)
-                        for k in mc_stats[w.name]:
-                            mc_stats[w.name][k].append(e[k])
+                    tru = true_answers[w.name]
+                    for row in w.answer(chunk):
+                        mae, p50, p90 = _mc_errors(tru, row, s_bound)
+                        mc_stats[w.name]["mean_absolute_error"].append(mae)
+                        mc_stats[w.name]["median_relative_error"].append(p50)
+                        mc_stats[w.name]["p90_relative_error"].append(p90)
+            if deg_mc is not None:
+                dd["monte_carlo"] = {k: _spread(deg_mc[k]) for k in ("ks", "wasserstein1", "l1")}
+                dd["monte_carlo"]["note"] = (f"{deg_mc['draws']} fresh noise draws on the true superedge table "
+                                             "(the first draws of the query workloads' Monte Carlo)")
         for w in workloads:
             tru = w.answer(true_t)
             est = w.answer(rel_cells)

@@ -18,10 +18,10 @@ on an FFT grid; for very many supernodes the Poisson approximation
 
 from __future__ import annotations
 
-__all__ = ["cell_matrix", "implied_degree_pmf", "released_histogram_degrees", "true_degree_histogram"]
+__all__ = ["block_model_terms", "cell_matrix", "implied_degree_pmf", "released_histogram_degrees", "true_degree_histogram"]
 
 import numpy as np
-from scipy import stats
+from scipy import special
 
 from ..components import possible_pairs
 
@@ -50,7 +50,35 @@ def _per_member_rates(a, b, count, sizes):
     return ends / np.maximum(sizes, 1.0)
 
 
-def implied_degree_pmf(a, b, count, sizes, *, method: str = "auto") -> tuple[np.ndarray, str]:
+def _poisson_pmf(k, lam):
+    """Poisson pmf ``lam^k e^-lam / k!`` in log space (``0^0 = 1``, so rate 0 puts all mass on 0).
+
+    Written out with :mod:`scipy.special` instead of calling ``scipy.stats.poisson``,
+    whose import costs most of a second; the test suite checks it against
+    ``scipy.stats.poisson.pmf``.
+    """
+    return np.exp(special.xlogy(k, lam) - lam - special.gammaln(k + 1.0))
+
+
+def block_model_terms(a, b, sizes) -> dict:
+    """The parts of :func:`implied_degree_pmf` that depend only on the cells and the sizes.
+
+    Computed once and passed as ``terms`` when many tables over the same cells
+    are read (the audit's Monte Carlo).
+    """
+    a = np.asarray(a, dtype=np.int64)
+    b = np.asarray(b, dtype=np.int64)
+    sizes = np.asarray(sizes, dtype=np.int64)
+    diag = a == b
+    # trials of a member of a towards b (m_ab) and of a member of b towards a (m_ba)
+    m_ab = np.where(diag, sizes[a] - 1.0, sizes[b].astype(np.float64))
+    m_ba = np.where(diag, 0.0, sizes[a].astype(np.float64))
+    return {"a": a, "b": b, "sizes": sizes, "cap": possible_pairs(sizes, a, b).astype(np.float64),
+            "m_ab": m_ab, "m_ba": m_ba}
+
+
+def implied_degree_pmf(a, b, count, sizes, *, method: str = "auto", terms: dict | None = None
+                       ) -> tuple[np.ndarray, str]:
     """Degree distribution implied by superedge counts read as a block model.
 
     Parameters
@@ -64,6 +92,9 @@ def implied_degree_pmf(a, b, count, sizes, *, method: str = "auto") -> tuple[np.
     method : {"auto", "binomial", "poisson"}
         ``binomial``: exact sum of per-cell binomials (FFT); ``poisson``: the
         Poisson approximation; ``auto``: binomial unless too large.
+    terms : dict, optional
+        :func:`block_model_terms` of the same ``a``, ``b``, ``sizes`` (inputs
+        already validated; saves recomputing them for every table).
 
     Returns
     -------
@@ -77,11 +108,10 @@ def implied_degree_pmf(a, b, count, sizes, *, method: str = "auto") -> tuple[np.
     M. Hay, G. Miklau, D. Jensen, D. Towsley, P. Weis, "Resisting structural
     re-identification in anonymized social networks", PVLDB 1(1), 2008.
     """
-    a = np.asarray(a, dtype=np.int64)
-    b = np.asarray(b, dtype=np.int64)
-    sizes = np.asarray(sizes, dtype=np.int64)
+    if terms is None:
+        terms = block_model_terms(a, b, sizes)
+    a, b, sizes, cap = terms["a"], terms["b"], terms["sizes"], terms["cap"]
     n = len(sizes)
-    cap = possible_pairs(sizes, a, b).astype(np.float64)
     count = np.clip(np.asarray(count, dtype=np.float64), 0.0, cap)
     weights = sizes / sizes.sum()
     lam = _per_member_rates(a, b, count, sizes)
@@ -89,13 +119,9 @@ def implied_degree_pmf(a, b, count, sizes, *, method: str = "auto") -> tuple[np.
         p_cell = np.where(cap > 0, count / np.where(cap > 0, cap, 1.0), 0.0)
     var = np.zeros(n)
     # variance of a member of a: sum_b m_ab p (1 - p)
-    m_ab = sizes[b].astype(np.float64)
-    m_ba = sizes[a].astype(np.float64)
-    diag = a == b
-    m_ab = np.where(diag, sizes[a] - 1.0, m_ab)
-    m_ba = np.where(diag, 0.0, m_ba)
     pq = p_cell * (1 - p_cell)
-    var += np.bincount(a, weights=m_ab * pq, minlength=n) + np.bincount(b, weights=m_ba * pq, minlength=n)
+    var += (np.bincount(a, weights=terms["m_ab"] * pq, minlength=n)
+            + np.bincount(b, weights=terms["m_ba"] * pq, minlength=n))
     top = int(np.ceil(np.max(lam + 12 * np.sqrt(np.maximum(var, lam)) + 20))) if n else 1
     grid = 1 << max(4, int(np.ceil(np.log2(top + 1))))
     if method == "auto":
@@ -105,7 +131,7 @@ def implied_degree_pmf(a, b, count, sizes, *, method: str = "auto") -> tuple[np.
         pmf = np.zeros(top + 1)
         for lo in range(0, n, 256):  # chunks of supernodes; bounded memory
             hi = min(n, lo + 256)
-            pmf += weights[lo:hi] @ stats.poisson.pmf(k[None, :], lam[lo:hi, None])
+            pmf += weights[lo:hi] @ _poisson_pmf(k[None, :], lam[lo:hi, None])
         return pmf, "poisson"
     if method != "binomial":
         raise ValueError(f"'method' must be 'auto', 'binomial' or 'poisson', got {method!r}")

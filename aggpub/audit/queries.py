@@ -90,9 +90,15 @@ def contact_matrix_workload(a, b, values, attribute: str) -> Workload:
     ca, cb = code[a], code[b]
     lo, hi = np.minimum(ca, cb), np.maximum(ca, cb)
     pair = lo * k - (lo * (lo - 1)) // 2 + (hi - lo)  # upper-triangle index of (lo, hi)
-    used, q = np.unique(pair, return_inverse=True)
+    # the pairs that occur, in increasing order, and each cell's row among them (a counting pass over
+    # the k (k + 1) / 2 possible pairs instead of sorting every cell)
+    used = np.flatnonzero(np.bincount(pair, minlength=k * (k + 1) // 2))
+    row_of = np.full(k * (k + 1) // 2, -1, dtype=np.int64)
+    row_of[used] = np.arange(len(used))
+    q = row_of[pair]
     n_cells = len(a)
-    mat = sparse.csr_matrix((np.ones(n_cells), (q, np.arange(n_cells))), shape=(len(used), n_cells))
+    # one entry per column: built as CSC without sorting, then turned into CSR (a counting sort)
+    mat = sparse.csc_matrix((np.ones(n_cells), q, np.arange(n_cells + 1)), shape=(len(used), n_cells)).tocsr()
     ti, tj = np.triu_indices(k)
     labels = [(str(cats[ti[u]]), str(cats[tj[u]])) for u in used]
     generalised = int(sum(1 for c in cats if c == "*"))
@@ -107,17 +113,24 @@ def cut_workload(a, b, n_groups: int, n_queries: int, rng: np.random.Generator,
     n_cells = len(a)
     n_queries = int(max(1, min(n_queries, max_entries // max(n_cells, 1))))
     side = rng.integers(0, 3, size=(n_queries, n_groups))  # 0: first set, 1: second, 2: neither
-    rows, cols = [], []
+    # a cell (a, b) crosses the cut when one end is in set 1 and the other in set 2: with
+    # code = 3 side[a] + side[b], exactly when code is 1 (0, 1) or 3 (1, 0)
+    crosses = np.zeros(9, dtype=bool)
+    crosses[[1, 3]] = True
+    side8 = side.astype(np.int8)
+    side3 = side8 * np.int8(3)
+    indptr = [np.zeros(1, dtype=np.int64)]
+    cols = []
     step = max(1, 20_000_000 // max(n_cells, 1))
     for lo in range(0, n_queries, step):
-        s = side[lo:lo + step]
-        inc = ((s[:, a] == 0) & (s[:, b] == 1)) | ((s[:, a] == 1) & (s[:, b] == 0))
-        r, c = np.nonzero(inc)
-        rows.append(r + lo)
-        cols.append(c)
-    rows = np.concatenate(rows)
+        code = side3[lo:lo + step][:, a]
+        code += side8[lo:lo + step][:, b]
+        inc = crosses[code]
+        flat = np.flatnonzero(inc)  # row-major: already in CSR order
+        indptr.append(np.cumsum(np.count_nonzero(inc, axis=1), dtype=np.int64) + indptr[-1][-1])
+        cols.append((flat % n_cells).astype(np.int32 if n_cells < 2**31 else np.int64))
     cols = np.concatenate(cols)
-    mat = sparse.csr_matrix((np.ones(len(rows)), (rows, cols)), shape=(n_queries, n_cells))
+    mat = sparse.csr_matrix((np.ones(len(cols)), cols, np.concatenate(indptr)), shape=(n_queries, n_cells))
     return Workload("cut_queries", mat, n_cells,
                     notes=[f"{n_queries} random cuts; each supernode joins set 1, set 2 or neither with "
                            "probability 1/3"])

@@ -100,6 +100,10 @@ def audit_to_json(audit: dict) -> str:
 # ---------------------------------------------------------------------- plots
 
 
+#: Points drawn of an error distribution curve (a few per pixel of the figure's width).
+ECDF_POINTS = 4000
+
+
 def _png(fig) -> str:
     buf = io.BytesIO()
     fig.savefig(buf, format="png", dpi=80)
@@ -110,6 +114,9 @@ def _png(fig) -> str:
 
 
 def _plots(audit: dict) -> dict:
+    from .._warm import wait_for_warm_imports
+
+    wait_for_warm_imports()  # matplotlib.use must not see a half-imported pyplot
     import matplotlib
 
     matplotlib.use("Agg", force=True)
@@ -147,7 +154,11 @@ def _plots(audit: dict) -> dict:
         floor = 1e-4
         for name, r in rel.items():
             r = np.sort(np.maximum(np.asarray(r, dtype=float), floor))
-            ax.plot(r, np.arange(1, len(r) + 1) / len(r), label=name)
+            share = np.arange(1, len(r) + 1) / len(r)
+            if len(r) > ECDF_POINTS:  # the curve at the figure's resolution: evenly spaced shares
+                pick = np.unique(np.linspace(0, len(r) - 1, ECDF_POINTS).astype(np.int64))
+                r, share = r[pick], share[pick]
+            ax.plot(r, share, label=name)
         ax.set_xscale("log")
         ax.set_xlabel(f"relative error |released - true| / max(true, s)  (values below {floor:g} drawn at {floor:g})")
         ax.set_ylabel("share of queries at or below")

@@ -20,6 +20,10 @@ from ..ingest import IngestReport, Network, csv_header, file_format
 
 MISSING_ID = -2
 UNKNOWN_ID = -1
+#: Rows per Arrow batch when edges stream out of DuckDB into numpy.
+EDGE_BATCH_ROWS = 1 << 22
+#: Largest table of superedge cells counted densely in numpy (8 bytes a cell: 128 MiB); above, SQL.
+DENSE_COUNT_MAX_CELLS = 1 << 24
 
 
 def quote_ident(name: str) -> str:
@@ -417,7 +421,42 @@ class DuckDBEngine:
         """Non-zero superedge counts: arrays ``a <= b`` and ``count`` (int64).
 
         Inputs already validated: ``assignment[i]`` is the supernode of person ``i``.
+
+        Up to :data:`DENSE_COUNT_MAX_CELLS` cells the edges stream out of DuckDB
+        in Arrow batches and numpy counts them into a dense table (a gather of
+        both ends' supernodes and one ``bincount`` per batch: about 3x faster than
+        the join and GROUP BY, in memory bounded by the batch and the table).
+        Above, the join and GROUP BY run in DuckDB, which spills to disk.
         """
+        assignment = np.asarray(assignment)
+        n_groups = int(assignment.max()) + 1 if len(assignment) else 0
+        if n_groups * (n_groups + 1) // 2 <= DENSE_COUNT_MAX_CELLS:
+            return self._superedge_counts_dense(assignment, n_groups)
+        return self._superedge_counts_sql(assignment)
+
+    def _superedge_counts_dense(self, assignment: np.ndarray, n_groups: int):
+        """Counting into a dense table of every cell (inputs already validated; see :meth:`superedge_counts`)."""
+        n_cells = n_groups * (n_groups + 1) // 2
+        group = assignment.astype(np.int32)  # n_cells <= DENSE_COUNT_MAX_CELLS: n_groups fits easily
+        total = np.zeros(n_cells, dtype=np.int64)
+        for batch in self.con.sql("SELECT u, v FROM edges").to_arrow_reader(EDGE_BATCH_ROWS):
+            gu = group[batch.column(0).to_numpy()]
+            gv = group[batch.column(1).to_numpy()]
+            lo = np.minimum(gu, gv).astype(np.int64)
+            hi = np.maximum(gu, gv) - lo
+            # position of (lo, hi) in the upper triangle, row by row (components.cell_index)
+            hi += lo * n_groups - (lo * (lo - 1)) // 2
+            total += np.bincount(hi, minlength=n_cells)
+        cell = np.flatnonzero(total)
+        # invert the cell index: a is the largest row whose first cell is at or before the cell
+        first = np.arange(n_groups, dtype=np.int64)
+        first = first * n_groups - (first * (first - 1)) // 2
+        a = np.searchsorted(first, cell, side="right") - 1
+        b = cell - first[a] + a
+        return a, b, total[cell]
+
+    def _superedge_counts_sql(self, assignment: np.ndarray):
+        """Counting by a join and GROUP BY in DuckDB (inputs already validated; see :meth:`superedge_counts`)."""
         self._register_assignment(assignment)
         try:
             res = self.con.execute("""
@@ -450,11 +489,14 @@ class DuckDBEngine:
         cached = getattr(self, "_degrees", None)
         if cached is not None and len(cached) == n_people:
             return cached.copy()
-        res = self.con.execute("""
-            SELECT x, count(*) AS d FROM (SELECT u AS x FROM edges UNION ALL SELECT v FROM edges)
-            GROUP BY x""").fetchnumpy()
+        # the edges stream out in Arrow batches and numpy counts both ends of each batch (about 4x
+        # faster than a GROUP BY over both ends); batches of at least n_people rows keep the
+        # per-batch count arrays no larger than the batch, and memory bounded at any edge count
         out = np.zeros(n_people, dtype=np.int64)
-        out[res["x"].astype(np.int64)] = res["d"]
+        reader = self.con.sql("SELECT u, v FROM edges").to_arrow_reader(max(1 << 22, int(n_people)))
+        for batch in reader:
+            for col in batch.columns:
+                out += np.bincount(col.to_numpy(), minlength=n_people)
         self._degrees = out.copy()  # the edges do not change after load
         return out
 

@@ -15,10 +15,10 @@ from __future__ import annotations
 
 __all__ = ["ReleaseBudget"]
 
-from diffprivlib.accountant import BudgetAccountant
-from diffprivlib.utils import BudgetError as _DPLBudgetError
-
 from ..errors import BudgetError
+
+# diffprivlib is imported where it is used: importing it loads scikit-learn (about 1.5 s), which
+# a release overlaps with reading its input (aggpub._warm) and other commands never pay
 
 
 class ReleaseBudget:
@@ -31,12 +31,16 @@ class ReleaseBudget:
     """
 
     def __init__(self, epsilon: float):
+        from diffprivlib.accountant import BudgetAccountant
+
         self.epsilon = float(epsilon)
         self._accountant = BudgetAccountant(epsilon=self.epsilon, delta=0.0)
         self.spends = []
 
     def check(self, spend) -> None:
         """Raise :class:`BudgetError` if ``spend`` would exceed what is left."""
+        from diffprivlib.utils import BudgetError as _DPLBudgetError
+
         try:
             self._accountant.check(spend.epsilon, 0.0)
         except _DPLBudgetError:
