@@ -38,7 +38,8 @@ def _add_input_options(p):
                    help="drop edges naming people missing from the person table (default: fail)")
     p.add_argument("--engine", default="duckdb", choices=("duckdb", "spark"), help="counting engine")
     p.add_argument("--memory-limit", metavar="SIZE",
-                   help="memory cap of the counting engine, e.g. 4GB (default: half the machine, at most 8GB); "
+                   help="memory cap of the counting engine, e.g. 4GB (default: a tenth of the machine, 256MB to 8GB; "
+                        "more is faster on very large inputs); "
                         "beyond it the engine spills to a temporary folder beside --out")
 
 
@@ -69,7 +70,7 @@ def build_parser() -> argparse.ArgumentParser:
                    help="folder for the CONFIDENTIAL audit report (report.html, audit.json; true statistics, never for researchers); default: <out>.report beside the bundle")
     p.add_argument("--audit-draws", type=int, default=None, metavar="N",
                    help="fresh noise draws of the audit's Monte Carlo error spread (default: 20 on tables up to "
-                        "500,000 cells, fewer above, at least 5; 0 skips the spread)")
+                        "300,000 cells, fewer above, at least 3; 0 skips the spread)")
     _add_common(p)
 
     p = sub.add_parser("check", help="verify a bundle (checksums, schema, metadata, invariants)",

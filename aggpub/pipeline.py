@@ -392,7 +392,6 @@ def run_release(policy, edges, people, out, *, seed=None, overwrite=False, sourc
     from the machine); the engine spills beyond it into a private folder beside
     ``out``, removed afterwards.
     """
-    from ._warm import warm_imports
     from .audit.report import check_report_target, default_report_path
     from .bundle._files import prepare_target
     from .engines import make_engine
@@ -401,9 +400,6 @@ def run_release(policy, edges, people, out, *, seed=None, overwrite=False, sourc
     progress = progress or _silent
     if not isinstance(policy, ReleasePolicy):
         policy = read_policy(policy)
-    # the audit's, the accountant's and the report's libraries (about 3 s of imports) load in the
-    # background while DuckDB reads the input
-    warm_imports()
     out = Path(out).absolute()
     prepare_target(out, overwrite)  # fail before the work, not after
     report_dir = Path(report).absolute() if report is not None else default_report_path(out)
@@ -416,7 +412,8 @@ def run_release(policy, edges, people, out, *, seed=None, overwrite=False, sourc
                            node=node or inp.node, weight=_weight_column(policy, weight or inp.weight),
                            drop_unknown=inp.drop_unknown if drop_unknown is None else drop_unknown,
                            attributes=_needed_attributes(policy), debug=debug,
-                           engine=make_engine(engine, memory_limit=memory_limit, spill_parent=out.parent))
+                           engine=make_engine(engine, memory_limit=memory_limit, spill_parent=out.parent,
+                                              progress=progress))
     for line in network.report.lines():
         progress(line)
     try:
@@ -427,11 +424,9 @@ def run_release(policy, edges, people, out, *, seed=None, overwrite=False, sourc
             release.manifest["ledger"] = charge.as_dict()
             progress(f"ledger: charged epsilon {charge.epsilon:g} to '{charge.dataset}', "
                      f"{charge.remaining:g} of {charge.lifetime_epsilon:g} left")
-        from ._warm import wait_for_warm_imports
         from .audit import audit_release, gate_failure_message
         from .audit.report import write_report
 
-        wait_for_warm_imports()
         progress("auditing the release against the true network (confidential)")
         release.audit = audit_release(release, monte_carlo=monte_carlo, progress=progress)
         gate = release.audit["gate"]

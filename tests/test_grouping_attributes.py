@@ -112,3 +112,19 @@ def test_uncovered_hierarchy_value_names_the_key_not_the_value():
         group_by_attributes(people, ["age", "area"], 2, {"age": AGE_LEVELS})
     assert "grouping.hierarchies.age.levels[0]" in str(exc.value)
     assert "90+" not in str(exc.value)
+
+
+def test_counting_and_sorting_encodings_give_the_same_grouping(monkeypatch):
+    """The dense counting pass (few attribute combinations) and np.unique (many) agree exactly."""
+    from aggpub.grouping import attributes as attr_mod
+
+    rng = np.random.default_rng(11)
+    people = people_table([str(x) for x in rng.choice(list(AGE_LEVELS[0]), 2_000)],
+                          [str(x) for x in rng.choice(list(AREA_LEVELS[0]), 2_000)])
+    hier = {"age": AGE_LEVELS, "area": AREA_LEVELS}
+    dense = group_by_attributes(people, ["age", "area"], 40, hier)
+    monkeypatch.setattr(attr_mod, "DENSE_KEY_MAX", 0)
+    sorted_ = group_by_attributes(people, ["age", "area"], 40, hier)
+    assert np.array_equal(dense.assignment, sorted_.assignment)
+    assert dense.labels.equals(sorted_.labels)
+    assert dense.n_supernodes > 3

@@ -25,8 +25,8 @@ MC_CHUNK_VALUES = 20_000_000
 #: Monte Carlo draws when none are asked for: as many as fit ``MC_DEFAULT_VALUES`` values
 #: (draws x cells), between ``MC_DEFAULT_MIN`` and ``MC_DEFAULT_MAX``.
 MC_DEFAULT_MAX = 20
-MC_DEFAULT_MIN = 5
-MC_DEFAULT_VALUES = 10_000_000
+MC_DEFAULT_MIN = 3
+MC_DEFAULT_VALUES = 6_000_000
 RESIDUAL = "*"
 
 
@@ -85,10 +85,10 @@ def _post_process(noisy, cap, threshold=None):
 def default_monte_carlo(n_cells: int) -> int:
     """Monte Carlo draws the audit makes by default on a table of ``n_cells`` cells.
 
-    20 draws up to 500,000 cells; fewer above (each draw costs a pass over every
-    cell and every workload), never fewer than 5. The spread of an error figure
-    over 5 draws is rough but its mean is not: the expected errors beside it are
-    exact.
+    20 draws up to 300,000 cells; fewer above (each draw costs a pass over every
+    cell and every workload), never fewer than 3. An error figure that averages
+    over millions of cells varies little from draw to draw, so a few draws show
+    its spread; the expected errors beside it are exact.
     """
     per = MC_DEFAULT_VALUES // max(int(n_cells), 1)
     return int(min(MC_DEFAULT_MAX, max(MC_DEFAULT_MIN, per)))

@@ -139,10 +139,18 @@ def cut_workload(a, b, n_groups: int, n_queries: int, rng: np.random.Generator,
 def degree_totals_workload(a, b, n_groups: int) -> Workload:
     """Sum of member degrees per supernode."""
     n_cells = len(a)
-    idx = np.arange(n_cells)
+    a = np.asarray(a, dtype=np.int64)
+    b = np.asarray(b, dtype=np.int64)
     diag = a == b
-    rows = np.concatenate([a, b[~diag]])
-    cols = np.concatenate([idx, idx[~diag]])
-    vals = np.concatenate([np.where(diag, 2.0, 1.0), np.ones(int((~diag).sum()))])
-    mat = sparse.csr_matrix((vals, (rows, cols)), shape=(n_groups, n_cells))
+    # column by column (one cell each): the diagonal cell is one entry of 2 at row a, any other
+    # cell two entries of 1 at rows a and b; built as CSC without sorting, then a counting sort to CSR
+    per_col = np.where(diag, 1, 2)
+    indptr = np.zeros(n_cells + 1, dtype=np.int64)
+    np.cumsum(per_col, out=indptr[1:])
+    rows = np.empty(int(indptr[-1]), dtype=np.int64)
+    vals = np.ones(len(rows))
+    rows[indptr[:-1]] = a
+    vals[indptr[:-1][diag]] = 2.0
+    rows[indptr[:-1][~diag] + 1] = b[~diag]
+    mat = sparse.csc_matrix((vals, rows, indptr), shape=(n_groups, n_cells)).tocsr()
     return Workload("supernode_degree_totals", mat, n_cells)

@@ -114,9 +114,6 @@ def _png(fig) -> str:
 
 
 def _plots(audit: dict) -> dict:
-    from .._warm import wait_for_warm_imports
-
-    wait_for_warm_imports()  # matplotlib.use must not see a half-imported pyplot
     import matplotlib
 
     matplotlib.use("Agg", force=True)

@@ -17,6 +17,7 @@ import pyarrow as pa
 
 from ..errors import InputError
 from ..ingest import IngestReport, Network, csv_header, file_format
+from ._progress import LongStep
 
 MISSING_ID = -2
 UNKNOWN_ID = -1
@@ -44,13 +45,24 @@ def fetch_arrow(result) -> pa.Table:
         return fn()
 
 
+#: Share of the machine's physical memory DuckDB may use by default.
+MEMORY_SHARE = 0.10
+
+
 def default_memory_limit() -> str:
-    """Half of physical memory, at most 8 GB, as a DuckDB memory setting."""
+    """A tenth of physical memory, between 256 MB and 8 GB, as a DuckDB memory setting.
+
+    DuckDB spills joins and aggregations beyond it to disk, and the rest of a
+    release (person attributes, the supernode tables, the audit) lives outside
+    it. On a 24 GB machine this is 2.4 GB, with which a release of 10^8 edges
+    and 10^7 people stays under 4 GB resident in all (``benchmarks/bench_scale.py``);
+    pass ``--memory-limit`` to trade memory for speed.
+    """
     try:
         total = os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
     except (ValueError, OSError, AttributeError):
         total = 8 << 30
-    return f"{max(256, min(total // 2, 8 << 30) >> 20)}MB"
+    return f"{max(256, min(int(total * MEMORY_SHARE), 8 << 30) >> 20)}MB"
 
 
 def _clean_duckdb_message(exc: Exception, debug: bool) -> str:
@@ -131,7 +143,8 @@ class DuckDBEngine:
     Parameters
     ----------
     memory_limit : str, optional
-        DuckDB ``memory_limit`` (default: half the machine, at most 8 GB).
+        DuckDB ``memory_limit`` (default :func:`default_memory_limit`: a tenth of
+        the machine, between 256 MB and 8 GB).
     threads : int, optional
         Worker threads (default: DuckDB's choice, all cores).
     temp_directory : str, optional
@@ -143,11 +156,15 @@ class DuckDBEngine:
         Folder in which to create the default spill folder (default: the
         system's temporary folder; the release command uses the output's
         folder, which is on a disk that holds the bundle).
+    progress : callable, optional
+        Takes one message; long statements report how far they are
+        (DuckDB's own estimate) through it every few seconds.
     """
 
     name = "duckdb"
 
-    def __init__(self, memory_limit=None, threads=None, temp_directory=None, spill_parent=None):
+    def __init__(self, memory_limit=None, threads=None, temp_directory=None, spill_parent=None, progress=None):
+        self.progress = progress
         self.con = duckdb.connect(":memory:")
         self.memory_limit = memory_limit or default_memory_limit()
         try:
@@ -174,6 +191,14 @@ class DuckDBEngine:
         self.con.execute(f"SET temp_directory={quote_literal(self.temp_directory)}")
         self.con.execute("SET preserve_insertion_order=false")
         self._weighted = False
+
+    def _long(self, what: str) -> LongStep:
+        """Reports the progress of the statement(s) run inside it (see :class:`LongStep`)."""
+        def poll():
+            pct = self.con.query_progress()
+            return f"{pct:.0f}% of the current statement" if pct is not None and pct >= 0 else None
+
+        return LongStep(self.progress, what, poll)
 
     # ------------------------------------------------------------------ ingest
 
@@ -322,7 +347,8 @@ class DuckDBEngine:
             FROM m GROUP BY 1, 2
         """
         try:
-            self.con.execute(q)
+            with self._long("reading, mapping and collapsing edges"):
+                self.con.execute(q)
         except duckdb.Error as exc:
             self.con.unregister("__ids")
             raise InputError(f"{edge_name}: cannot read edge file: {_clean_duckdb_message(exc, debug)}") from None
@@ -403,9 +429,10 @@ class DuckDBEngine:
 
     def _publish_edges(self, weight):
         """Keep the mapped, canonical contacts as table ``edges`` (inputs already validated)."""
-        self.con.execute("""CREATE OR REPLACE TABLE edges AS
-                            SELECT CAST(u AS INTEGER) AS u, CAST(v AS INTEGER) AS v, w
-                            FROM __mapped WHERE u < v AND u >= 0""")
+        with self._long("keeping the contacts"):
+            self.con.execute("""CREATE OR REPLACE TABLE edges AS
+                                SELECT CAST(u AS INTEGER) AS u, CAST(v AS INTEGER) AS v, w
+                                FROM __mapped WHERE u < v AND u >= 0""")
         self.con.execute("DROP TABLE __mapped")
         self._weighted = bool(weight)
         self._degrees = None  # new edges: forget degrees of a previous load
@@ -439,7 +466,10 @@ class DuckDBEngine:
         n_cells = n_groups * (n_groups + 1) // 2
         group = assignment.astype(np.int32)  # n_cells <= DENSE_COUNT_MAX_CELLS: n_groups fits easily
         total = np.zeros(n_cells, dtype=np.int64)
+        step, done = LongStep(self.progress, "counting superedges"), 0
         for batch in self.con.sql("SELECT u, v FROM edges").to_arrow_reader(EDGE_BATCH_ROWS):
+            done += batch.num_rows
+            step.tick(f"{done:,} contacts counted")
             gu = group[batch.column(0).to_numpy()]
             gv = group[batch.column(1).to_numpy()]
             lo = np.minimum(gu, gv).astype(np.int64)
@@ -459,7 +489,8 @@ class DuckDBEngine:
         """Counting by a join and GROUP BY in DuckDB (inputs already validated; see :meth:`superedge_counts`)."""
         self._register_assignment(assignment)
         try:
-            res = self.con.execute("""
+            with self._long("counting superedges"):
+                res = self.con.execute("""
                 SELECT least(ga.g, gb.g) AS a, greatest(ga.g, gb.g) AS b, count(*) AS c
                 FROM edges e JOIN __assign ga ON e.u = ga.idx JOIN __assign gb ON e.v = gb.idx
                 GROUP BY 1, 2""").fetchnumpy()
@@ -493,8 +524,11 @@ class DuckDBEngine:
         # faster than a GROUP BY over both ends); batches of at least n_people rows keep the
         # per-batch count arrays no larger than the batch, and memory bounded at any edge count
         out = np.zeros(n_people, dtype=np.int64)
-        reader = self.con.sql("SELECT u, v FROM edges").to_arrow_reader(max(1 << 22, int(n_people)))
+        reader = self.con.sql("SELECT u, v FROM edges").to_arrow_reader(max(EDGE_BATCH_ROWS, int(n_people)))
+        step, done = LongStep(self.progress, "counting contacts per person"), 0
         for batch in reader:
+            done += batch.num_rows
+            step.tick(f"{done:,} contacts read")
             for col in batch.columns:
                 out += np.bincount(col.to_numpy(), minlength=n_people)
         self._degrees = out.copy()  # the edges do not change after load

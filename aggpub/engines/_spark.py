@@ -29,6 +29,7 @@ import pyarrow as pa
 
 from ..errors import InputError, UsageError
 from ..ingest import IngestReport, MISSING_ID_SPELLINGS, Network, csv_header, file_format
+from ._progress import LongStep
 
 MISSING_ID = -2
 UNKNOWN_ID = -1
@@ -126,12 +127,16 @@ class SparkEngine:
         supernode assignment, Arrow inputs), as Parquet. On a cluster it must
         be visible to the executors (shared storage); default: a private
         temporary folder, removed by :meth:`close`.
+    progress : callable, optional
+        Takes one message; long Spark jobs report their tasks done through it
+        every few seconds (from Spark's status tracker).
     """
 
     name = "spark"
 
     def __init__(self, spark=None, master="local[2]", memory_limit=None, threads=None, shuffle_partitions=4,
-                 spill_parent=None, temp_directory=None, scratch=None):
+                 spill_parent=None, temp_directory=None, scratch=None, progress=None):
+        self.progress = progress
         if threads:
             master = f"local[{int(threads)}]"
         if memory_limit:
@@ -192,11 +197,26 @@ class SparkEngine:
     def _sql(self, query: str):
         return self.spark.sql(query)
 
+    def _long(self, what: str) -> LongStep:
+        """Reports the tasks done of Spark's running stages while the block runs (see :class:`LongStep`)."""
+        def poll():
+            tracker = self.spark.sparkContext.statusTracker()
+            done = total = 0
+            for stage in tracker.getActiveStageIds():
+                info = tracker.getStageInfo(stage)
+                if info is not None:
+                    done, total = done + info.numCompletedTasks, total + info.numTasks
+            return f"{done:,} of {total:,} tasks of the running stages" if total else None
+
+        return LongStep(self.progress, what, poll)
+
     def _one(self, query: str):
-        return self._sql(query).collect()[0]
+        with self._long("Spark query"):
+            return self._sql(query).collect()[0]
 
     def _numpy(self, query: str) -> dict:
-        table = self._sql(query).toArrow()
+        with self._long("Spark query"):
+            table = self._sql(query).toArrow()
         return {name: table.column(name).to_numpy() for name in table.column_names}
 
     def _read(self, src, what: str, debug: bool):

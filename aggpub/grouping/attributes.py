@@ -35,6 +35,8 @@ from ..errors import InputError, PolicyError, PrivacyError, closest_name
 from ._common import Grouping
 
 RESIDUAL = "*"
+#: Largest number of possible attribute combinations counted with a dense table (8 bytes each).
+DENSE_KEY_MAX = 1 << 24
 
 
 def _encode(people: pa.Table, attributes):
@@ -50,7 +52,16 @@ def _encode(people: pa.Table, attributes):
         key = np.zeros(people.num_rows, dtype=np.int64)
         for c, r in zip(codes, radix):
             key = key * r + c
-        uniq, inverse, counts = np.unique(key, return_inverse=True, return_counts=True)
+        n_keys = int(np.prod(radix))
+        if n_keys <= DENSE_KEY_MAX:  # a counting pass instead of sorting every person (np.unique)
+            full = np.bincount(key, minlength=n_keys)
+            uniq = np.flatnonzero(full)
+            counts = full[uniq]
+            position = np.zeros(n_keys, dtype=np.int64)
+            position[uniq] = np.arange(len(uniq))
+            inverse = position[key]
+        else:
+            uniq, inverse, counts = np.unique(key, return_inverse=True, return_counts=True)
         cell_codes = []
         rest = uniq.copy()
         for r in reversed(radix):

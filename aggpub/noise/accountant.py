@@ -18,7 +18,7 @@ __all__ = ["ReleaseBudget"]
 from ..errors import BudgetError
 
 # diffprivlib is imported where it is used: importing it loads scikit-learn (about 1.5 s), which
-# a release overlaps with reading its input (aggpub._warm) and other commands never pay
+# commands that spend no budget (check, sample, ledger) need not pay
 
 
 class ReleaseBudget:
