@@ -260,8 +260,25 @@ def test_workloads_match_networkx_counts(lesmis_release):
     for p, d in G.degree():
         tot[sn_of[p]] += d
     np.testing.assert_array_equal(dw.answer(st.count), tot)
-    # noise variance of a sum of k independent cells is k times the cell variance
-    np.testing.assert_allclose(cw.noise_variance(2.0), 2.0 * np.asarray(cw.matrix.sum(axis=1)).ravel())
+    # noise variance of a sum of k independent cells is k times the cell variance; k counted by hand
+    crossing = [sum(1 for x, y in zip(st.a, st.b) if {side[q, x], side[q, y]} == {0, 1}) for q in range(25)]
+    np.testing.assert_allclose(cw.noise_variance(2.0), 2.0 * np.array(crossing))
+
+
+def test_cut_queries_dense_and_sparse_paths_agree(monkeypatch):
+    """The dense-matrix evaluation (few supernodes) and the sparse one (many) give the same cuts."""
+    rng = np.random.default_rng(3)
+    n = 30
+    a, b = comp.all_cells(n)
+    tables = rng.poisson(4.0, size=(3, len(a))).astype(np.float64)
+    dense = qw.cut_workload(a, b, n, 40, np.random.default_rng(9))
+    assert isinstance(dense, qw.CutWorkload)
+    monkeypatch.setattr(qw, "DENSE_CUT_MAX_GROUPS", 0)
+    sparse_w = qw.cut_workload(a, b, n, 40, np.random.default_rng(9))
+    assert sparse_w.matrix is not None and sparse_w.n_queries == dense.n_queries == 40
+    np.testing.assert_allclose(dense.answer(tables), sparse_w.answer(tables))
+    np.testing.assert_allclose(dense.answer(tables[0]), sparse_w.answer(tables[0]))
+    np.testing.assert_allclose(dense.noise_variance(1.5), sparse_w.noise_variance(1.5))
 
 
 def test_monte_carlo_matches_the_exact_clamped_error(lesmis_release):

@@ -91,3 +91,41 @@ def test_keyboard_interrupt_is_one_line(tmp_path, capsys, monkeypatch):
     err = capsys.readouterr().err
     assert error_lines(err) == ["aggpub: interrupted; nothing was published"]
     assert not s.out.exists()
+
+
+@pytest.mark.heavy
+def test_the_command_ends_cleanly_after_a_release(tmp_path):
+    """`python -m aggpub release` (run() ends a successful release without interpreter teardown):
+    exit 0, the whole summary printed, the bundle verifies, no spill folder left beside it.
+    A refused release exits the ordinary way with its code."""
+    import subprocess
+    import sys
+
+    s = Scenario(tmp_path)
+    proc = subprocess.run([sys.executable, "-m", "aggpub", *s.argv(), "--seed", "1"], capture_output=True,
+                          text=True, timeout=300)
+    assert proc.returncode == 0, proc.stderr
+    assert proc.stdout.rstrip().splitlines()[-1].startswith("CONFIDENTIAL audit report")
+    assert not list(s.out.parent.glob(".aggpub-spill-*"))
+    check = subprocess.run([sys.executable, "-m", "aggpub", "check", str(s.out)], capture_output=True, text=True,
+                           timeout=300)
+    assert check.returncode == 0 and "bundle verified" in check.stdout
+    s.write_policy(POLICY_TEXT_GATED)
+    refused = subprocess.run([sys.executable, "-m", "aggpub", *s.argv(), "--overwrite"], capture_output=True,
+                             text=True, timeout=300)
+    assert refused.returncode == 6 and "max_degree_ks" in refused.stderr
+
+
+POLICY_TEXT_GATED = """\
+[privacy]
+unit = "edge"
+epsilon = 1.0
+
+[grouping]
+method = "attributes"
+attributes = ["age_band", "district"]
+min_size = 5
+
+[gate]
+max_degree_ks = 0.0
+"""

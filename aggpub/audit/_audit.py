@@ -353,9 +353,9 @@ def audit_release(release, *, monte_carlo: int | None = None, source=None, struc
                 var_q = w.noise_variance(mech.variance())
                 summ["expected_rmse"] = float(np.sqrt(var_q.mean()))
                 summ["expected_mean_absolute_error"] = float(
-                    _expected_abs(mech, var_q, w.matrix is None).mean())
+                    _expected_abs(mech, var_q, w.single_cell).mean())
                 summ["expected_note"] = ("from the mechanism's variance before clamping at 0 and at the possible "
-                                         "pairs" + ("" if w.matrix is None else
+                                         "pairs" + ("" if w.single_cell else
                                                     "; mean absolute error by normal approximation"))
             if mc_stats[w.name]["mean_absolute_error"]:
                 summ["monte_carlo"] = {k: _spread(v) for k, v in mc_stats[w.name].items()}

@@ -30,7 +30,7 @@ Workloads
 from __future__ import annotations
 
 __all__ = ["superedge_cells_workload", "contact_matrix_workload", "cut_workload", "degree_totals_workload",
-           "Workload"]
+           "Workload", "CutWorkload"]
 
 from dataclasses import dataclass, field
 
@@ -67,6 +67,57 @@ class Workload:
     @property
     def n_queries(self) -> int:
         return self.n_cells if self.matrix is None else self.matrix.shape[0]
+
+    @property
+    def single_cell(self) -> bool:
+        """Whether every query is one cell (the identity workload)."""
+        return self.matrix is None
+
+
+@dataclass
+class CutWorkload(Workload):
+    """Cut queries answered through the dense supernode x supernode matrix of each table.
+
+    For sets ``S`` and ``T`` (disjoint) the cut is ``1_S' M 1_T`` with ``M`` the
+    symmetric matrix of cell counts; all queries of a table cost one matrix
+    product, with nothing built in advance. Used up to
+    :data:`DENSE_CUT_MAX_GROUPS` supernodes (the matrix takes ``8 n^2`` bytes).
+    """
+
+    a: np.ndarray | None = None
+    b: np.ndarray | None = None
+    sides: np.ndarray | None = None  # queries x supernodes: 0 first set, 1 second set, 2 neither
+
+    def answer(self, cells: np.ndarray) -> np.ndarray:
+        cells = np.asarray(cells, dtype=np.float64)
+        rows = cells[None, :] if cells.ndim == 1 else cells
+        n = self.sides.shape[1]
+        first = (self.sides == 0).astype(np.float64)
+        second = (self.sides == 1).astype(np.float64)
+        out = np.empty((len(rows), len(self.sides)))
+        m = np.empty((n, n))
+        for i, row in enumerate(rows):
+            m.fill(0.0)
+            m[self.a, self.b] = row
+            m += m.T  # the diagonal doubles, but no cut counts it: the sets are disjoint
+            out[i] = np.einsum("qi,qi->q", first @ m, second)
+        return out[0] if cells.ndim == 1 else out
+
+    def noise_variance(self, cell_variance: float) -> np.ndarray:
+        # each query sums the cells that cross it, once each: as many as its answer on a table of ones
+        return self.answer(np.ones(self.n_cells)) * float(cell_variance)
+
+    @property
+    def n_queries(self) -> int:
+        return len(self.sides)
+
+    @property
+    def single_cell(self) -> bool:
+        return False
+
+
+#: Largest number of supernodes for which cut queries use the dense matrix (8 n^2 bytes: 128 MiB).
+DENSE_CUT_MAX_GROUPS = 4096
 
 
 def superedge_cells_workload(n_cells: int) -> Workload:
@@ -111,8 +162,16 @@ def cut_workload(a, b, n_groups: int, n_queries: int, rng: np.random.Generator,
                  max_entries: int = 50_000_000) -> Workload:
     """Random cut queries: edges between two random disjoint sets of supernodes."""
     n_cells = len(a)
+    notes = [f"{{}} random cuts; each supernode joins set 1, set 2 or neither with probability 1/3"]
+    if n_groups <= DENSE_CUT_MAX_GROUPS:
+        side = rng.integers(0, 3, size=(max(1, int(n_queries)), n_groups))
+        notes[0] = notes[0].format(len(side))
+        return CutWorkload("cut_queries", None, n_cells, notes=notes, a=np.asarray(a, dtype=np.int64),
+                           b=np.asarray(b, dtype=np.int64), sides=side.astype(np.int8))
+    # many supernodes: a sparse matrix of the cells that cross each cut, as many cuts as fit
     n_queries = int(max(1, min(n_queries, max_entries // max(n_cells, 1))))
     side = rng.integers(0, 3, size=(n_queries, n_groups))  # 0: first set, 1: second, 2: neither
+    notes[0] = notes[0].format(n_queries)
     # a cell (a, b) crosses the cut when one end is in set 1 and the other in set 2: with
     # code = 3 side[a] + side[b], exactly when code is 1 (0, 1) or 3 (1, 0)
     crosses = np.zeros(9, dtype=bool)
@@ -131,9 +190,7 @@ def cut_workload(a, b, n_groups: int, n_queries: int, rng: np.random.Generator,
         cols.append((flat % n_cells).astype(np.int32 if n_cells < 2**31 else np.int64))
     cols = np.concatenate(cols)
     mat = sparse.csr_matrix((np.ones(len(cols)), cols, np.concatenate(indptr)), shape=(n_queries, n_cells))
-    return Workload("cut_queries", mat, n_cells,
-                    notes=[f"{n_queries} random cuts; each supernode joins set 1, set 2 or neither with "
-                           "probability 1/3"])
+    return Workload("cut_queries", mat, n_cells, notes=notes)
 
 
 def degree_totals_workload(a, b, n_groups: int) -> Workload:
