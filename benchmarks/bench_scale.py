@@ -190,6 +190,25 @@ def run_child(cmd, *, timeout=None, env=None, log=None, spill_dir=None):
     return seconds, usage.ru_maxrss / 1024, peak[0] / 1024, code, stdout, stderr
 
 
+def run_median(cmd, repeat: int, **kw):
+    """:func:`run_child` ``repeat`` times (alternating with nothing else); the run of median time.
+
+    Peak memory and spill are the largest over the runs. A failed run is returned at once.
+    """
+    runs, spill = [], 0.0
+    for _ in range(max(1, repeat)):
+        res = run_child(cmd, **kw)
+        spill = max(spill, run_child.spill_peak_mb)
+        if res[3] != 0:
+            run_child.spill_peak_mb = spill
+            return res
+        runs.append(res)
+    runs.sort(key=lambda r: r[0])
+    mid = runs[len(runs) // 2]
+    run_child.spill_peak_mb = spill
+    return (mid[0], max(r[1] for r in runs), max(r[2] for r in runs)) + mid[3:]
+
+
 STAGE_RE = re.compile(r"^\[\s*([\d.]+)s\] (.*)$")
 
 
@@ -262,10 +281,18 @@ def main(argv=None):
                          "(default: each tool's own)")
     ap.add_argument("--spark-max", default="10M", help="largest size run with Spark (default 10M)")
     ap.add_argument("--pandas-max", default="10M", help="largest size run with pandas (default 10M)")
+    ap.add_argument("--pandas-python", default=sys.executable,
+                    help="Python interpreter with pandas for the pandas row (default: this one). Keep pandas out "
+                         "of aggpub's environment: pyarrow imports pandas when one is installed, which would "
+                         "charge aggpub's release for an import it does not need")
     ap.add_argument("--networkx-timeout", type=float, default=120.0, help="seconds before networkx is stopped")
     ap.add_argument("--noise-cells", default="2M", help="cells for the bulk-noise comparison (default 2M)")
     ap.add_argument("--noise-loop-cells", default="2M",
                     help="cells actually drawn by the diffprivlib loop (time scaled to --noise-cells)")
+    ap.add_argument("--repeat", type=int, default=3,
+                    help="runs of the release, the bare query and pandas per size; the median time is kept "
+                         "(default 3)")
+    ap.add_argument("--repeat-max", default="10M", help="largest size run --repeat times; larger ones run once")
     ap.add_argument("--json", type=Path, help="also write the results as JSON here")
     args = ap.parse_args(argv)
 
@@ -276,7 +303,7 @@ def main(argv=None):
                                  else None))
     rows, results = [], []
     try:
-        have_pandas = subprocess.run([py, "-c", "import pandas"], capture_output=True).returncode == 0
+        have_pandas = subprocess.run([args.pandas_python, "-c", "import pandas"], capture_output=True).returncode == 0
         have_spark = subprocess.run([py, "-c", "import pyspark"], capture_output=True).returncode == 0
         for m in sizes:
             lab = size_label(m)
@@ -300,10 +327,12 @@ def main(argv=None):
             if args.memory_limit:
                 release_cmd += ["--memory-limit", args.memory_limit]
             if "duckdb" in tools:
-                record("duckdb", run_child([py, "-c", BARE_DUCKDB, str(edges), str(people), args.memory_limit,
-                                            str(work / "spill")]))
+                record("duckdb", run_median([py, "-c", BARE_DUCKDB, str(edges), str(people), args.memory_limit,
+                                             str(work / "spill")], args.repeat if m <= parse_size(args.repeat_max)
+                                            else 1))
             if "release" in tools:
-                res = run_child(release_cmd + ["--out", str(work / f"release-{lab}")], spill_dir=work)
+                res = run_median(release_cmd + ["--out", str(work / f"release-{lab}"), "--overwrite"],
+                                 args.repeat if m <= parse_size(args.repeat_max) else 1, spill_dir=work)
                 record("release", res)
                 per_size["release"]["stages"] = stage_times(res[5])
                 per_size["release"]["spill_peak_mb"] = run_child.spill_peak_mb
@@ -318,7 +347,8 @@ def main(argv=None):
                     per_size["pandas"] = dict(size=m, tool="pandas", seconds=None, ok=False,
                                               note=f"skipped above --pandas-max {args.pandas_max}")
                 else:
-                    record("pandas", run_child([py, "-c", PANDAS, str(edges), str(people)]))
+                    record("pandas", run_median([args.pandas_python, "-c", PANDAS, str(edges), str(people)],
+                                                args.repeat if m <= parse_size(args.repeat_max) else 1))
             if "networkx" in tools and m == 10**6:
                 res = run_child([py, "-c", NETWORKX, str(edges), str(people)], timeout=args.networkx_timeout)
                 record("networkx", res, note=f"stopped after {args.networkx_timeout:.0f}s (lower bound)"
