@@ -6,7 +6,7 @@ import pytest
 
 from aggpub import errors
 from aggpub.cli import EXIT_CODES_HELP, main
-from tests._badinput import Scenario, error_lines, no_plots  # noqa: F401
+from tests._badinput import POLICY_TEXT, Scenario, error_lines, no_plots  # noqa: F401
 
 pytestmark = pytest.mark.usefixtures("no_plots")
 
@@ -116,16 +116,7 @@ def test_the_command_ends_cleanly_after_a_release(tmp_path):
     assert refused.returncode == 6 and "max_degree_ks" in refused.stderr
 
 
-POLICY_TEXT_GATED = """\
-[privacy]
-unit = "edge"
-epsilon = 1.0
-
-[grouping]
-method = "attributes"
-attributes = ["age_band", "district"]
-min_size = 5
-
+POLICY_TEXT_GATED = POLICY_TEXT + """
 [gate]
 max_degree_ks = 0.0
 """

@@ -6,6 +6,7 @@ Inputs already validated: ``release`` comes from :func:`aggpub.pipeline.build_re
 from __future__ import annotations
 
 import math
+import os
 from datetime import datetime, timezone
 
 import numpy as np
@@ -20,8 +21,8 @@ from .metrics import DEFAULT_SANITY_FRACTION, distribution_distances, error_summ
 MAX_STRUCTURE_EDGES = 500_000  # above this the sampled-structure comparison is skipped (too slow for a release)
 #: Largest number of superedge cells the audit expands into a dense table.
 MAX_AUDIT_CELLS = 30_000_000
-#: Bound on draws x cells held in memory at once by the Monte Carlo.
-MC_CHUNK_VALUES = 20_000_000
+#: Above this many cells the Monte Carlo runs one draw at a time (each draw holds a few copies of the table).
+MC_PARALLEL_MAX_CELLS = 5_000_000
 #: Monte Carlo draws when none are asked for: as many as fit ``MC_DEFAULT_VALUES`` values
 #: (draws x cells), between ``MC_DEFAULT_MIN`` and ``MC_DEFAULT_MAX``.
 MC_DEFAULT_MAX = 20
@@ -54,19 +55,26 @@ def _label_columns(release):
     return [c for c in labels.column_names if c not in ("supernode", "size")]
 
 
-def _mc_draws(mech, truth, draws, source):
-    """Yield chunks of fresh noisy tables ``truth + noise`` (draws x cells), before post-processing.
+def _map_draws(one_draw, draws: int, n_cells: int, source):
+    """``one_draw(i, source_i)`` for ``i < draws``, in order, on up to two worker threads.
 
-    One noise draw serves every figure that reads it (each applies :func:`_post_process`
-    with its own bounds), so the Monte Carlo draws each value once.
+    Each draw gets its own generator, seeded from ``source`` (so a seeded audit
+    stays reproducible and the draws stay independent); the work of a draw is
+    numpy on whole tables, which runs outside Python's global interpreter lock,
+    so two draws proceed at once on a two-core machine. Tables above
+    :data:`MC_PARALLEL_MAX_CELLS` cells run one draw at a time to bound memory.
     """
-    n = len(truth)
-    per = max(1, MC_CHUNK_VALUES // max(n, 1))
-    done = 0
-    while done < draws:
-        r = min(per, draws - done)
-        yield truth[None, :] + mech.noise((r, n), source)
-        done += r
+    from concurrent.futures import ThreadPoolExecutor
+
+    from ..noise.sampler import SeededRandomSource
+
+    seeds = np.floor(source.uniform(draws) * 2.0 ** 53).astype(np.int64)
+    sources = [SeededRandomSource(int(x)) for x in seeds]
+    workers = 1 if n_cells > MC_PARALLEL_MAX_CELLS else max(1, min(2, os.cpu_count() or 1, draws))
+    if workers == 1:
+        return [one_draw(i, src) for i, src in enumerate(sources)]
+    with ThreadPoolExecutor(max_workers=workers, thread_name_prefix="aggpub-audit") as pool:
+        return list(pool.map(one_draw, range(draws), sources))
 
 
 def _post_process(noisy, cap, threshold=None):
@@ -320,22 +328,27 @@ def audit_release(release, *, monte_carlo: int | None = None, source=None, struc
         if monte_carlo and mech is not None:
             progress(f"audit: {int(monte_carlo)} fresh noise draws on the true table (Monte Carlo)")
             true_answers = {w.name: w.answer(true_t) for w in workloads}
-            for noisy in _mc_draws(mech, st.count, int(monte_carlo), source):
-                if deg_mc is not None:  # the degree distribution's spread, from the same draws
-                    for row in _post_process(noisy[:deg_mc["draws"] - len(deg_mc["ks"])], cap_true, threshold):
-                        pmf, _ = deg.implied_degree_pmf(st.a, st.b, row, true_sizes, method=method,
-                                                        terms=deg_mc["terms"])
-                        for k, v in distribution_distances(true_hist, pmf).items():
-                            deg_mc[k].append(v)
-                chunk = _post_process(noisy, cap_pub, threshold).astype(np.float64)  # once for all workloads
+
+            def one_draw(i, draw_source):
+                """Figures of fresh noise draw ``i`` (inputs already validated; runs in a worker thread)."""
+                noisy = st.count + mech.noise(len(st.count), draw_source)
+                degree = None
+                if deg_mc is not None and i < deg_mc["draws"]:  # the degree distribution's spread
+                    pmf, _ = deg.implied_degree_pmf(st.a, st.b, _post_process(noisy[None, :], cap_true, threshold)[0],
+                                                    true_sizes, method=method, terms=deg_mc["terms"])
+                    degree = distribution_distances(true_hist, pmf)
+                table = _post_process(noisy[None, :], cap_pub, threshold)[0].astype(np.float64)
                 del noisy
-                for w in workloads:
-                    tru = true_answers[w.name]
-                    for row in w.answer(chunk):
-                        mae, p50, p90 = _mc_errors(tru, row, s_bound)
-                        mc_stats[w.name]["mean_absolute_error"].append(mae)
-                        mc_stats[w.name]["median_relative_error"].append(p50)
-                        mc_stats[w.name]["p90_relative_error"].append(p90)
+                return degree, {w.name: _mc_errors(true_answers[w.name], w.answer(table), s_bound) for w in workloads}
+
+            for degree, errors in _map_draws(one_draw, int(monte_carlo), len(st.count), source):
+                if degree is not None:
+                    for k, v in degree.items():
+                        deg_mc[k].append(v)
+                for name, (mae, p50, p90) in errors.items():
+                    mc_stats[name]["mean_absolute_error"].append(mae)
+                    mc_stats[name]["median_relative_error"].append(p50)
+                    mc_stats[name]["p90_relative_error"].append(p90)
             if deg_mc is not None:
                 dd["monte_carlo"] = {k: _spread(deg_mc[k]) for k in ("ks", "wasserstein1", "l1")}
                 dd["monte_carlo"]["note"] = (f"{deg_mc['draws']} fresh noise draws on the true superedge table "
