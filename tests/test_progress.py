@@ -78,3 +78,19 @@ def test_duckdb_engine_reports_long_counting(monkeypatch):
     ref = quiet.engine.superedge_counts(assignment)
     assert all(np.array_equal(x, y) for x, y in zip(got, ref))
     assert any(line.startswith("counting superedges: 254 contacts counted") for line in lines)
+
+
+def test_duckdb_reports_its_own_estimate_of_a_long_statement(monkeypatch):
+    """DuckDB's query_progress gives a percentage while a statement runs (its progress bar is on,
+    printing off): the watcher's lines carry it."""
+    from aggpub.engines import _progress, make_engine
+
+    eng = make_engine("duckdb")
+    lines = []
+    eng.progress = lines.append
+    monkeypatch.setattr(_progress, "PROGRESS_EVERY", 0.05)
+    with eng._long("a long statement"):
+        eng.con.execute("SELECT count(*) FROM (SELECT i % 1000003 AS k, count(*) FROM range(60000000) t(i) "
+                        "GROUP BY 1)").fetchall()
+    assert any("% of the current statement" in line for line in lines), lines
+    eng.close()

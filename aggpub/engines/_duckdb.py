@@ -190,6 +190,9 @@ class DuckDBEngine:
         self.temp_directory = str(temp_directory)
         self.con.execute(f"SET temp_directory={quote_literal(self.temp_directory)}")
         self.con.execute("SET preserve_insertion_order=false")
+        # DuckDB tracks a statement's progress only with its progress bar on; nothing is printed
+        self.con.execute("SET enable_progress_bar=true")
+        self.con.execute("SET enable_progress_bar_print=false")
         self._weighted = False
 
     def _long(self, what: str) -> LongStep:
