@@ -197,3 +197,40 @@ def test_demo_town_spark_equals_duckdb(spark, tmp_path):
     n_s, n_d, r_s = _compare(spark, tmp_path / "contacts.csv", tmp_path / "people.parquet", policy,
                              weight="minutes")
     assert n_s.n_edges > 1500 and r_s.grouping.n_supernodes > 1
+
+
+def test_own_session_sizes_its_shuffles_by_the_edge_file(spark, tmp_path):
+    """One shuffle partition per 32 MB of edge file in a session the engine made; a handed-in session
+    (a cluster's, or this fixture's) keeps its own setting."""
+    from aggpub.engines import _spark as sp
+
+    big = tmp_path / "edges.csv"
+    with open(big, "wb") as fh:
+        fh.truncate(100 << 20)  # a sparse 100 MB file: only its size is read
+    eng = sp.SparkEngine(spark=spark)
+    before = spark.conf.get("spark.sql.shuffle.partitions")
+    eng._size_shuffles(str(big))
+    assert spark.conf.get("spark.sql.shuffle.partitions") == before  # not our session: untouched
+    eng._own_session = True
+    try:
+        eng._size_shuffles(str(big))
+        assert spark.conf.get("spark.sql.shuffle.partitions") == "4"  # ceil(100 / 32) = 4 = the floor
+        eng.shuffle_partitions = 2
+        big2 = tmp_path / "edges2.csv"
+        with open(big2, "wb") as fh:
+            fh.truncate(320 << 20)
+        eng._size_shuffles(str(big2))
+        assert spark.conf.get("spark.sql.shuffle.partitions") == "10"
+    finally:
+        spark.conf.set("spark.sql.shuffle.partitions", before)
+
+
+def test_out_of_memory_is_named_as_such_not_as_bad_input():
+    from aggpub.engines import _spark as sp
+    from aggpub.errors import UsageError
+
+    err = sp._input_error("edges.csv: cannot read edge file",
+                          RuntimeError("An error occurred ... java.lang.OutOfMemoryError: Java heap space"), False)
+    assert isinstance(err, UsageError) and "--memory-limit" in str(err)
+    err = sp._input_error("edges.csv: cannot read edge file", RuntimeError("[PATH_NOT_FOUND] no such file"), False)
+    assert isinstance(err, InputError) and str(err).startswith("edges.csv: cannot read edge file: ")

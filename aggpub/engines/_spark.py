@@ -77,6 +77,18 @@ def spark_session(master: str = "local[2]", *, memory_limit=None, shuffle_partit
     return spark
 
 
+#: Edge-file bytes per shuffle partition in a session the engine created itself.
+SHUFFLE_BYTES = 32 << 20
+
+
+def _active_session():
+    try:
+        from pyspark.sql import SparkSession
+    except ImportError:
+        return None
+    return SparkSession.getActiveSession()
+
+
 def _q(name: str) -> str:
     """Quote a column name for Spark SQL."""
     return "`" + str(name).replace("`", "``") + "`"
@@ -91,6 +103,20 @@ def _missing_id_sql(expr: str) -> str:
     """True when an id (as text) is empty or spells a missing value (as in the DuckDB engine)."""
     spellings = ", ".join(_lit(x) for x in MISSING_ID_SPELLINGS)
     return f"({expr} IS NULL OR lower(trim({expr})) IN ({spellings}))"
+
+
+def _resource_error(exc: Exception):
+    """A :class:`UsageError` for Spark failures that are about resources, not the input; else ``None``."""
+    text = str(exc)
+    if "OutOfMemoryError" in text or "Java heap space" in text:
+        return UsageError("Spark ran out of memory (Java heap space): give it more with --memory-limit (the "
+                          "driver's memory in local mode) or run on a cluster")
+    return None
+
+
+def _input_error(message: str, exc: Exception, debug: bool) -> Exception:
+    """The error for a failed read: a resource problem named as such, else an :class:`InputError`."""
+    return _resource_error(exc) or InputError(f"{message}: {_clean_message(exc, debug)}")
 
 
 def _clean_message(exc: Exception, debug: bool) -> str:
@@ -145,6 +171,8 @@ class SparkEngine:
         # (spark.local.dir, the system's temporary folder) unless temp_directory names a folder,
         # so no folder of Spark's is left beside the output
         local_dir = temp_directory
+        self._own_session = spark is None and _active_session() is None
+        self.shuffle_partitions = int(shuffle_partitions)
         self.spark = spark or spark_session(master, memory_limit=memory_limit,
                                             shuffle_partitions=shuffle_partitions, local_dir=local_dir)
         self._prefix = f"aggpub_{secrets.token_hex(4)}_"
@@ -154,6 +182,24 @@ class SparkEngine:
         self._scratch = scratch
         self._cleanup = None
         self._n_scratch = 0
+
+    def _size_shuffles(self, edges_src) -> None:
+        """In a session of its own, one shuffle partition per :data:`SHUFFLE_BYTES` of edge file.
+
+        A handful of partitions suits small tables, but at 10^8 edges each task
+        would hold tens of millions of rows and exhaust a few GB of heap. A session
+        handed in (a cluster's) keeps its own setting.
+        """
+        if not self._own_session or isinstance(edges_src, pa.Table):
+            return
+        try:
+            path = str(edges_src)
+            size = (sum(os.path.getsize(os.path.join(r, f)) for r, _, fs in os.walk(path) for f in fs)
+                    if os.path.isdir(path) else os.path.getsize(path))
+        except OSError:
+            return  # unreadable here (a remote path): the read reports it
+        parts = max(self.shuffle_partitions, -(-size // SHUFFLE_BYTES))
+        self.spark.conf.set("spark.sql.shuffle.partitions", str(parts))
 
     def _scratch_path(self, name: str) -> str:
         """A new Parquet path in the scratch folder (driver-written tables: assignment, Arrow inputs)."""
@@ -241,7 +287,7 @@ class SparkEngine:
             raise
         except Exception as exc:  # analysis errors: unreadable file, not Parquet, ...
             name = f"{what} table" if isinstance(src, pa.Table) else str(src)
-            raise InputError(f"{name}: cannot read {what} file: {_clean_message(exc, debug)}") from None
+            raise _input_error(f"{name}: cannot read {what} file", exc, debug) from None
         # monotonically increasing in file order (partition index in the high bits)
         return df.withColumn("__row", F.monotonically_increasing_id())
 
@@ -258,6 +304,7 @@ class SparkEngine:
 
         edge_name = "edge table" if isinstance(edges_src, pa.Table) else str(edges_src)
         people_name = "person table" if isinstance(people_src, pa.Table) else str(people_src)
+        self._size_shuffles(edges_src)
 
         # ---- people: ids deduplicated, dense index = order of first appearance
         pdf = self._read(people_src, "person", debug)
@@ -284,7 +331,7 @@ class SparkEngine:
                               f"count(CASE WHEN {missing_p} THEN 1 END), count(DISTINCT id){null_attrs} "
                               f"FROM {praw}")
         except Exception as exc:
-            raise InputError(f"{people_name}: cannot read person file: {_clean_message(exc, debug)}") from None
+            raise _input_error(f"{people_name}: cannot read person file", exc, debug) from None
         person_rows, bad_row, n_bad, n_ids = int(stats[0]), stats[1], int(stats[2]), int(stats[3])
         if person_rows == 0:
             raise InputError(f"{people_name}: the person table has no rows")
@@ -362,7 +409,7 @@ class SparkEngine:
                        count(CASE WHEN u < v AND u >= 0 THEN 1 END)
                 FROM {mapped}""")
         except Exception as exc:
-            raise InputError(f"{edge_name}: cannot read edge file: {_clean_message(exc, debug)}") from None
+            raise _input_error(f"{edge_name}: cannot read edge file", exc, debug) from None
         rows, n_missing, unknown, n_bad_w, loops, dups, n_edges = (int(x) for x in stats)
         if rows == 0:
             raise InputError(f"{edge_name}: the edge table has no rows")
