@@ -67,6 +67,8 @@ def _check(G, labels):
     ref = {k: v for k, v in ref.items() if v}
     assert ours == ref
     assert sum(ours.values()) == G.number_of_edges() == net.n_edges
+    # degrees (counted in the same pass over the edges on the numpy path) against networkx
+    assert net.engine.degrees(net.n_people).tolist() == [d for _, d in G.degree()]
 
 
 def test_karate_club_by_faction(karate):

@@ -77,7 +77,7 @@ def test_duckdb_engine_reports_long_counting(monkeypatch):
     got = net.engine.superedge_counts(assignment)
     ref = quiet.engine.superedge_counts(assignment)
     assert all(np.array_equal(x, y) for x, y in zip(got, ref))
-    assert any(line.startswith("counting superedges: 254 contacts counted") for line in lines)
+    assert any(line.startswith("counting superedges: 254 contacts read") for line in lines)
 
 
 def test_duckdb_reports_its_own_estimate_of_a_long_statement(monkeypatch):

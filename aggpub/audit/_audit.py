@@ -84,7 +84,7 @@ def _post_process(noisy, cap, threshold=None):
     whose noisy value is below it are absent (read as 0), which is the law the
     sparse release samples (noise every cell, then threshold).
     """
-    out = np.clip(noisy, 0, cap[None, :])
+    out = np.clip(noisy, 0, cap)
     if threshold is not None:
         out = np.where(noisy >= threshold, out, 0)
     return out
@@ -159,7 +159,7 @@ def audit_release(release, *, monte_carlo: int | None = None, source=None, struc
     monte_carlo : int, optional
         Number of fresh noise draws on the true table for the spread of each
         error figure (0: none; default :func:`default_monte_carlo` of the number
-        of superedge cells: 20 on small tables, at least 5 on large ones).
+        of superedge cells: 20 on small tables, at least 3 on large ones).
     source : aggpub.noise.RandomSource, optional
         Randomness for the Monte Carlo noise (default: PCG64 seeded from the
         operating system's entropy, see :func:`_audit_source`). Separate from the
@@ -325,19 +325,19 @@ def audit_release(release, *, monte_carlo: int | None = None, source=None, struc
             rel_unclamped = rel_unclamped.astype(np.float64)
         mc_stats = {w.name: {"mean_absolute_error": [], "median_relative_error": [], "p90_relative_error": []}
                     for w in workloads}
+        true_answers = {w.name: w.answer(true_t) for w in workloads}
         if monte_carlo and mech is not None:
             progress(f"audit: {int(monte_carlo)} fresh noise draws on the true table (Monte Carlo)")
-            true_answers = {w.name: w.answer(true_t) for w in workloads}
 
             def one_draw(i, draw_source):
                 """Figures of fresh noise draw ``i`` (inputs already validated; runs in a worker thread)."""
                 noisy = st.count + mech.noise(len(st.count), draw_source)
                 degree = None
                 if deg_mc is not None and i < deg_mc["draws"]:  # the degree distribution's spread
-                    pmf, _ = deg.implied_degree_pmf(st.a, st.b, _post_process(noisy[None, :], cap_true, threshold)[0],
+                    pmf, _ = deg.implied_degree_pmf(st.a, st.b, _post_process(noisy, cap_true, threshold),
                                                     true_sizes, method=method, terms=deg_mc["terms"])
                     degree = distribution_distances(true_hist, pmf)
-                table = _post_process(noisy[None, :], cap_pub, threshold)[0].astype(np.float64)
+                table = _post_process(noisy, cap_pub, threshold).astype(np.float64)
                 del noisy
                 return degree, {w.name: _mc_errors(true_answers[w.name], w.answer(table), s_bound) for w in workloads}
 
@@ -354,7 +354,7 @@ def audit_release(release, *, monte_carlo: int | None = None, source=None, struc
                 dd["monte_carlo"]["note"] = (f"{deg_mc['draws']} fresh noise draws on the true superedge table "
                                              "(the first draws of the query workloads' Monte Carlo)")
         for w in workloads:
-            tru = w.answer(true_t)
+            tru = true_answers[w.name]
             est = w.answer(rel_cells)
             summ = error_summary(tru, est, s_bound)
             if rel_unclamped is not None:

@@ -162,16 +162,14 @@ def cut_workload(a, b, n_groups: int, n_queries: int, rng: np.random.Generator,
                  max_entries: int = 50_000_000) -> Workload:
     """Random cut queries: edges between two random disjoint sets of supernodes."""
     n_cells = len(a)
-    notes = [f"{{}} random cuts; each supernode joins set 1, set 2 or neither with probability 1/3"]
-    if n_groups <= DENSE_CUT_MAX_GROUPS:
-        side = rng.integers(0, 3, size=(max(1, int(n_queries)), n_groups))
-        notes[0] = notes[0].format(len(side))
+    dense = n_groups <= DENSE_CUT_MAX_GROUPS
+    # with many supernodes a sparse matrix holds the cells that cross each cut: as many cuts as fit
+    n_queries = int(max(1, n_queries if dense else min(n_queries, max_entries // max(n_cells, 1))))
+    side = rng.integers(0, 3, size=(n_queries, n_groups))  # 0: first set, 1: second, 2: neither
+    notes = [f"{n_queries} random cuts; each supernode joins set 1, set 2 or neither with probability 1/3"]
+    if dense:
         return CutWorkload("cut_queries", None, n_cells, notes=notes, a=np.asarray(a, dtype=np.int64),
                            b=np.asarray(b, dtype=np.int64), sides=side.astype(np.int8))
-    # many supernodes: a sparse matrix of the cells that cross each cut, as many cuts as fit
-    n_queries = int(max(1, min(n_queries, max_entries // max(n_cells, 1))))
-    side = rng.integers(0, 3, size=(n_queries, n_groups))  # 0: first set, 1: second, 2: neither
-    notes[0] = notes[0].format(n_queries)
     # a cell (a, b) crosses the cut when one end is in set 1 and the other in set 2: with
     # code = 3 side[a] + side[b], exactly when code is 1 (0, 1) or 3 (1, 0)
     crosses = np.zeros(9, dtype=bool)

@@ -469,12 +469,15 @@ class DuckDBEngine:
         n_cells = n_groups * (n_groups + 1) // 2
         group = assignment.astype(np.int32)  # n_cells <= DENSE_COUNT_MAX_CELLS: n_groups fits easily
         total = np.zeros(n_cells, dtype=np.int64)
-        step, done = LongStep(self.progress, "counting superedges"), 0
-        for batch in self.con.sql("SELECT u, v FROM edges").to_arrow_reader(EDGE_BATCH_ROWS):
-            done += batch.num_rows
-            step.tick(f"{done:,} contacts counted")
-            gu = group[batch.column(0).to_numpy()]
-            gv = group[batch.column(1).to_numpy()]
+        n_people = len(assignment)
+        # the same pass counts every person's contacts unless that is known (the audit asks for it)
+        degrees = np.zeros(n_people, dtype=np.int64) if self._cached_degrees(n_people) is None else None
+        for u, v in self._edge_batches("counting superedges", n_people):
+            if degrees is not None:
+                degrees += np.bincount(u, minlength=n_people)
+                degrees += np.bincount(v, minlength=n_people)
+            gu = group[u]
+            gv = group[v]
             lo = np.minimum(gu, gv).astype(np.int64)
             hi = np.maximum(gu, gv) - lo
             # position of (lo, hi) in the upper triangle, row by row (components.cell_index)
@@ -486,6 +489,8 @@ class DuckDBEngine:
         first = first * n_groups - (first * (first - 1)) // 2
         a = np.searchsorted(first, cell, side="right") - 1
         b = cell - first[a] + a
+        if degrees is not None:
+            self._degrees = degrees
         return a, b, total[cell]
 
     def _superedge_counts_sql(self, assignment: np.ndarray):
@@ -520,22 +525,33 @@ class DuckDBEngine:
         Computed by one pass over the edges and kept: the cap check, the degree
         histograms, a structural grouping and the audit all ask for it.
         """
-        cached = getattr(self, "_degrees", None)
-        if cached is not None and len(cached) == n_people:
+        cached = self._cached_degrees(n_people)
+        if cached is not None:
             return cached.copy()
-        # the edges stream out in Arrow batches and numpy counts both ends of each batch (about 4x
-        # faster than a GROUP BY over both ends); batches of at least n_people rows keep the
-        # per-batch count arrays no larger than the batch, and memory bounded at any edge count
+        # numpy counts both ends of each batch: about 4x faster than a GROUP BY over both ends
         out = np.zeros(n_people, dtype=np.int64)
+        for u, v in self._edge_batches("counting contacts per person", n_people):
+            out += np.bincount(u, minlength=n_people)
+            out += np.bincount(v, minlength=n_people)
+        self._degrees = out.copy()  # the edges do not change after load
+        return out
+
+    def _cached_degrees(self, n_people: int):
+        cached = getattr(self, "_degrees", None)
+        return cached if cached is not None and len(cached) == n_people else None
+
+    def _edge_batches(self, what: str, n_people: int):
+        """Yield the contacts as numpy arrays ``u``, ``v``, batch by batch, reporting progress as ``what``.
+
+        Batches hold at least ``n_people`` rows, so per-person counts made per batch
+        are no larger than the batch; memory stays bounded at any number of edges.
+        """
         reader = self.con.sql("SELECT u, v FROM edges").to_arrow_reader(max(EDGE_BATCH_ROWS, int(n_people)))
-        step, done = LongStep(self.progress, "counting contacts per person"), 0
+        step, done = LongStep(self.progress, what), 0
         for batch in reader:
             done += batch.num_rows
             step.tick(f"{done:,} contacts read")
-            for col in batch.columns:
-                out += np.bincount(col.to_numpy(), minlength=n_people)
-        self._degrees = out.copy()  # the edges do not change after load
-        return out
+            yield batch.column(0).to_numpy(), batch.column(1).to_numpy()
 
     def degree_histograms(self, assignment: np.ndarray, n_groups: int, cap: int) -> np.ndarray:
         """Counts of people by (supernode, degree bin); bins 0..cap-1 and a top bin 'cap or more'.
