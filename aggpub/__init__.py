@@ -11,7 +11,8 @@ from ._version import __version__
 from .bundle import Bundle, CheckResult, check_bundle, read_bundle
 from .errors import (AggpubError, BudgetError, BundleError, GateError, InputError, OutputError, PolicyError,
                      PrivacyError, UsageError)
-from .ingest import Network, load_network
+from .ingest import load_network
+from .network import Network
 from .pipeline import Release, build_release, publish, release_tables, run_release
 from .policy import ReleasePolicy, parse_policy, read_policy
 from .researcher import SumInterval, cell_mask, interval, sample_network, supergraph, synthetic_people, write_sample

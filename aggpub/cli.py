@@ -131,8 +131,9 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
-def _print_release(release, path):
-    m = release.manifest
+def _print_release(run):
+    path = run.path
+    m = run.release.manifest
     print(f"released {m['rows']['supernodes']:,} supernodes and "
           f"{m['rows'].get('superedges', 0):,} superedge cells to {path}")
     print(f"privacy unit {m['privacy_unit']}, epsilon {m['epsilon_total']:g}, min_size {m['min_size']}")
@@ -141,11 +142,10 @@ def _print_release(release, path):
               f"{c['mechanism']} scale {c['scale']:.4g}")
     if m.get("seeded"):
         print("WARNING: seeded release, NOT private (tests only)")
-    _print_audit(release)
+    _print_audit(run.audit, run.report_path)
 
 
-def _print_audit(release):
-    audit = getattr(release, "audit", None)
+def _print_audit(audit, report_path):
     if not audit:
         return
     dd, gate = audit.get("degree_distribution", {}), audit.get("gate", {})
@@ -154,7 +154,7 @@ def _print_audit(release):
     if gate.get("checked"):
         checks = ", ".join(f"{k} {gate[k]['measured']:.4g} <= {gate[k]['allowed']:g}" for k in gate["checked"])
         print(f"gate passed: {checks}")
-    print(f"CONFIDENTIAL audit report (board only, not for researchers): {release.report_path}")
+    print(f"CONFIDENTIAL audit report (board only, not for researchers): {report_path}")
 
 
 def _non_negative(value, option):
@@ -165,22 +165,22 @@ def _non_negative(value, option):
 
 def cmd_release(args):
     from .bundle._files import check_outside_inputs
-    from .pipeline import Progress, run_release
+    from .pipeline import run_release
+    from .progress import Progress
 
     if not args.allow_inside_input:  # outputs never land beside the private inputs unless asked
         check_outside_inputs(args.out, (args.edges, args.nodes))
         if args.report is not None:
             check_outside_inputs(args.report, (args.edges, args.nodes))
-    release, path = run_release(args.policy, args.edges, args.nodes, args.out, seed=args.seed,
-                                overwrite=args.overwrite, source=args.source_column, target=args.target_column,
-                                node=args.node_column, weight=args.weight_column, drop_unknown=args.drop_unknown,
-                                engine=args.engine, progress=Progress(args.quiet), debug=args.debug,
-                                memory_limit=args.memory_limit, report=args.report,
-                                monte_carlo=None if args.audit_draws is None
-                                else _non_negative(args.audit_draws, "--audit-draws"))
-    _print_release(release, path)
-    release.network.engine.close()  # frees the engine's memory and removes its spill folder now
-    if release.network.engine.name == "duckdb":
+    run = run_release(args.policy, args.edges, args.nodes, args.out, seed=args.seed,
+                      overwrite=args.overwrite, source=args.source_column, target=args.target_column,
+                      node=args.node_column, weight=args.weight_column, drop_unknown=args.drop_unknown,
+                      engine=args.engine, progress=Progress(args.quiet), debug=args.debug,
+                      memory_limit=args.memory_limit, report=args.report,
+                      monte_carlo=None if args.audit_draws is None
+                      else _non_negative(args.audit_draws, "--audit-draws"))
+    _print_release(run)
+    if run.release.network.engine.name == "duckdb":  # run_release closed the engine and its spill folder
         _FINISHED_CLEANLY.append("release")
     return 0
 
@@ -204,7 +204,8 @@ def cmd_check(args):
 
 def cmd_demo(args):
     from .demo import write_demo_inputs
-    from .pipeline import Progress, run_release
+    from .pipeline import run_release
+    from .progress import Progress
 
     out = args.out.absolute()
     data = (args.data or out.parent / f"{out.name}-inputs").absolute()
@@ -212,18 +213,17 @@ def cmd_demo(args):
     progress(f"generating the invented town ({args.people:,} residents) into {data}")
     paths = write_demo_inputs(data, n_people=args.people)
     print(f"demo inputs (invented town): {paths['people']}, {paths['edges']}, {paths['policy']}")
-    release, path = run_release(paths["policy"], paths["edges"], paths["people"], out, seed=args.seed,
-                                overwrite=args.overwrite, progress=progress, debug=args.debug,
-                                report=args.report)
-    _print_release(release, path)
-    print(f"verify it with:  aggpub check {path}")
+    run = run_release(paths["policy"], paths["edges"], paths["people"], out, seed=args.seed,
+                      overwrite=args.overwrite, progress=progress, debug=args.debug, report=args.report)
+    _print_release(run)
+    print(f"verify it with:  aggpub check {run.path}")
     print(f"release again:   aggpub release --policy {paths['policy']} --edges {paths['edges']} "
           f"--nodes {paths['people']} --out OTHER_FOLDER")
     return 0
 
 
 def cmd_ledger(args):
-    from .noise.ledger import Ledger
+    from .budget.ledger import Ledger
 
     ledger = Ledger(args.file, create=False)
     spends = ledger.spends(args.dataset)
@@ -246,7 +246,7 @@ def cmd_ledger(args):
 def cmd_sample(args):
     from .bundle import check_bundle, read_bundle
     from .errors import BundleError
-    from .pipeline import Progress
+    from .progress import Progress
     from .researcher import sample_network, synthetic_people, write_sample
 
     progress = Progress(args.quiet)
@@ -274,7 +274,7 @@ def cmd_sample(args):
 
 
 def cmd_sweep(args):
-    from .pipeline import Progress
+    from .progress import Progress
     from .sweep import PLANNING_NOTE, parse_grid, run_sweep, write_sweep
 
     epsilons = parse_grid(args.epsilons, float, "--epsilons")

@@ -28,74 +28,15 @@ naming the file and the row, line or column, never a value from the file):
 
 from __future__ import annotations
 
-__all__ = ["Network", "IngestReport", "load_network", "file_format", "csv_header", "MISSING_ID_SPELLINGS"]
+__all__ = ["Network", "IngestReport", "load_network", "load_policy_inputs", "policy_attributes", "policy_weight_column",
+           "file_format", "csv_header", "MISSING_ID_SPELLINGS"]
 
-from dataclasses import dataclass, asdict
 from pathlib import Path
 
 import pyarrow as pa
 
 from .errors import InputError
-
-
-@dataclass(frozen=True)
-class IngestReport:
-    """What ingest read, kept and dropped (counts only, no private values)."""
-
-    edge_rows: int
-    edges: int
-    self_loops_dropped: int
-    duplicate_rows_collapsed: int
-    unknown_person_rows_dropped: int
-    person_rows: int
-    people: int
-    duplicate_person_rows_collapsed: int
-
-    def as_dict(self) -> dict:
-        return asdict(self)
-
-    def lines(self) -> list[str]:
-        out = [f"read {self.edge_rows:,} edge rows and {self.person_rows:,} person rows",
-               f"kept {self.edges:,} undirected contacts between {self.people:,} people"]
-        if self.self_loops_dropped:
-            out.append(f"dropped {self.self_loops_dropped:,} self-loop rows")
-        if self.duplicate_rows_collapsed:
-            out.append(f"collapsed {self.duplicate_rows_collapsed:,} duplicate contact rows")
-        if self.unknown_person_rows_dropped:
-            out.append(f"dropped {self.unknown_person_rows_dropped:,} rows naming people not in the person table")
-        if self.duplicate_person_rows_collapsed:
-            out.append(f"collapsed {self.duplicate_person_rows_collapsed:,} identical duplicate person rows")
-        return out
-
-
-@dataclass
-class Network:
-    """An ingested network: person attributes in Arrow, edges inside the engine.
-
-    Attributes
-    ----------
-    people : pyarrow.Table
-        One row per person (row ``i`` is person ``i``), attribute columns as strings.
-    n_people, n_edges : int
-        Number of people and of distinct undirected contacts.
-    engine : object
-        The counting engine holding the ``edges`` table (``u < v``, dense ids).
-    report : IngestReport
-        Counts of what was read and dropped.
-    weighted : bool
-        Whether the edges carry a weight.
-    ids : pyarrow.Array of string, optional
-        The person ids as read (``ids[i]`` is person ``i``); private, used only to
-        join a public person -> supernode map (grouping method ``given``).
-    """
-
-    people: pa.Table
-    n_people: int
-    n_edges: int
-    engine: object
-    report: IngestReport
-    weighted: bool = False
-    ids: pa.Array | None = None
+from .network import IngestReport, Network
 
 
 def file_format(path: Path) -> str:
@@ -215,3 +156,44 @@ def load_network(edges, people, *, source="source", target="target", node="node"
     people_src = people if isinstance(people, pa.Table) else _check_input_path(people, "person")
     return engine.load(edges_src, people_src, source=source, target=target, node=node, weight=weight,
                        drop_unknown=drop_unknown, attributes=attributes, debug=debug)
+
+
+def policy_weight_column(policy, given=None):
+    """The edge weight column to read: ``components.weight_totals.column`` when weight totals are on."""
+    from .errors import PolicyError
+
+    wt = policy.components.weight_totals
+    if not wt.enabled:
+        return given
+    if given and given != wt.column:
+        raise PolicyError(f"'components.weight_totals.column' = '{wt.column}' differs from the weight column "
+                          f"given for input ('{given}'); name one column")
+    return wt.column
+
+
+def policy_attributes(policy) -> list:
+    """The person attributes a policy reads: its grouping attributes and the gate's contact-matrix attribute."""
+    attrs = list(policy.grouping.attributes)
+    gate_attr = policy.gate.contact_matrix_attribute
+    if gate_attr and gate_attr not in attrs:
+        attrs.append(gate_attr)
+    return attrs
+
+
+def load_policy_inputs(policy, edges, people, *, source=None, target=None, node=None, weight=None,
+                       drop_unknown=None, engine=None, debug=False) -> Network:
+    """Read the inputs of a release, sweep or plan the way ``policy`` says.
+
+    Column options left as ``None`` come from the policy's ``[input]`` section;
+    the weight column from ``components.weight_totals`` when weight totals are
+    released; only the attributes the policy uses are kept.
+
+    Returns
+    -------
+    Network
+    """
+    inp = policy.input
+    return load_network(edges, people, source=source or inp.source, target=target or inp.target,
+                        node=node or inp.node, weight=policy_weight_column(policy, weight or inp.weight),
+                        drop_unknown=inp.drop_unknown if drop_unknown is None else drop_unknown,
+                        attributes=policy_attributes(policy), engine=engine, debug=debug)

@@ -220,7 +220,7 @@ def _select_rows(superedges: pa.Table, n_supernodes: int, cells, sparse: bool):
         ta = _col(superedges, "supernode_a")
         tb = _col(superedges, "supernode_b")
         if not sparse and len(ta) == n_supernodes * (n_supernodes + 1) // 2:
-            from .components import all_cells, cell_index
+            from .cells import all_cells, cell_index
 
             ca, cb = all_cells(n_supernodes)
             if np.array_equal(ca, ta) and np.array_equal(cb, tb):  # the dense release's own order

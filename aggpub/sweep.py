@@ -46,12 +46,15 @@ from pathlib import Path
 
 import numpy as np
 
-from . import components as comp
+from .budget import check_contact_cap, sensitivity
+from .cells import possible_pairs
+from .released import dense_truth, release_degree_histograms, released_sizes, superedge_sparse_threshold
 from .errors import OutputError, PolicyError, PrivacyError, UsageError
-from .noise.accountant import ReleaseBudget
+from .budget import ReleaseBudget
 from .noise.mechanisms import GeometricMechanism
 from .noise.sampler import make_random_source
 from .policy import PRIVACY_UNITS, ReleasePolicy, epsilon_shares, read_policy
+from .progress import silent
 
 PLANNING_NOTE = (
     "INTERNAL PLANNING AID - CONFIDENTIAL, NOT A RELEASE. These figures were measured on the private data. "
@@ -136,10 +139,6 @@ class SweepResult:
                 "network": self.network}
 
 
-def _silent(message: str) -> None:
-    pass
-
-
 def _policy_at(policy: ReleasePolicy, unit: str, epsilon: float, min_size: int, max_contacts) -> ReleasePolicy:
     privacy = dataclasses.replace(policy.privacy, unit=unit, epsilon=float(epsilon),
                                   max_contacts=max_contacts if unit == "person" else None)
@@ -220,10 +219,10 @@ class _GroupingTruth:
         self.grouping = grouping
         self.n_groups = grouping.n_supernodes
         self.true_sizes = grouping.sizes()
-        self.pub_sizes = comp.released_sizes(grouping)
+        self.pub_sizes = released_sizes(grouping)
         nz_a, nz_b, nz_c = network.engine.superedge_counts(grouping.assignment)
-        self.st = comp.dense_truth(self.n_groups, nz_a, nz_b, nz_c)
-        self.cap_pub = comp.possible_pairs(self.pub_sizes, self.st.a, self.st.b)
+        self.st = dense_truth(self.n_groups, nz_a, nz_b, nz_c)
+        self.cap_pub = possible_pairs(self.pub_sizes, self.st.a, self.st.b)
         labels = {c: [str(x) for x in grouping.labels.column(c).to_pylist()] for c in label_cols}
         self.workloads = {c: qw.contact_matrix_workload(self.st.a, self.st.b, labels[c], c) for c in label_cols}
         self.cm_truth = {c: w.answer(self.st.count.astype(np.float64)) for c, w in self.workloads.items()}
@@ -287,9 +286,10 @@ def run_sweep(policy, edges=None, people=None, *, epsilons, min_sizes, units=Non
     from .audit.metrics import DEFAULT_SANITY_FRACTION, distribution_distances, error_summary
     from .engines import make_engine
     from .ingest import load_network
-    from .pipeline import _needed_attributes, make_grouping
+    from .grouping import make_grouping
+    from .ingest import policy_attributes
 
-    progress = progress or _silent
+    progress = progress or silent
     t_start = time.perf_counter()
     if not isinstance(policy, ReleasePolicy):
         policy = read_policy(policy)
@@ -320,7 +320,7 @@ def run_sweep(policy, edges=None, people=None, *, epsilons, min_sizes, units=Non
         network = load_network(edges, people, source=source_column or inp.source,
                                target=target_column or inp.target, node=node_column or inp.node, weight=None,
                                drop_unknown=inp.drop_unknown if drop_unknown is None else drop_unknown,
-                               attributes=_needed_attributes(policy), debug=debug,
+                               attributes=policy_attributes(policy), debug=debug,
                                engine=make_engine(engine, **({"memory_limit": memory_limit} if memory_limit
                                                              else {})))
     timings = {"ingest_seconds": time.perf_counter() - t0}
@@ -342,7 +342,7 @@ def run_sweep(policy, edges=None, people=None, *, epsilons, min_sizes, units=Non
     t_noise = 0.0
     for unit in units:
         if unit == "person":
-            comp.check_contact_cap(true_deg, D)
+            check_contact_cap(true_deg, D)
         for k in min_sizes:
             for eps in epsilons:
                 pol = _policy_at(policy, unit, eps, k, D)
@@ -404,10 +404,10 @@ def _grid_point(truth, pol, shares, unit, k, eps, D, draws, source, gate_attr, h
                 released_histogram_degrees, distribution_distances, error_summary, evaluate_gate) -> dict:
     """Analytic expectations and ``draws`` real noise draws at one setting."""
     st = truth.st
-    sens = comp.sensitivity(unit, "superedge_counts", D)
+    sens = sensitivity(unit, "superedge_counts", D)
     eps_se = shares["superedge_counts"]
     mech = GeometricMechanism(epsilon=eps_se, sensitivity=sens)
-    threshold = comp.superedge_sparse_threshold(pol.components.superedge_counts, truth.n_groups, eps_se, sens)
+    threshold = superedge_sparse_threshold(pol.components.superedge_counts, truth.n_groups, eps_se, sens)
     n_cells = len(st.count)
     true_t = st.count.astype(np.float64)
     al = mech.alpha
@@ -446,8 +446,8 @@ def _grid_point(truth, pol, shares, unit, k, eps, D, draws, source, gate_attr, h
                 figs["cm_p90"].append(e["p90_relative_error"])
         if truth.hist_truth is not None:
             eps_h = shares["degree_histograms"]
-            sens_h = comp.sensitivity(unit, "degree_histograms", D)
-            table, _, hist_mech = comp.release_degree_histograms(truth.hist_truth, truth.pub_sizes, eps_h, sens_h,
+            sens_h = sensitivity(unit, "degree_histograms", D)
+            table, _, hist_mech = release_degree_histograms(truth.hist_truth, truth.pub_sizes, eps_h, sens_h,
                                                                  source)
             d = distribution_distances(truth.true_capped, released_histogram_degrees(table, hp.max_degree + 1))
         else:

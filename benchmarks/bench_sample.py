@@ -18,7 +18,7 @@ import types
 import numpy as np
 import pyarrow as pa
 
-from aggpub import components as comp
+from aggpub import cells as comp
 from aggpub.researcher import sample_network
 
 

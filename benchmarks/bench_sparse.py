@@ -35,7 +35,7 @@ import sys
 CHILD = r"""
 import json, resource, sys, time, tracemalloc
 import numpy as np
-from aggpub import components as comp
+from aggpub import released as comp
 from aggpub.noise.sampler import SystemRandomSource
 from aggpub.noise.sparse import default_threshold
 

@@ -151,7 +151,7 @@ def method_policies(grouping_attrs):
 
 def _dense_cells(a, b, values, n_groups):
     """Scatter (a, b, value) rows into a vector over every cell (absent cells: 0)."""
-    from aggpub.components import cell_index
+    from aggpub.cells import cell_index
 
     out = np.zeros(n_groups * (n_groups + 1) // 2, dtype=np.int64)
     if len(a):

@@ -7,7 +7,7 @@ histograms. Run: /work/venv/bin/python benchmarks/consistency_error.py
 
 import numpy as np
 
-from aggpub.noise.consistency import cumulative_isotonic_histograms, simplex_histograms
+from aggpub.estimates.consistency import cumulative_isotonic_histograms, simplex_histograms
 from aggpub.noise.mechanisms import GeometricMechanism
 from aggpub.noise.sampler import make_random_source
 

@@ -19,7 +19,7 @@ from scipy import stats
 from scipy.spatial.distance import cityblock
 
 import aggpub
-from aggpub import components as comp
+from aggpub import cells as comp
 from aggpub.audit import (
     audit_release,
     distribution_distances,

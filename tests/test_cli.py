@@ -80,12 +80,12 @@ def test_debug_reraises(tmp_path):
 
 
 def test_keyboard_interrupt_is_one_line(tmp_path, capsys, monkeypatch):
-    import aggpub.pipeline as pipeline
+    import aggpub.ingest as ingest_mod
 
     def interrupted(*a, **k):
         raise KeyboardInterrupt
 
-    monkeypatch.setattr(pipeline, "load_network", interrupted)
+    monkeypatch.setattr(ingest_mod, "load_network", interrupted)
     s = Scenario(tmp_path)
     assert main(s.argv()) == 130
     err = capsys.readouterr().err

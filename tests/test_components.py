@@ -25,10 +25,12 @@ import pytest
 from scipy.optimize import isotonic_regression as scipy_isotonic
 from scipy.optimize import minimize
 
-from aggpub import components as comp
+from aggpub import budget
+from aggpub import cells
+from aggpub import released
 from aggpub.bundle.check import _check_invariants, CheckResult, check_bundle
 from aggpub.errors import PolicyError
-from aggpub.noise import consistency as cons
+from aggpub.estimates import consistency as cons
 from aggpub.noise.sampler import make_random_source
 from aggpub.pipeline import publish, release_tables
 from aggpub.policy import parse_policy
@@ -147,7 +149,7 @@ def test_simplex_consistency_reduces_error():
 
 def test_degree_histogram_release_every_bin_and_consistent():
     truth = np.array([[3, 0, 2, 0], [0, 0, 0, 5]])
-    table, spend, mech = comp.release_degree_histograms(truth, truth.sum(axis=1), 1.0, 4.0,
+    table, spend, mech = released.release_degree_histograms(truth, truth.sum(axis=1), 1.0, 4.0,
                                                         make_random_source(1))
     assert table.num_rows == 8  # zeros included
     assert table.column("degree_bin").to_pylist() == [0, 1, 2, 3] * 2
@@ -159,15 +161,15 @@ def test_degree_histogram_release_every_bin_and_consistent():
 
 
 def test_weight_totals_release_every_cell_clamped():
-    st = comp.dense_truth(3, np.array([0, 1]), np.array([1, 2]), np.array([50, 7]))
+    st = released.dense_truth(3, np.array([0, 1]), np.array([1, 2]), np.array([50, 7]))
     sizes = np.array([4, 1, 2])
-    table, spend, _ = comp.release_weight_totals(st, sizes, 10, 0.5, 10.0, make_random_source(2))
+    table, spend, _ = released.release_weight_totals(st, sizes, 10, 0.5, 10.0, make_random_source(2))
     assert table.num_rows == 6
     t = table.column("weight_total").to_numpy()
     cap = table.column("max_weight_total").to_numpy()
-    assert np.array_equal(cap, 10 * comp.possible_pairs(sizes, st.a, st.b))
+    assert np.array_equal(cap, 10 * cells.possible_pairs(sizes, st.a, st.b))
     assert (t >= 0).all() and (t <= cap).all() and t.dtype == np.int64
-    assert cap[comp.cell_index(1, 1, 3)] == 0 and t[comp.cell_index(1, 1, 3)] == 0
+    assert cap[cells.cell_index(1, 1, 3)] == 0 and t[cells.cell_index(1, 1, 3)] == 0
     assert spend.scale == 20.0
 
 
@@ -209,7 +211,7 @@ def test_all_components_release_and_bundle_check(unit, tmp_path):
         assert set(c) == {"name", "epsilon", "sensitivity", "mechanism", "scale"}
         assert c["mechanism"] == "discrete_laplace" and c["scale"] == pytest.approx(c["sensitivity"] / c["epsilon"])
         D = 40 if unit == "person" else None
-        assert c["sensitivity"] == comp.sensitivity(unit, c["name"], max_contacts=D, clip=60)
+        assert c["sensitivity"] == budget.sensitivity(unit, c["name"], max_contacts=D, clip=60)
     total = sum(c["epsilon"] for c in m["components"])
     assert total <= m["epsilon_total"] and total == pytest.approx(m["epsilon_total"], rel=1e-12)
     assert m["epsilon_spent"] == pytest.approx(m["epsilon_total"], rel=1e-12)
@@ -294,7 +296,7 @@ def test_bins_above_the_promised_cap_are_set_to_zero():
     """Under unit person no degree exceeds D (public), so bins above D are empty by post-processing."""
     truth = np.array([[1, 2, 3, 0, 0, 0], [0, 4, 0, 1, 0, 0]])
     sizes = truth.sum(axis=1)
-    table, _, _ = comp.release_degree_histograms(truth, sizes, 0.2, 7.0, make_random_source(4),
+    table, _, _ = released.release_degree_histograms(truth, sizes, 0.2, 7.0, make_random_source(4),
                                                  max_possible_degree=3)
     people = table.column("people").to_numpy().reshape(2, 6)
     assert (people[:, 4:] == 0).all() and np.array_equal(people.sum(axis=1), sizes)

@@ -17,7 +17,8 @@ import pytest
 from networkx.algorithms.community import greedy_modularity_communities
 
 from aggpub import load_network
-from aggpub.components import cell_index, dense_truth
+from aggpub.cells import cell_index
+from aggpub.released import dense_truth
 from aggpub.engines import _duckdb
 from aggpub.pipeline import release_tables
 

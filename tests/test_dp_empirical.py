@@ -43,7 +43,7 @@ import numpy as np
 import pytest
 import scipy.stats as st
 
-from aggpub import components as comp
+from aggpub import cells as comp
 from aggpub.ingest import load_network
 from aggpub.noise import sparse
 from aggpub.noise.mechanisms import GeometricMechanism

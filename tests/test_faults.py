@@ -30,7 +30,8 @@ import aggpub.bundle._files as files_mod
 import aggpub.bundle.write as write_mod
 import aggpub.audit as audit_mod
 import aggpub.audit.report as report_mod
-import aggpub.components as comp_mod
+import aggpub.ingest as ingest_mod
+import aggpub.released as released_mod
 import aggpub.pipeline as pipeline
 from aggpub.bundle import check_bundle
 from aggpub.bundle._files import stale_temp_siblings
@@ -67,10 +68,10 @@ def _interrupt(*a, **k):
 
 # (name, object, attribute, replacement, expected exit code)
 STAGE_FAULTS = [
-    ("ingest", pipeline, "load_network", _boom, 9),
+    ("ingest", ingest_mod, "load_network", _boom, 9),
     ("grouping", pipeline, "make_grouping", _boom, 9),
     ("counting", DuckDBEngine, "superedge_counts", _boom, 9),
-    ("noise", comp_mod, "release_superedge_counts", _boom, 9),
+    ("noise", released_mod, "release_superedge_counts", _boom, 9),
     ("audit", audit_mod, "audit_release", _boom, 9),
     ("report_write", report_mod, "write_report", _boom, 9),
     ("datacard", pipeline, "render_datacard", _boom, 9),
@@ -123,7 +124,7 @@ def test_fault_after_the_exchange_leaves_the_new_bundle(tmp_path, capsys):
     """An error after the atomic swap: the new bundle is in place and whole; no temp folder stays."""
     s = Scenario(tmp_path)
     _make_bundle(s)
-    network = pipeline.load_network(s.edges, s.people, attributes=["age_band", "district"])
+    network = ingest_mod.load_network(s.edges, s.people, attributes=["age_band", "district"])
     release = pipeline.build_release(network, pipeline.read_policy(s.policy), seed=5)
 
     def fault(stage):
@@ -309,7 +310,7 @@ lifetime_epsilon = 10.0
 
 
 def _ledger_rows(s: Scenario):
-    from aggpub.noise.ledger import Ledger
+    from aggpub.budget.ledger import Ledger
 
     path = s.policy.parent / "ledger.sqlite"
     return [] if not path.exists() else Ledger(path).spends("quennet-vale-contacts")

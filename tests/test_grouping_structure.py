@@ -25,14 +25,15 @@ import pytest
 from hypothesis import given, settings, strategies as st
 from scipy import stats
 
-from aggpub import components as comp
+from aggpub import budget
 from aggpub.engines import make_engine
 from aggpub.errors import InputError, PolicyError, PrivacyError
 from aggpub.grouping import group_at_random, group_by_map
 from aggpub.grouping.given import MAP_NOTE, parse_group_map
 from aggpub.grouping.structure import (DEGREE_SENSITIVITY, PROFILE_SENSITIVITY, _tiers_in_blocks,
                                        degree_tiers, group_by_structure, merge_small_clusters,
-                                       noisy_degrees, split_epsilon)
+                                       noisy_degrees)
+from aggpub.budget import equal_split as split_epsilon
 from aggpub.ingest import load_network
 from aggpub.noise.mechanisms import GeometricMechanism
 from aggpub.noise.sampler import make_random_source
@@ -384,7 +385,7 @@ def _run_path(G, u, v, eps_deg, eps_se, runs, seed, degree_sensitivity=DEGREE_SE
     ev = np.array([nodes.index(b) for a, b in G.edges()])
     src = make_random_source(seed)
     deg_mech = GeometricMechanism(eps_deg, degree_sensitivity)
-    se_mech = GeometricMechanism(eps_se, comp.sensitivity("edge", "superedge_counts"))
+    se_mech = GeometricMechanism(eps_se, budget.sensitivity("edge", "superedge_counts"))
     dh = d[None, :] + deg_mech.noise((runs, len(nodes)), src)
     se_noise = se_mech.noise(runs, src)  # only the cell (tier_u, tier_v) is looked at
     out = np.empty((runs, 3), dtype=np.int64)

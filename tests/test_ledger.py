@@ -1,4 +1,4 @@
-"""The lifetime ledger (:mod:`aggpub.noise.ledger`): cap, crash, concurrency, damage, tampering, listing.
+"""The lifetime ledger (:mod:`aggpub.budget.ledger`): cap, crash, concurrency, damage, tampering, listing.
 
 The network used for whole releases is Zachary's karate club as shipped by
 networkx (W. W. Zachary, "An information flow model for conflict and fission
@@ -31,7 +31,7 @@ from aggpub.bundle import check_bundle
 from aggpub.cli import main
 from aggpub.errors import BudgetError, InputError
 from aggpub.noise import sampler
-from aggpub.noise.ledger import ChargeOnFirstDraw, Ledger, LEDGER_APPLICATION
+from aggpub.budget.ledger import ChargeOnFirstDraw, Ledger, LEDGER_APPLICATION
 from aggpub.pipeline import run_release
 
 from .conftest import graph_tables

@@ -35,7 +35,7 @@ import pyarrow as pa
 import pytest
 import scipy.stats as st
 
-from aggpub import components as comp
+from aggpub import cells as comp
 from aggpub.bundle.check import check_bundle
 from aggpub.errors import PolicyError, PrivacyError
 from aggpub.noise.mechanisms import GeometricMechanism

@@ -1,4 +1,4 @@
-"""Progress of long engine steps (aggpub.engines._progress.LongStep) and the DuckDB engine's use of it."""
+"""Progress of long engine steps (aggpub.progress.LongStep) and the DuckDB engine's use of it."""
 
 from __future__ import annotations
 
@@ -7,7 +7,7 @@ import time
 
 import numpy as np
 
-from aggpub.engines._progress import LongStep
+from aggpub.progress import LongStep
 
 
 def test_a_short_step_prints_nothing():
@@ -62,7 +62,8 @@ def test_silent_without_a_printer():
 def test_duckdb_engine_reports_long_counting(monkeypatch):
     """With a zero interval every batch of the counting loop reports; the counts do not change."""
     from aggpub import load_network
-    from aggpub.engines import _progress, make_engine
+    from aggpub import progress as _progress
+    from aggpub.engines import make_engine
 
     from .conftest import graph_tables
     import networkx as nx
@@ -83,7 +84,8 @@ def test_duckdb_engine_reports_long_counting(monkeypatch):
 def test_duckdb_reports_its_own_estimate_of_a_long_statement(monkeypatch):
     """DuckDB's query_progress gives a percentage while a statement runs (its progress bar is on,
     printing off): the watcher's lines carry it."""
-    from aggpub.engines import _progress, make_engine
+    from aggpub import progress as _progress
+    from aggpub.engines import make_engine
 
     eng = make_engine("duckdb")
     lines = []

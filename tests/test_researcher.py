@@ -21,7 +21,7 @@ import pytest
 from scipy import stats
 
 import aggpub
-from aggpub import components as comp
+from aggpub import cells as comp
 from aggpub import researcher as R
 from aggpub.cli import main
 from aggpub.demo import demo_policy_text, generate_town

@@ -1,4 +1,4 @@
-"""Brute-force neighbour tests of every declared L1 sensitivity (``aggpub.components.SENSITIVITY``).
+"""Brute-force neighbour tests of every declared L1 sensitivity (``aggpub.budget.SENSITIVITY``).
 
 For many small random networks (6 to 12 people, random attributes and a fixed
 public grouping) every neighbour is built -- under unit ``edge`` each contact
@@ -26,8 +26,9 @@ import numpy as np
 import pyarrow as pa
 import pytest
 
-from aggpub import components as comp
-from aggpub import pipeline
+from aggpub import budget as comp
+from aggpub.cells import cell_index
+from aggpub.grouping import noisy_cells
 from aggpub.engines._duckdb import DuckDBEngine
 from aggpub.errors import PrivacyError
 from aggpub.ingest import load_network
@@ -99,7 +100,7 @@ def _union_counts(copies, group, n_groups, cap):
         out = np.zeros((K, n_cells), dtype=np.int64)
         k = a // G
         assert np.array_equal(k, b // G), "a contact crossed copies"
-        out[k, comp.cell_index(a % G, b % G, G)] = val
+        out[k, cell_index(a % G, b % G, G)] = val
         return out
 
     se = scatter(*net.engine.superedge_counts(assignment))
@@ -222,10 +223,10 @@ def _fine_cell_counts(people: pa.Table, policy, monkeypatch):
         return np.asarray(true_counts, dtype=np.int64), comp.Spend("supernode_sizes", epsilon, sens, "probe",
                                                                    1.0), None
 
-    monkeypatch.setattr(comp, "release_cell_counts", probe)
+    monkeypatch.setattr(noisy_cells, "release_cell_counts", probe)
     budget = types.SimpleNamespace(check=lambda spend: None)
     net = types.SimpleNamespace(people=people, n_people=people.num_rows)
-    pipeline._group_by_attributes_noisy(net, policy, budget, None, 0.5)
+    noisy_cells.group_by_noisy_cells(net, policy, budget, None, 0.5)
     return seen[-1]
 
 

@@ -30,7 +30,8 @@ import pyarrow as pa
 import pytest
 import scipy.stats as st
 
-from aggpub import components as comp
+from aggpub import cells as comp
+from aggpub import released
 from aggpub.bundle import check_bundle
 from aggpub.noise import sparse
 from aggpub.noise.mechanisms import GeometricMechanism
@@ -295,7 +296,7 @@ def test_release_path_uses_sparse_without_the_dense_table(monkeypatch, tmp_path)
     def boom(*a, **k):
         raise AssertionError("the sparse release must not build the dense table")
 
-    monkeypatch.setattr(comp, "dense_truth", boom)
+    monkeypatch.setattr(released, "dense_truth", boom)
     monkeypatch.setattr(comp, "all_cells", boom)
     release = release_tables(edges, people, policy, seed=4)
     m = release.manifest

@@ -11,10 +11,12 @@ from datetime import datetime, timezone
 
 import numpy as np
 
-from .. import components as comp
+from ..cells import cell_index, possible_pairs
+from ..released import dense_truth, release_degree_histograms
 from . import degrees as deg
 from . import queries as qw
 from . import structure as struct
+from ..progress import silent
 from .metrics import DEFAULT_SANITY_FRACTION, distribution_distances, error_summary
 
 #: Largest network (contacts) whose structure the audit computes in memory.
@@ -31,10 +33,6 @@ MC_DEFAULT_VALUES = 6_000_000
 RESIDUAL = "*"
 
 
-def _silent(message: str) -> None:
-    pass
-
-
 def _col(table, name):
     return np.asarray(table.column(name).to_numpy(zero_copy_only=False))
 
@@ -46,7 +44,7 @@ def _released_cells(release, n_groups, column="edge_count"):
         return None
     a, b = _col(t, "supernode_a").astype(np.int64), _col(t, "supernode_b").astype(np.int64)
     out = np.zeros(n_groups * (n_groups + 1) // 2, dtype=np.int64)
-    out[comp.cell_index(np.minimum(a, b), np.maximum(a, b), n_groups)] = _col(t, column)
+    out[cell_index(np.minimum(a, b), np.maximum(a, b), n_groups)] = _col(t, column)
     return out
 
 
@@ -190,7 +188,7 @@ def audit_release(release, *, monte_carlo: int | None = None, source=None, struc
     """
     from .gate import evaluate_gate
 
-    progress = progress or _silent
+    progress = progress or silent
     source = source or _audit_source()
     rng = np.random.default_rng(seed)
     network, grouping, policy = release.network, release.grouping, release.policy
@@ -243,7 +241,7 @@ def audit_release(release, *, monte_carlo: int | None = None, source=None, struc
                                 f"({MAX_AUDIT_CELLS:,}); superedge workloads and the block-model degree "
                                 "distribution were left out")
         else:
-            st = comp.dense_truth(n_groups, st.a, st.b, st.count)
+            st = dense_truth(n_groups, st.a, st.b, st.count)
             out["notes"].append(f"sparse superedge release: cells whose noisy count fell below {threshold} are "
                                 "absent and read as 0 (the Monte Carlo applies the same threshold)")
     mech = release.mechanisms.get("superedge_counts")
@@ -252,8 +250,8 @@ def audit_release(release, *, monte_carlo: int | None = None, source=None, struc
     plot["true_pmf"] = true_hist / true_hist.sum()
     if have_edges:
         rel_cells = _released_cells(release, n_groups)
-        cap_true = comp.possible_pairs(true_sizes, st.a, st.b)
-        cap_pub = comp.possible_pairs(pub_sizes, st.a, st.b)
+        cap_true = possible_pairs(true_sizes, st.a, st.b)
+        cap_pub = possible_pairs(pub_sizes, st.a, st.b)
         group_pmf, method = deg.implied_degree_pmf(st.a, st.b, st.count, true_sizes)
         block_pmf, _ = deg.implied_degree_pmf(st.a, st.b, rel_cells, pub_sizes, method=method)
         plot["grouping_pmf"], plot["block_pmf"] = group_pmf, block_pmf
@@ -281,7 +279,7 @@ def audit_release(release, *, monte_carlo: int | None = None, source=None, struc
             ks, w1, l1 = [], [], []
             for _ in range(int(monte_carlo)):
                 # the component's own release function: the same noise and post-processing
-                table, _, _ = comp.release_degree_histograms(th, pub_sizes, hist_mech.epsilon,
+                table, _, _ = release_degree_histograms(th, pub_sizes, hist_mech.epsilon,
                                                              hist_mech.sensitivity, source)
                 d = distribution_distances(true_capped, deg.released_histogram_degrees(table, top + 1))
                 ks.append(d["ks"])

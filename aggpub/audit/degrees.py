@@ -23,7 +23,7 @@ __all__ = ["block_model_terms", "cell_matrix", "implied_degree_pmf", "released_h
 import numpy as np
 from scipy import special
 
-from ..components import possible_pairs
+from ..cells import possible_pairs
 
 #: Above this many (supernode x supernode x grid) terms, use the Poisson approximation.
 MAX_EXACT_TERMS = 60_000_000

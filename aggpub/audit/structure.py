@@ -31,7 +31,7 @@ import numpy as np
 from scipy import sparse
 from scipy.sparse import csgraph
 
-from ..components import possible_pairs
+from ..cells import possible_pairs
 
 
 def _sorted_unique(x):

@@ -17,7 +17,7 @@ import pyarrow as pa
 
 from ..errors import InputError
 from ..ingest import IngestReport, Network, csv_header, file_format
-from ._progress import LongStep
+from ..progress import LongStep
 
 MISSING_ID = -2
 UNKNOWN_ID = -1

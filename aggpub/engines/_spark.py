@@ -29,7 +29,7 @@ import pyarrow as pa
 
 from ..errors import InputError, UsageError
 from ..ingest import IngestReport, MISSING_ID_SPELLINGS, Network, csv_header, file_format
-from ._progress import LongStep
+from ..progress import LongStep
 
 MISSING_ID = -2
 UNKNOWN_ID = -1

@@ -8,27 +8,6 @@ import numpy as np
 import pyarrow as pa
 
 
-@dataclass(frozen=True)
-class Spend:
-    """One use of the privacy budget, as recorded in the manifest's ``components``."""
-
-    name: str
-    epsilon: float
-    sensitivity: float
-    mechanism: str
-    scale: float
-
-    @classmethod
-    def of(cls, name: str, mechanism) -> "Spend":
-        """The spend of one use of ``mechanism`` (its epsilon, sensitivity, name and scale)."""
-        return cls(name=name, epsilon=float(mechanism.epsilon), sensitivity=float(mechanism.sensitivity),
-                   mechanism=mechanism.name, scale=float(mechanism.scale))
-
-    def as_dict(self) -> dict:
-        return {"name": self.name, "epsilon": self.epsilon, "sensitivity": self.sensitivity,
-                "mechanism": self.mechanism, "scale": self.scale}
-
-
 @dataclass
 class Grouping:
     """People mapped to supernodes.

@@ -42,7 +42,7 @@ Proposition 2.1; composition, Theorem 3.16).
 
 from __future__ import annotations
 
-__all__ = ["group_by_structure", "noisy_degrees", "degree_tiers", "split_epsilon",
+__all__ = ["group_by_structure", "noisy_degrees", "degree_tiers",
            "DEGREE_SENSITIVITY", "PROFILE_SENSITIVITY", "MAX_PROFILE_CELLS"]
 
 import math
@@ -52,32 +52,19 @@ import pyarrow as pa
 
 from ..errors import PolicyError, PrivacyError
 from ..noise.mechanisms import GeometricMechanism
-from ._common import Grouping, Spend
+from ..budget import SENSITIVITY, Spend, equal_split
+from ._common import Grouping
 
 #: L1 sensitivity of the degree vector under unit ``edge`` (one contact, two ends).
-DEGREE_SENSITIVITY = 2
+DEGREE_SENSITIVITY = SENSITIVITY[("edge", "grouping_degrees")]
 #: L1 sensitivity of the person x supernode contact-profile matrix under unit ``edge``.
-PROFILE_SENSITIVITY = 2
+PROFILE_SENSITIVITY = SENSITIVITY[("edge", "grouping_profiles")]
 #: Largest noisy profile matrix (cells) a refinement round builds; beyond it the round is refused.
 MAX_PROFILE_CELLS = 60_000_000
 #: Weight of the standardised log noisy degree next to the normalised profile columns in k-means
 #: (small: the profile, not the degree, drives the refinement; tuned on planted partitions).
 DEGREE_FEATURE_WEIGHT = 0.1
 _ROW_CHUNK_CELLS = 4_000_000  # cells noised per chunk (bounds temporary memory)
-
-
-# --------------------------------------------------------------------------- budget
-
-
-def split_epsilon(epsilon: float, parts: int) -> list[float]:
-    """Split ``epsilon`` into ``parts`` equal shares whose floating-point sum never exceeds it."""
-    if parts < 1:
-        raise ValueError("'parts' must be >= 1")
-    out = [epsilon / parts] * (parts - 1)
-    last = epsilon - sum(out)
-    while sum(out) + last > epsilon:
-        last = math.nextafter(last, 0.0)
-    return out + [last]
 
 
 # --------------------------------------------------------------------------- step 1
@@ -385,7 +372,7 @@ def group_by_structure(network, min_size: int, epsilon: float, source, *, tiers:
         raise PrivacyError(f"'grouping.min_size' = {min_size} is larger than the population ({n} people)")
     attributes = list(attributes or ())
     method = "attributes+structure" if attributes else "structure"
-    eps_parts = split_epsilon(float(epsilon), int(rounds) + 1)
+    eps_parts = equal_split(float(epsilon), int(rounds) + 1)
     spends, notes = [], []
 
     if attributes:

@@ -69,7 +69,7 @@ from datetime import datetime, timezone
 from pathlib import Path
 
 from ..errors import BudgetError, InputError
-from .sampler import RandomSource
+from ..noise.sampler import RandomSource
 
 #: Version of the table layout; a ledger with another version is refused.
 LEDGER_SCHEMA_VERSION = "1"

@@ -1,4 +1,7 @@
-"""Progress of long engine work, reported on the release's progress stream.
+"""Progress on stderr: stage messages, and long engine work reported while it runs.
+
+:class:`Progress` prints one line per stage (silent when quiet); :func:`silent`
+is the printer that prints nothing.
 
 A statement inside DuckDB or Spark can run for minutes on 10^8 edges and gives
 Python no chance to print anything. :class:`LongStep` watches it from a helper
@@ -10,10 +13,28 @@ Loops over batches in Python report through :meth:`LongStep.tick` instead.
 
 from __future__ import annotations
 
-__all__ = ["LongStep", "PROGRESS_EVERY"]
+__all__ = ["Progress", "silent", "LongStep", "PROGRESS_EVERY"]
 
+import sys
 import threading
 import time
+
+
+class Progress:
+    """Stage messages on stderr (silent when ``quiet``)."""
+
+    def __init__(self, quiet: bool = False, stream=None):
+        self.quiet = quiet
+        self.stream = stream or sys.stderr
+        self.t0 = time.perf_counter()
+
+    def __call__(self, message: str) -> None:
+        if not self.quiet:
+            print(f"[{time.perf_counter() - self.t0:7.1f}s] {message}", file=self.stream, flush=True)
+
+
+def silent(message: str) -> None:
+    """A progress printer that prints nothing."""
 
 #: Seconds before a long step first reports, and between its reports.
 PROGRESS_EVERY = 15.0

@@ -1,0 +1,69 @@
+"""The manifest of a bundle: what was released, under which guarantee, with which spends.
+
+Built from public values only: the policy as applied, the budget's spends, the
+grouping's public description and the row counts of the released tables.
+"""
+
+from __future__ import annotations
+
+__all__ = ["build_manifest"]
+
+from datetime import datetime, timezone
+
+from .._version import BUNDLE_FORMAT, __version__
+from .datacard import CAUTIONS
+
+
+def build_manifest(policy, grouping, budget, source, tables: dict, *, sizes_exact: bool, extra: dict,
+                   ledger_charge=None) -> dict:
+    """The manifest dict of a release (without ``files`` and ``manifest_sha256``, added when written).
+
+    Parameters
+    ----------
+    policy : ReleasePolicy
+    grouping : Grouping
+    budget : ReleaseBudget
+        After every spend of the release.
+    source : RandomSource
+        The release's randomness (``seeded`` marks a test bundle as not private).
+    tables : dict
+        Name -> released Arrow table.
+    sizes_exact : bool
+        True when the sizes are public (unit ``edge``), False when they are noisy.
+    extra : dict
+        Fields added by a statistic (the sparse release's threshold).
+    ledger_charge : Charge, optional
+        The lifetime ledger's charge of this release.
+    """
+    from ..policy import policy_to_dict
+
+    unit = policy.privacy.unit
+    manifest = {
+        "format": BUNDLE_FORMAT,
+        "tool_version": __version__,
+        "created_utc": datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ"),
+        "title": policy.title,
+        "policy": policy_to_dict(policy),
+        "privacy_unit": unit,
+        "max_contacts": policy.privacy.max_contacts,
+        "epsilon_total": policy.privacy.epsilon,
+        "epsilon_spent": budget.spent(),
+        "delta": 0.0,
+        "min_size": policy.grouping.min_size,
+        "seeded": source.seeded,
+        "randomness": source.description,
+        "components": [s.as_dict() for s in budget.spends],
+        "sizes_exact": bool(sizes_exact),
+        "grouping_method": grouping.method,
+        "grouping_attributes": list(policy.grouping.attributes),
+        "grouping_public": grouping.public,
+        "grouping_notes": list(grouping.notes),
+        "rows": {name: t.num_rows for name, t in tables.items()},
+        "cautions": CAUTIONS,
+    }
+    manifest.update(extra)
+    if source.seeded:
+        manifest["warning"] = "seeded: reproducible noise, NOT private; for tests only"
+    if ledger_charge is not None:
+        manifest["ledger"] = ledger_charge.as_dict()
+    return manifest

@@ -1,0 +1,74 @@
+"""Arithmetic of supernode-pair cells, written once.
+
+A release over ``n`` supernodes has one cell per unordered pair ``a <= b``
+(the upper triangle including the diagonal): ``n (n + 1) / 2`` cells, stored
+row by row. Within one supernode of ``s`` people the possible contacts are the
+``s (s - 1) / 2`` unordered pairs of distinct people, numbered the same way.
+Everything here is public arithmetic on ids and sizes; nothing reads private data.
+"""
+
+from __future__ import annotations
+
+__all__ = ["n_cells", "all_cells", "cell_index", "flat_to_pair", "possible_pairs", "unrank_pairs",
+           "scatter_cells"]
+
+import numpy as np
+
+
+def n_cells(n: int) -> int:
+    """Number of cells of ``n`` supernodes: ``n (n + 1) / 2`` (diagonal included)."""
+    n = int(n)
+    return n * (n + 1) // 2
+
+
+def all_cells(n: int):
+    """Every unordered pair ``a <= b`` of ``n`` supernodes, row-major upper triangle."""
+    a, b = np.triu_indices(n)
+    return a.astype(np.int64), b.astype(np.int64)
+
+
+def cell_index(a, b, n: int):
+    """Position of pair ``(a, b)``, ``a <= b``, in the order of :func:`all_cells`."""
+    a = np.asarray(a, dtype=np.int64)
+    b = np.asarray(b, dtype=np.int64)
+    return a * n - (a * (a - 1)) // 2 + (b - a)
+
+
+def flat_to_pair(flat, n: int):
+    """Inverse of :func:`cell_index`: flat upper-triangle positions -> ``(a, b)``, ``a <= b``."""
+    flat = np.asarray(flat, dtype=np.int64)
+    rows = np.arange(n, dtype=np.int64)
+    starts = rows * n - (rows * (rows - 1)) // 2
+    a = np.searchsorted(starts, flat, side="right") - 1
+    b = flat - starts[a] + a
+    return a.astype(np.int64), b.astype(np.int64)
+
+
+def possible_pairs(sizes, a, b):
+    """Number of possible contacts in each cell: ``s_a s_b``, or ``s_a (s_a - 1) / 2`` on the diagonal."""
+    sizes = np.maximum(np.asarray(sizes, dtype=np.int64), 0)
+    sa, sb = sizes[a], sizes[b]
+    return np.where(a == b, sa * (sa - 1) // 2, sa * sb)
+
+
+def unrank_pairs(r: np.ndarray):
+    """Pair index ``r`` -> ``(i, j)`` with ``i < j``, where ``r = j (j - 1) / 2 + i``.
+
+    The numbering of the distinct pairs inside one supernode (the order of
+    :func:`itertools.combinations` read column by column).
+    """
+    r = np.asarray(r, dtype=np.int64)
+    j = np.floor((1.0 + np.sqrt(1.0 + 8.0 * r.astype(np.float64))) / 2.0).astype(np.int64)
+    j = np.where(j * (j - 1) // 2 > r, j - 1, j)  # correct a float rounding either way
+    j = np.where((j + 1) * j // 2 <= r, j + 1, j)
+    return r - j * (j - 1) // 2, j
+
+
+def scatter_cells(n: int, a, b, values, dtype=np.int64) -> np.ndarray:
+    """Values listed for some cells ``(a, b)`` (either order) spread over all cells; absent cells are 0."""
+    a = np.asarray(a, dtype=np.int64)
+    b = np.asarray(b, dtype=np.int64)
+    out = np.zeros(n_cells(n), dtype=dtype)
+    if len(a):
+        out[cell_index(np.minimum(a, b), np.maximum(a, b), n)] = values
+    return out

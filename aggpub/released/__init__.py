@@ -1,0 +1,170 @@
+"""The released statistics: for each, the true value from the engine, its noise and its public table.
+
+The pipeline releases the enabled statistics of :data:`STATISTICS` in order,
+each through the same three steps (:func:`release_statistics`): count on the
+engine (confidential), look up the sensitivity in :mod:`aggpub.budget`, draw the
+noise and post-process. Every sensitivity is derived in ``docs/privacy.md``.
+"""
+
+from __future__ import annotations
+
+__all__ = ["SuperedgeTruth", "dense_truth", "superedge_sparse_threshold", "release_superedge_counts",
+           "release_cell_counts", "released_sizes", "release_degree_histograms", "release_weight_totals",
+           "Statistic", "STATISTICS", "StatisticsRun", "release_statistics"]
+
+from dataclasses import dataclass, field
+from typing import Callable
+
+import numpy as np
+
+from ..budget import sensitivity
+from ..cells import n_cells
+from ..errors import PolicyError
+from .degree_histograms import release_degree_histograms
+from .sizes import release_cell_counts, released_sizes
+from .superedges import SuperedgeTruth, dense_truth, release_superedge_counts, superedge_sparse_threshold
+from .weight_totals import release_weight_totals
+
+
+@dataclass(frozen=True)
+class _Context:
+    """What each statistic's steps receive (inputs already validated)."""
+
+    network: object
+    grouping: object
+    policy: object
+    sizes: np.ndarray  # public or already-released supernode sizes
+    source: object
+    progress: Callable
+
+
+@dataclass(frozen=True)
+class Statistic:
+    """One released statistic: its policy entry, how it is counted and how it is released.
+
+    ``count(ctx, option)`` returns the confidential truth (and extra manifest
+    fields); ``release(ctx, truth, option, epsilon, sens)`` returns ``(table,
+    spend, mechanism)``; ``sens_args(policy, option)`` the keyword arguments of
+    :func:`aggpub.budget.sensitivity` beyond unit and name.
+    """
+
+    name: str
+    table: str  # name of its table in the bundle (and of its truth for the audit)
+    counting: str  # progress line while the engine counts
+    count: Callable
+    release: Callable
+    describe: Callable  # (truth, epsilon, sens, extra) -> progress line before the noise
+
+
+def _count_superedges(ctx, option, eps, sens):
+    n_groups = ctx.grouping.n_supernodes
+    nz_a, nz_b, nz_c = ctx.network.engine.superedge_counts(ctx.grouping.assignment)
+    threshold = superedge_sparse_threshold(option, n_groups, eps, sens)  # None: dense
+    if threshold is None:
+        return dense_truth(n_groups, nz_a, nz_b, nz_c), {}
+    # sparse release: never builds the dense table
+    extra = {"superedges_sparse": True, "superedges_sparse_threshold": threshold,
+             "superedge_cells": n_cells(n_groups)}
+    return SuperedgeTruth(a=nz_a, b=nz_b, count=nz_c, complete=False), extra
+
+
+def _release_superedges(ctx, truth, option, eps, sens, extra):
+    return release_superedge_counts(truth, ctx.sizes, eps, sens, ctx.source,
+                                    sparse_threshold=extra.get("superedges_sparse_threshold"),
+                                    n_groups=ctx.grouping.n_supernodes)
+
+
+def _describe_superedges(ctx, truth, eps, sens, extra):
+    threshold = extra.get("superedges_sparse_threshold")
+    return (f"adding noise to {n_cells(ctx.grouping.n_supernodes):,} superedge cells (epsilon {eps:g}, "
+            f"sensitivity {sens:g})"
+            + ("" if threshold is None else f", sparse release keeping noisy counts >= {threshold}"))
+
+
+def _count_histograms(ctx, option, eps, sens):
+    return ctx.network.engine.degree_histograms(ctx.grouping.assignment, ctx.grouping.n_supernodes,
+                                                option.max_degree), {}
+
+
+def _release_histograms(ctx, truth, option, eps, sens, extra):
+    return release_degree_histograms(truth, ctx.sizes, eps, sens, ctx.source,
+                                     max_possible_degree=ctx.policy.privacy.max_contacts)
+
+
+def _count_weights(ctx, option, eps, sens):
+    if not ctx.network.weighted:
+        raise PolicyError(f"'components.weight_totals.column' = '{option.column}': the network was read "
+                          "without a weight column")
+    nz_a, nz_b, nz_t = ctx.network.engine.weight_totals(ctx.grouping.assignment, option.clip)
+    return dense_truth(ctx.grouping.n_supernodes, nz_a, nz_b, nz_t), {}
+
+
+def _release_weights(ctx, truth, option, eps, sens, extra):
+    return release_weight_totals(truth, ctx.sizes, option.clip, eps, sens, ctx.source)
+
+
+#: The statistics a release can hold, in the order they are counted and noised.
+STATISTICS = (
+    Statistic("superedge_counts", "superedges", "counting superedges", _count_superedges, _release_superedges,
+              _describe_superedges),
+    Statistic("degree_histograms", "degree_histograms", "counting degree histograms", _count_histograms, _release_histograms,
+              lambda ctx, t, eps, sens, extra: f"adding noise to {t.size:,} degree-histogram bins "
+                                               f"(epsilon {eps:g}, sensitivity {sens:g})"),
+    Statistic("weight_totals", "weight_totals", "summing clipped weights per superedge", _count_weights, _release_weights,
+              lambda ctx, t, eps, sens, extra: f"adding noise to {len(t.count):,} weight totals "
+                                               f"(epsilon {eps:g}, sensitivity {sens:g})"),
+)
+
+
+@dataclass
+class StatisticsRun:
+    """What :func:`release_statistics` produced: public tables, spends, mechanisms, confidential truth."""
+
+    tables: dict = field(default_factory=dict)
+    spends: list = field(default_factory=list)
+    mechanisms: dict = field(default_factory=dict)
+    truth: dict = field(default_factory=dict)
+    manifest: dict = field(default_factory=dict)
+
+
+def release_statistics(network, grouping, policy, sizes, epsilons: dict, source, progress, budget) -> StatisticsRun:
+    """Count, noise and tabulate every enabled statistic of ``policy`` (inputs already validated).
+
+    Parameters
+    ----------
+    network, grouping, policy
+        The ingested network, its grouping and the release policy.
+    sizes : numpy.ndarray
+        Public or already-released supernode sizes (the caps of the post-processing).
+    epsilons : dict
+        Epsilon of each statistic (:func:`aggpub.policy.epsilon_shares`).
+    source : RandomSource
+    progress : callable
+    budget : ReleaseBudget
+        Each statistic's spend is recorded on it as soon as its noise is drawn.
+
+    Returns
+    -------
+    StatisticsRun
+    """
+    ctx = _Context(network=network, grouping=grouping, policy=policy, sizes=sizes, source=source,
+                   progress=progress)
+    unit, D = policy.privacy.unit, policy.privacy.max_contacts
+    run = StatisticsRun()
+    for stat in STATISTICS:
+        option = getattr(policy.components, stat.name)
+        if not option.enabled:
+            continue
+        eps = epsilons[stat.name]
+        sens = sensitivity(unit, stat.name, D, option.clip if stat.name == "weight_totals" else None)
+        progress(stat.counting)
+        truth, extra = stat.count(ctx, option, eps, sens)
+        run.truth[stat.table] = truth
+        run.manifest.update(extra)
+        progress(stat.describe(ctx, truth, eps, sens, extra))
+        table, spend, mech = stat.release(ctx, truth, option, eps, sens, extra)
+        budget.spend(spend)
+        run.spends.append(spend)
+        run.tables[stat.table] = table
+        run.mechanisms[stat.name] = mech
+    return run
