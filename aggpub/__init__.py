@@ -15,7 +15,9 @@ from .ingest import load_network
 from .network import Network
 from .pipeline import Release, build_release, publish, release_tables, run_release
 from .policy import ReleasePolicy, parse_policy, read_policy
-from .researcher import SumInterval, cell_mask, interval, sample_network, supergraph, synthetic_people, write_sample
+from .estimates.intervals import SumInterval, cell_mask, interval
+from .estimates.supergraph import supergraph
+from .synthesis import sample_network, synthetic_people, write_sample
 from .sweep import SweepResult, run_sweep, write_sweep
 
 __all__ = [

@@ -247,7 +247,7 @@ def cmd_sample(args):
     from .bundle import check_bundle, read_bundle
     from .errors import BundleError
     from .progress import Progress
-    from .researcher import sample_network, synthetic_people, write_sample
+    from .synthesis import sample_network, synthetic_people, write_sample
 
     progress = Progress(args.quiet)
     progress(f"checking bundle {args.bundle}")

@@ -38,8 +38,6 @@ import dataclasses
 import io
 import json
 import math
-import os
-import shutil
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -49,7 +47,7 @@ import numpy as np
 from .budget import check_contact_cap, sensitivity
 from .cells import possible_pairs
 from .released import dense_truth, release_degree_histograms, released_sizes, superedge_sparse_threshold
-from .errors import OutputError, PolicyError, PrivacyError, UsageError
+from .errors import PolicyError, PrivacyError, UsageError
 from .budget import ReleaseBudget
 from .noise.mechanisms import GeometricMechanism
 from .noise.sampler import make_random_source
@@ -148,7 +146,7 @@ def _policy_at(policy: ReleasePolicy, unit: str, epsilon: float, min_size: int, 
 
 def _expected_abs_sum(scale: float, m: np.ndarray) -> np.ndarray:
     """``E|S|`` for ``S`` a sum of ``m`` discrete Laplace draws of ``scale`` (exact law, one per distinct m)."""
-    from .researcher import sum_noise_pmf
+    from .estimates.intervals import sum_noise_pmf
 
     out = np.zeros(len(m))
     for mv in np.unique(m):
@@ -576,41 +574,19 @@ def write_sweep(result: SweepResult, out, *, overwrite: bool = False) -> Path:
     Written into a temporary folder beside ``out`` and moved into place; an existing
     ``out`` is replaced only with ``overwrite`` and only if it is a sweep folder.
     """
-    from .bundle._files import fsync_path, temp_sibling
+    from .outputs import check_folder_target, write_folder
 
     out = Path(out).absolute()
-    if out.exists():
-        if not out.is_dir():
-            raise OutputError(f"{out}: output path exists and is not a folder")
-        if not overwrite:
-            raise OutputError(f"{out}: output folder already exists (use --overwrite to replace it)")
-        readme = out / "README.txt"
-        if any(out.iterdir()) and not (readme.is_file() and readme.read_text("utf-8", "replace")
-                                       .startswith(_MARKER)):
-            raise OutputError(f"{out}: refusing to replace a non-empty folder that is not a sweep folder")
-    if not out.parent.is_dir():
-        raise OutputError(f"{out.parent}: parent folder of the output does not exist")
-    tmp = temp_sibling(out, "tmp")
-    try:
-        tmp.mkdir()
+
+    def is_sweep(folder):
+        readme = folder / "README.txt"
+        return readme.is_file() and readme.read_text("utf-8", "replace").startswith(_MARKER)
+
+    def fill(tmp):
         (tmp / "README.txt").write_text(_readme(result), encoding="utf-8")
         (tmp / "sweep.csv").write_text(_csv_text(result.rows), encoding="utf-8")
         (tmp / "sweep.json").write_text(json.dumps(result.as_dict(), indent=1, default=float), encoding="utf-8")
         _plot(result, tmp / "errors_vs_epsilon.png")
-        for f in tmp.iterdir():
-            fsync_path(f)
-        fsync_path(tmp)
-        if out.exists():
-            old = temp_sibling(out, "old")
-            os.rename(out, old)
-            os.rename(tmp, out)
-            shutil.rmtree(old, ignore_errors=True)
-        else:
-            os.rename(tmp, out)
-        fsync_path(out.parent)
-    except OSError as exc:
-        raise OutputError(f"{out}: cannot write the sweep ({exc.strerror})") from None
-    finally:
-        if tmp.exists():
-            shutil.rmtree(tmp, ignore_errors=True)
-    return out
+
+    return write_folder(out, fill, overwrite=overwrite, what="sweep",
+                        check=lambda: check_folder_target(out, overwrite, kind="a sweep folder", is_kind=is_sweep))

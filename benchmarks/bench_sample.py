@@ -1,4 +1,4 @@
-"""Benchmark: sampling synthetic networks from a release (aggpub.researcher.sample_network).
+"""Benchmark: sampling synthetic networks from a release (aggpub.synthesis.sample_network).
 
 Builds a public release-like table in memory (no private data involved: random sizes and
 counts), samples about 10 million distinct contacts from it, and compares the time with
@@ -19,7 +19,7 @@ import numpy as np
 import pyarrow as pa
 
 from aggpub import cells as comp
-from aggpub.researcher import sample_network
+from aggpub.synthesis import sample_network
 
 
 def make_release(n_supernodes: int, edges: int, dense_share: float, seed: int = 0):

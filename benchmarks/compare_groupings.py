@@ -3,7 +3,7 @@
 For each network (the invented demo town, and Les Misérables as shipped by
 networkx with an invented attribute) and each grouping method, at total epsilon
 1.0 and min_size 20, ``--runs`` seeded releases are built; from each release one
-network is sampled (block model, :func:`aggpub.researcher.sample_network`) and
+network is sampled (block model, :func:`aggpub.synthesis.sample_network`) and
 compared with the truth:
 
 * ``degree_ks_error``: two-sample Kolmogorov-Smirnov statistic between the true
@@ -163,7 +163,7 @@ def evaluate(name, edges, people, grouping_attrs, runs, log, superedge_method="d
     from aggpub.ingest import load_network
     from aggpub.pipeline import build_release
     from aggpub.policy import parse_policy
-    from aggpub.researcher import sample_network
+    from aggpub.synthesis import sample_network
 
     attrs = list(grouping_attrs["attributes"])
     net = load_network(edges, people, attributes=attrs)

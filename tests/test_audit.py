@@ -30,11 +30,11 @@ from aggpub.audit import (
     ks_distance,
     l1_distance,
     relative_errors,
-    sample_block_network,
     structure_statistics,
     wasserstein1_distance,
 )
 from aggpub.audit import queries as qw
+from aggpub.synthesis import sample_block_network
 from aggpub.noise.sampler import SeededRandomSource
 from aggpub.policy import parse_policy
 

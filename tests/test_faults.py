@@ -26,7 +26,7 @@ from pathlib import Path
 import pyarrow.parquet as pq
 import pytest
 
-import aggpub.bundle._files as files_mod
+import aggpub.outputs as outputs_mod
 import aggpub.bundle.write as write_mod
 import aggpub.audit as audit_mod
 import aggpub.audit.report as report_mod
@@ -34,7 +34,7 @@ import aggpub.ingest as ingest_mod
 import aggpub.released as released_mod
 import aggpub.pipeline as pipeline
 from aggpub.bundle import check_bundle
-from aggpub.bundle._files import stale_temp_siblings
+from aggpub.outputs import stale_temp_siblings
 from aggpub.cli import main
 from aggpub.engines._duckdb import DuckDBEngine
 from tests._badinput import MARK, POLICY_TEXT, Scenario, error_lines, no_plots, tree_snapshot
@@ -77,13 +77,13 @@ STAGE_FAULTS = [
     ("datacard", pipeline, "render_datacard", _boom, 9),
     ("parquet_write", pq, "write_table", _boom, 9),
     ("checksum", write_mod, "sha256_file", _boom, 9),
-    ("manifest_write", write_mod, "_write_file_synced", _boom, 9),
+    ("manifest_write", write_mod, "write_synced", _boom, 9),
     ("fsync", write_mod, "fsync_path", _boom, 9),
     ("publish", write_mod, "publish_directory", _boom, 9),
-    ("rename_exchange", files_mod, "_rename_exchange", _boom, 9),
+    ("rename_exchange", outputs_mod, "_rename_exchange", _boom, 9),
     ("rename", os, "rename", _boom, 9),
     ("disk_full_parquet", pq, "write_table", _enospc, 7),
-    ("disk_full_manifest", write_mod, "_write_file_synced", _enospc, 7),
+    ("disk_full_manifest", write_mod, "write_synced", _enospc, 7),
     ("disk_full_checksum_read", write_mod, "sha256_file", _enospc, 7),
     ("interrupt_during_write", pq, "write_table", _interrupt, 130),
     ("interrupt_during_counting", DuckDBEngine, "superedge_counts", _interrupt, 130),
@@ -258,7 +258,7 @@ def test_live_writers_folder_is_kept(tmp_path):
     dead = tmp_path / ".bundle.tmp-999999999-0123abcd"
     dead.mkdir()
     assert stale_temp_siblings(target) == [dead]
-    files_mod.remove_stale_temp_siblings(target)
+    outputs_mod.remove_stale_temp_siblings(target)
     assert live.exists() and not dead.exists()
 
 
@@ -376,7 +376,7 @@ def test_fallback_without_exchange_restores_the_old_bundle(tmp_path, capsys, mon
             raise OSError(errno.EIO, "injected")
         return real_rename(a, b)
 
-    monkeypatch.setattr(files_mod, "_rename_exchange", lambda a, b: False)
+    monkeypatch.setattr(outputs_mod, "_rename_exchange", lambda a, b: False)
     monkeypatch.setattr(os, "rename", rename)
     rc = main(s.argv() + ["--overwrite", "--seed", "6", "--report", str(tmp_path / "rep")])
     monkeypatch.undo()
@@ -390,6 +390,6 @@ def test_fallback_without_exchange_restores_the_old_bundle(tmp_path, capsys, mon
 def test_fallback_without_exchange_replaces(tmp_path, capsys, monkeypatch):
     s = Scenario(tmp_path)
     old = _make_bundle(s)
-    monkeypatch.setattr(files_mod, "_rename_exchange", lambda a, b: False)
+    monkeypatch.setattr(outputs_mod, "_rename_exchange", lambda a, b: False)
     assert main(s.argv() + ["--overwrite", "--seed", "6", "--quiet"]) == 0
     assert tree_snapshot(s.out) != old and check_bundle(s.out).ok and _siblings(s.out) == []

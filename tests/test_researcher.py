@@ -1,4 +1,4 @@
-"""Tests for the researcher view (:mod:`aggpub.researcher`) and ``aggpub sample``.
+"""Tests for the researcher view (:mod:`aggpub.estimates` and :mod:`aggpub.synthesis`) and ``aggpub sample``.
 
 Outside references: networkx (graph construction, ``quotient_graph``, subgraph edge
 counts), scipy (``scipy.stats.dlaplace`` as the discrete Laplace law, ``chisquare`` for
@@ -22,7 +22,9 @@ from scipy import stats
 
 import aggpub
 from aggpub import cells as comp
-from aggpub import researcher as R
+from aggpub.cells import unrank_pairs
+from aggpub.estimates.intervals import sum_noise_pmf
+from aggpub.synthesis._distinct import distinct_per_cell
 from aggpub.cli import main
 from aggpub.demo import demo_policy_text, generate_town
 from aggpub.noise.mechanisms import GeometricMechanism
@@ -166,7 +168,7 @@ def test_sample_refuses_count_above_possible_pairs():
 def test_distinct_subsets_are_uniform_chisquare(space, k):
     """Every k-subset of range(space) equally likely (chi-square against the uniform law)."""
     cells = 40_000
-    cell, val = R._distinct(np.full(cells, space), np.full(cells, k), np.random.default_rng(123))
+    cell, val = distinct_per_cell(np.full(cells, space), np.full(cells, k), np.random.default_rng(123))
     assert np.array_equal(np.bincount(cell, minlength=cells), np.full(cells, k))
     val = val.reshape(cells, k)
     assert (np.diff(val, axis=1) > 0).all()  # distinct (and sorted) within a cell
@@ -182,7 +184,7 @@ def test_distinct_large_spaces_mixed():
     space = rng.integers(1, 10**9, size=2000)
     k = np.minimum(rng.integers(0, 300, size=2000), space)
     k[:10] = space[:10] = 5  # full cells
-    cell, val = R._distinct(space, k, rng)
+    cell, val = distinct_per_cell(space, k, rng)
     assert np.array_equal(np.bincount(cell, minlength=len(space)), k)
     assert (val >= 0).all() and (val < space[cell]).all()
     key = cell * (10**9) + val
@@ -192,12 +194,12 @@ def test_distinct_large_spaces_mixed():
 def test_unrank_pairs_matches_itertools_combinations_order():
     s = 40
     expected = sorted(itertools.combinations(range(s), 2), key=lambda p: (p[1], p[0]))
-    i, j = R._unrank_pairs(np.arange(s * (s - 1) // 2))
+    i, j = unrank_pairs(np.arange(s * (s - 1) // 2))
     assert list(zip(i.tolist(), j.tolist())) == expected
     # huge supernodes: exact at the boundaries where the float square root could round
     j_big = np.array([10**6, 3 * 10**7, 123_456_789])
     r = np.concatenate([j_big * (j_big - 1) // 2, j_big * (j_big - 1) // 2 - 1])
-    ii, jj = R._unrank_pairs(r)
+    ii, jj = unrank_pairs(r)
     assert np.array_equal(jj * (jj - 1) // 2 + ii, r) and (ii < jj).all() and (ii >= 0).all()
 
 
@@ -213,13 +215,13 @@ def test_sum_pmf_matches_scipy_dlaplace_convolution(scale, m):
     for _ in range(m - 1):
         ref = np.convolve(ref, one)
     centre = len(ref) // 2
-    pmf = R.sum_noise_pmf([scale], [m])
+    pmf = sum_noise_pmf([scale], [m])
     np.testing.assert_allclose(pmf[:60], ref[centre:centre + 60], rtol=1e-9, atol=1e-15)
     assert abs(pmf[0] + 2 * pmf[1:].sum() - 1.0) < 1e-12
 
 
 def test_sum_pmf_mixed_scales_variance():
-    pmf = R.sum_noise_pmf([1.0, 3.0], [5, 2])
+    pmf = sum_noise_pmf([1.0, 3.0], [5, 2])
     k = np.arange(len(pmf))
     var = 2 * (k[1:] ** 2 * pmf[1:]).sum()
     expect = 5 * stats.dlaplace.var(1.0) + 2 * stats.dlaplace.var(1 / 3.0)
@@ -234,7 +236,7 @@ def test_interval_coverage_by_simulation(m, scale):
     rel = fake_release(sizes, np.full(n_cells, 500), scale=scale)
     res = aggpub.interval(rel, np.arange(m))
     assert res.method == "exact" and res.cells == m and res.estimate == 500 * m
-    pmf = R.sum_noise_pmf([scale], [m])
+    pmf = sum_noise_pmf([scale], [m])
     cover = pmf[0] + 2 * pmf[1:res.half_width + 1].sum()
     below = pmf[0] + 2 * pmf[1:res.half_width].sum() if res.half_width else 0.0
     assert cover >= 0.95 > below  # the smallest such half-width

@@ -23,8 +23,7 @@ Metric functions for reuse (numpy in, float out; histograms indexed by degree):
 ``distribution_distances(p, q) -> {"ks", "wasserstein1", "l1"}``,
 ``relative_errors(true, est, s)``, ``error_summary(true, est, s) -> dict``,
 ``implied_degree_pmf(a, b, count, sizes) -> (pmf, method)`` (block-model degree
-distribution of a supergraph), ``sample_block_network(a, b, count, sizes, rng) -> (u, v)``,
-``structure_statistics(u, v, n, categories) -> dict``.
+distribution of a supergraph), ``structure_statistics(u, v, n, categories) -> dict``.
 Workload builders on cells (``aggpub.audit.queries``): ``superedge_cells_workload``,
 ``contact_matrix_workload``, ``cut_workload``, ``degree_totals_workload``.
 """
@@ -42,7 +41,7 @@ from .metrics import (
     relative_errors,
     wasserstein1_distance,
 )
-from .structure import sample_block_network, structure_statistics
+from .network_stats import structure_statistics
 
 __all__ = [
     "audit_release",
@@ -56,7 +55,6 @@ __all__ = [
     "relative_errors",
     "error_summary",
     "implied_degree_pmf",
-    "sample_block_network",
     "structure_statistics",
 ]
 

@@ -15,7 +15,8 @@ from ..cells import cell_index, possible_pairs
 from ..released import dense_truth, release_degree_histograms
 from . import degrees as deg
 from . import queries as qw
-from . import structure as struct
+from . import network_stats as struct
+from ..synthesis import sample_block_network
 from ..progress import silent
 from .metrics import DEFAULT_SANITY_FRACTION, distribution_distances, error_summary
 
@@ -455,7 +456,7 @@ def _structure(release, st, rel_cells, true_sizes, pub_sizes, labels, samples, r
     def sampled(counts, sizes):
         runs = []
         for _ in range(samples):
-            su, sv = struct.sample_block_network(st.a, st.b, counts, sizes, rng)
+            su, sv = sample_block_network(st.a, st.b, counts, sizes, rng)
             cats = {c: np.repeat(code, sizes) for c, code in codes.items()}
             runs.append(struct.structure_statistics(su, sv, int(sizes.sum()), cats))
         keys = runs[0].keys()
@@ -465,7 +466,7 @@ def _structure(release, st, rel_cells, true_sizes, pub_sizes, labels, samples, r
         "true": true_stats,
         "sampled_from_release": sampled(rel_cells, pub_sizes),
         "sampled_from_true_aggregate": sampled(st.count, true_sizes),
-        "sampler": "aggpub.audit.structure.sample_block_network: uniform distinct pairs within each cell "
+        "sampler": "aggpub.synthesis.sample_block_network: uniform distinct pairs within each cell "
                    "(Hay, Miklau, Jensen, Towsley, Weis, PVLDB 2008)",
         "note": "sampled_from_true_aggregate shows what grouping alone loses; the difference to "
                 "sampled_from_release is what noise adds",

@@ -16,12 +16,11 @@ import io
 import json
 import math
 import os
-import shutil
 from pathlib import Path
 
 import numpy as np
 
-from ..bundle._files import _rename_exchange, fsync_path, temp_sibling
+from ..outputs import write_folder, write_synced
 from ..bundle.datacard import CAUTIONS
 from ..errors import OutputError
 
@@ -452,28 +451,6 @@ def render_html(audit: dict) -> str:
 # ---------------------------------------------------------------------- writing
 
 
-def _write_synced(path: Path, text: str) -> None:
-    with open(path, "w", encoding="utf-8") as fh:
-        fh.write(text)
-        fh.flush()
-        os.fsync(fh.fileno())
-
-
-def _remove_abandoned(target: Path) -> None:
-    """Remove temporary report folders a killed earlier run left beside ``target``.
-
-    Only hidden siblings named like this writer's own (``.<name>.tmp-*``,
-    ``.<name>.old-*``) holding nothing but report files are removed.
-    """
-    for pattern in (f".{target.name}.tmp-*", f".{target.name}.old-*"):
-        for p in target.parent.glob(pattern):
-            try:
-                if p.is_dir() and not p.is_symlink() and {c.name for c in p.iterdir()} <= {AUDIT_JSON, REPORT_HTML}:
-                    shutil.rmtree(p, ignore_errors=True)
-            except OSError:
-                pass
-
-
 def write_report(directory, audit: dict, *, overwrite: bool = False, bundle=None) -> Path:
     """Write ``report.html`` and ``audit.json`` into a new folder, atomically.
 
@@ -497,29 +474,10 @@ def write_report(directory, audit: dict, *, overwrite: bool = False, bundle=None
     check_report_target(target, overwrite, bundle)
     json_text = audit_to_json(audit)
     html_text = render_html(audit)
-    _remove_abandoned(target)
-    tmp = temp_sibling(target, "tmp")
-    try:
-        tmp.mkdir()
-        _write_synced(tmp / AUDIT_JSON, json_text)
-        _write_synced(tmp / REPORT_HTML, html_text)
-        fsync_path(tmp)
-        check_report_target(target, overwrite, bundle)
-        if target.exists():
-            if not _rename_exchange(tmp, target):
-                old = temp_sibling(target, "old")
-                os.rename(target, old)
-                os.rename(tmp, target)
-                shutil.rmtree(old, ignore_errors=True)
-            else:
-                shutil.rmtree(tmp, ignore_errors=True)
-        else:
-            os.rename(tmp, target)
-        fsync_path(target.parent)
-    except OSError as exc:
-        shutil.rmtree(tmp, ignore_errors=True)
-        raise OutputError(f"{target}: cannot write the report: {exc.strerror or exc}") from None
-    finally:
-        if tmp.exists() and tmp != target:
-            shutil.rmtree(tmp, ignore_errors=True)
-    return target
+
+    def fill(tmp):
+        write_synced(tmp / AUDIT_JSON, json_text)
+        write_synced(tmp / REPORT_HTML, html_text)
+
+    return write_folder(target, fill, overwrite=overwrite, what="report", own_files=(AUDIT_JSON, REPORT_HTML),
+                        check=lambda: check_report_target(target, overwrite, bundle))

@@ -13,7 +13,8 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from .._version import BUNDLE_FORMAT
-from ._files import MANIFEST, manifest_digest, sha256_file, stale_temp_siblings
+from ..outputs import stale_temp_siblings
+from ._files import MANIFEST, manifest_digest, sha256_file
 from .write import PARQUET_META_KEY
 
 REQUIRED_MANIFEST_KEYS = ("format", "tool_version", "created_utc", "policy", "privacy_unit", "epsilon_total",

@@ -2,16 +2,17 @@
 
 from __future__ import annotations
 
-__all__ = ["Bundle", "read_bundle"]
+__all__ = ["Bundle", "read_bundle", "public_tables", "require_superedges", "table_column"]
 
 import json
 from dataclasses import dataclass, field
 from pathlib import Path
 
+import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from ..errors import BundleError
+from ..errors import BundleError, UsageError
 from ._files import MANIFEST
 
 
@@ -76,3 +77,32 @@ def read_bundle(path) -> Bundle:
         raise BundleError(f"{path}: bundle has no supernodes.parquet")
     return Bundle(path=path, manifest=manifest, supernodes=tables["supernodes"],
                   superedges=tables.get("superedges"), tables=tables)
+
+
+# --------------------------------------------------------------------------- the public tables of a release
+
+
+def public_tables(release):
+    """``(supernodes, superedges, manifest)`` of a Bundle or a Release (or any object with ``tables``)."""
+    tables = getattr(release, "tables", None)
+    manifest = getattr(release, "manifest", None)
+    if not isinstance(tables, dict) or not isinstance(manifest, dict):
+        raise UsageError(f"expected a Bundle (aggpub.read_bundle) or a Release, got {type(release).__name__}")
+    supernodes = tables.get("supernodes")
+    if supernodes is None:
+        raise BundleError("the release has no supernodes table")
+    return supernodes, tables.get("superedges"), manifest
+
+
+def require_superedges(release):
+    supernodes, superedges, manifest = public_tables(release)
+    if superedges is None:
+        raise BundleError("the release has no superedge counts (components.superedge_counts was disabled)")
+    return supernodes, superedges, manifest
+
+
+def table_column(table: pa.Table, name: str, dtype=np.int64) -> np.ndarray:
+    """Column ``name`` of a released table as a numpy array (``BundleError`` when missing)."""
+    if name not in table.column_names:
+        raise BundleError(f"superedges table: missing column '{name}'")
+    return np.asarray(table.column(name).to_numpy(), dtype=dtype)

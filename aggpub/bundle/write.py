@@ -5,25 +5,17 @@ from __future__ import annotations
 __all__ = ["write_bundle"]
 
 import json
-import os
 import shutil
 from pathlib import Path
 
 import pyarrow.parquet as pq
 
 from ..errors import OutputError
-from ._files import MANIFEST, fsync_path, manifest_digest, prepare_target, publish_directory, \
-    remove_stale_temp_siblings, sha256_file, temp_sibling
+from ..outputs import fsync_path, publish_directory, remove_stale_temp_siblings, temp_sibling, write_synced
+from ._files import MANIFEST, manifest_digest, prepare_target, sha256_file
 
 #: key of the privacy parameters in each Parquet file's key-value metadata
 PARQUET_META_KEY = b"aggpub.privacy"
-
-
-def _write_file_synced(path: Path, data: bytes) -> None:
-    with open(path, "wb") as fh:
-        fh.write(data)
-        fh.flush()
-        os.fsync(fh.fileno())
 
 
 def write_bundle(target, tables: dict, manifest: dict, datacard: str, overwrite: bool = False,
@@ -81,16 +73,16 @@ def write_bundle(target, tables: dict, manifest: dict, datacard: str, overwrite:
             if _fault:
                 _fault(f"wrote {name}")
             files[name] = sha256_file(path)
-        _write_file_synced(tmp / "README.md", datacard.encode("utf-8"))
+        write_synced(tmp / "README.md", datacard)
         files["README.md"] = sha256_file(tmp / "README.md")
         manifest = dict(manifest)
         manifest["files"] = dict(sorted(files.items()))
         manifest["manifest_sha256"] = manifest_digest(manifest)
-        _write_file_synced(tmp / MANIFEST, (json.dumps(manifest, indent=2, sort_keys=True) + "\n").encode())
+        write_synced(tmp / MANIFEST, json.dumps(manifest, indent=2, sort_keys=True) + "\n")
         fsync_path(tmp)
         if _fault:
             _fault("before publish")
-        publish_directory(tmp, target, overwrite, _fault=_fault)
+        publish_directory(tmp, target, overwrite, check=lambda: prepare_target(target, overwrite), _fault=_fault)
     except BaseException as exc:
         shutil.rmtree(tmp, ignore_errors=True)
         if isinstance(exc, OSError):

@@ -1,0 +1,49 @@
+"""The release as a networkx graph of supernodes (post-processing of the public outputs)."""
+
+from __future__ import annotations
+
+__all__ = ["supergraph"]
+
+import numpy as np
+
+from ..bundle.read import public_tables as _public_tables
+from ..bundle.read import table_column as _col
+
+
+def supergraph(release, *, include_zero: bool = False):
+    """The release as a networkx graph of supernodes.
+
+    Nodes are supernode ids with attributes ``size`` and every label column of
+    the supernodes table; edges are the superedge cells with attributes
+    ``edge_count``, ``possible_pairs`` and ``noise_scale``. A cell on the
+    diagonal (contacts inside one supernode) is a self-loop.
+
+    Parameters
+    ----------
+    release : Bundle or Release
+    include_zero : bool, default False
+        Also add cells whose released count is 0.
+
+    Returns
+    -------
+    networkx.Graph
+    """
+    import networkx as nx
+
+    supernodes, superedges, manifest = _public_tables(release)
+    g = nx.Graph()
+    g.graph.update({k: manifest.get(k) for k in ("privacy_unit", "epsilon_total", "min_size", "seeded")})
+    cols = {c: supernodes.column(c).to_pylist() for c in supernodes.column_names}
+    ids = cols.pop("supernode")
+    names = list(cols)
+    g.add_nodes_from((ids[i], {c: cols[c][i] for c in names}) for i in range(len(ids)))
+    if superedges is not None:
+        a = _col(superedges, "supernode_a")
+        b = _col(superedges, "supernode_b")
+        c = _col(superedges, "edge_count")
+        cap = _col(superedges, "possible_pairs")
+        sc = _col(superedges, "noise_scale", np.float64)
+        keep = np.flatnonzero(c > 0) if not include_zero else np.arange(len(c))
+        g.add_edges_from((int(a[i]), int(b[i]), {"edge_count": int(c[i]), "possible_pairs": int(cap[i]),
+                                                 "noise_scale": float(sc[i])}) for i in keep)
+    return g
