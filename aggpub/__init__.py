@@ -18,7 +18,7 @@ from .policy import ReleasePolicy, parse_policy, read_policy
 from .estimates.intervals import SumInterval, cell_mask, interval
 from .estimates.supergraph import supergraph
 from .synthesis import sample_network, synthetic_people, write_sample
-from .sweep import SweepResult, run_sweep, write_sweep
+from .audit.sweep import SweepResult, run_sweep, write_sweep
 
 __all__ = [
     "__version__",

@@ -149,11 +149,12 @@ def _print_audit(audit, report_path):
     if not audit:
         return
     dd, gate = audit.get("degree_distribution", {}), audit.get("gate", {})
-    if "ks" in dd:
-        print(f"audit: degree distribution KS {dd['ks']:.4f}, Wasserstein-1 {dd['wasserstein1']:.4f}")
     if gate.get("checked"):
-        checks = ", ".join(f"{k} {gate[k]['measured']:.4g} <= {gate[k]['allowed']:g}" for k in gate["checked"])
-        print(f"gate passed: {checks}")
+        checks = ", ".join(f"{k} {gate[k]['value']:.4g} <= {gate[k]['allowed']:g}" for k in gate["checked"])
+        print(f"gate passed on the released values: {checks}")
+    if "ks" in dd:
+        print(f"CONFIDENTIAL (true against released): degree distribution KS {dd['ks']:.4f}, "
+              f"Wasserstein-1 {dd['wasserstein1']:.4f}")
     print(f"CONFIDENTIAL audit report (board only, not for researchers): {report_path}")
 
 
@@ -275,7 +276,7 @@ def cmd_sample(args):
 
 def cmd_sweep(args):
     from .progress import Progress
-    from .sweep import PLANNING_NOTE, parse_grid, run_sweep, write_sweep
+    from .audit.sweep import PLANNING_NOTE, parse_grid, run_sweep, write_sweep
 
     epsilons = parse_grid(args.epsilons, float, "--epsilons")
     min_sizes = parse_grid(args.min_sizes, int, "--min-sizes")

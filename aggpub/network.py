@@ -25,7 +25,15 @@ class IngestReport:
     def as_dict(self) -> dict:
         return asdict(self)
 
-    def lines(self) -> list[str]:
+    def lines(self, private_counts: bool = True) -> list[str]:
+        """Progress lines. The counts are true figures about the private network: printed under a
+        CONFIDENTIAL label, or (``private_counts=False``, unit ``person``) withheld."""
+        if not private_counts:
+            return ["inputs read; their counts are withheld (private under unit 'person'; the confidential "
+                    "report has them)"]
+        return [f"CONFIDENTIAL (true input counts): {line}" for line in self._count_lines()]
+
+    def _count_lines(self) -> list[str]:
         out = [f"read {self.edge_rows:,} edge rows and {self.person_rows:,} person rows",
                f"kept {self.edges:,} undirected contacts between {self.people:,} people"]
         if self.self_loops_dropped:

@@ -11,7 +11,8 @@ confidential audit and report, the gate and the atomic bundle write.
 
 from __future__ import annotations
 
-__all__ = ["Release", "ReleaseRun", "build_release", "release_tables", "run_release", "publish", "Progress"]
+__all__ = ["Release", "ReleaseRun", "build_release", "release_tables", "run_release", "publish", "Progress",
+           "preflight_gate", "release_gate"]
 
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -25,6 +26,7 @@ from .bundle.datacard import render_datacard
 from .bundle.manifest import build_manifest
 from .bundle.write import write_bundle
 from .errors import PrivacyError
+from .gate import GATE_METRICS
 from .grouping import Grouping, make_grouping
 from .ingest import load_policy_inputs
 from .network import Network
@@ -108,11 +110,13 @@ def build_release(network: Network, policy: ReleasePolicy, *, seed: int | None =
         source = ChargeOnFirstDraw(source, ledger.charge)
     budget = ReleaseBudget(policy.privacy.epsilon)
     epsilons = epsilon_shares(policy)
+    # A refusal on a private condition (the promised cap or domains broken) is charged like a release.
+    on_refusal = ledger.charge if ledger is not None else None
     if policy.privacy.unit == "person":  # the promise D is checked on the data, never enforced by truncation
-        check_contact_cap(network.engine.degrees(network.n_people), policy.privacy.max_contacts)
+        check_contact_cap(network.engine.degrees(network.n_people), policy.privacy.max_contacts, on_refusal)
 
     progress("grouping people into supernodes")
-    grouping = make_grouping(network, policy, budget, source, epsilons)
+    grouping = make_grouping(network, policy, budget, source, epsilons, on_refusal=on_refusal)
     for spend in grouping.spends:
         budget.spend(spend)
     sizes_exact = grouping.noisy_cell_sizes is None
@@ -191,6 +195,7 @@ def run_release(policy, edges, people, out, *, seed=None, overwrite=False, sourc
     from .bundle._files import prepare_target
     from .engines import make_engine
     from .errors import GateError
+    from .gate import gate_failure_message
 
     progress = progress or silent
     if not isinstance(policy, ReleasePolicy):
@@ -206,26 +211,28 @@ def run_release(policy, edges, people, out, *, seed=None, overwrite=False, sourc
     try:
         network = load_policy_inputs(policy, edges, people, source=source, target=target, node=node,
                                      weight=weight, drop_unknown=drop_unknown, debug=debug, engine=eng)
-        for line in network.report.lines():
+        for line in network.report.lines(private_counts=policy.privacy.unit != "person"):
             progress(line)
+        preflight = preflight_gate(policy, network, progress)
         release = build_release(network, policy, seed=seed, progress=progress, ledger=ledger)
         if ledger is not None:
             charge = ledger.charged
             progress(f"ledger: charged epsilon {charge.epsilon:g} to '{charge.dataset}', "
                      f"{charge.remaining:g} of {charge.lifetime_epsilon:g} left")
-        progress("auditing the release against the true network (confidential)")
+        gate = release_gate(release)
+        progress("auditing the release against the true network (confidential; decides nothing)")
         findings = audit.audit_release(release, monte_carlo=monte_carlo, progress=progress)
-        gate = findings["gate"]
-        findings["outcome"] = ("refused by the gate: no bundle written" if not gate["passed"]
-                               else f"passed the gate; bundle to be written to {out}")
+        findings.update(gate=gate, preflight=preflight,
+                        outcome=("refused by the gate: no bundle written" if not gate["passed"]
+                                 else f"passed the gate; bundle to be written to {out}"))
         progress("drawing the figures of the confidential report")
         report_path = report_mod.write_report(report_dir, findings, overwrite=overwrite, bundle=out)
         progress(f"confidential report written to {report_path}")
         if not gate["passed"]:
-            raise GateError(audit.gate_failure_message(gate, epsilon=release.manifest.get("epsilon_spent"),
-                                                       report_path=report_path / "report.html"))
+            raise GateError(gate_failure_message(gate, charged=True, epsilon=release.manifest.get("epsilon_spent"),
+                                                 report_path=report_path / "report.html"))
         if gate["checked"]:
-            progress(f"gate passed ({len(gate['checked'])} threshold(s))")
+            progress(f"gate passed ({len(gate['checked'])} threshold(s), on the released values)")
         progress(f"writing bundle {out}")
         path = publish(release, out, overwrite=overwrite)
     except BaseException:
@@ -237,3 +244,52 @@ def run_release(policy, edges, people, out, *, seed=None, overwrite=False, sourc
     if ledger is not None:
         ledger.finish(ok=True)
     return ReleaseRun(release, path, findings, report_path)
+
+
+def preflight_gate(policy: ReleasePolicy, network: Network, progress=None) -> dict:
+    """The gate predicted before any noise, from the policy and public inputs; refuses (uncharged) a
+    release expected to fail.
+
+    Under unit ``edge`` the person table is public and the supernodes are formed
+    as the release will form them; under ``person`` only the policy is read
+    (:mod:`aggpub.gate.predicted`). A figure that cannot be predicted (no public
+    assumption for it) does not stop the release here; the gate on the released
+    values still judges it.
+
+    Raises
+    ------
+    GateError
+        The gate is expected to fail; nothing was charged and no noise was drawn.
+    """
+    from .errors import GateError
+    from .gate import evaluate_gate, gate_failure_message
+    from .gate.predicted import predicted_metrics
+
+    progress = progress or silent
+    if not any(getattr(policy.gate, key) is not None for key in GATE_METRICS):
+        return {"passed": True, "failed": [], "checked": [], "unknown": [], "basis": "no thresholds set"}
+    progress("pre-flight: predicting the gate from the policy and public inputs (no noise drawn yet)")
+    people = network.people if policy.privacy.unit == "edge" else None
+    metrics = predicted_metrics(policy, people)
+    gate = evaluate_gate(policy, metrics, basis="predicted before any noise from the policy and public inputs",
+                         unknown_fails=False)
+    gate["notes"] = metrics.get("notes", [])
+    if not gate["passed"]:
+        raise GateError(gate_failure_message(gate, charged=False))
+    return gate
+
+
+def release_gate(release: Release) -> dict:
+    """The gate on a built release: thresholds against figures computed from its public tables only.
+
+    Reads ``release.tables`` and ``release.manifest`` (post-processing of the
+    noisy output), never ``release.truth`` or the network.
+    """
+    from .gate import evaluate_gate
+    from .gate.released import released_metrics
+
+    metrics = released_metrics(release.tables, release.manifest, release.policy)
+    gate = evaluate_gate(release.policy, metrics, basis="estimated from the released values and the law of "
+                                                        "their noise")
+    gate["metrics"] = {k: v for k, v in metrics.items() if k != "why"}
+    return gate

@@ -13,9 +13,9 @@ sanity_bound=None, seed=None, progress=None) -> dict``
     (per workload: ``mean_absolute_error``, ``rmse``, ``median_relative_error``,
     ``p90_relative_error``, ``p99_relative_error``, ``expected_rmse``,
     ``expected_mean_absolute_error``, ``monte_carlo``), ``error_split``,
-    ``structure``, ``budget``, ``grouping``, ``gate``. Keys starting with ``_``
-    hold plot arrays and are not serialised.
-``evaluate_gate(policy, audit) -> dict``; ``gate_failure_message(gate, ...) -> str``
+    ``structure``, ``budget``, ``grouping``. Keys starting with ``_``
+    hold plot arrays and are not serialised. The audit decides nothing: the gate
+    (:mod:`aggpub.gate`) reads released values only.
 ``write_report(directory, audit, *, overwrite=False) -> Path`` (``report.html`` + ``audit.json``)
 
 Metric functions for reuse (numpy in, float out; histograms indexed by degree):
@@ -30,9 +30,8 @@ Workload builders on cells (``aggpub.audit.queries``): ``superedge_cells_workloa
 
 from __future__ import annotations
 
-from ._audit import audit_release
+from .core import audit_release
 from .degrees import implied_degree_pmf
-from .gate import evaluate_gate, gate_failure_message
 from .metrics import (
     distribution_distances,
     error_summary,
@@ -45,8 +44,6 @@ from .network_stats import structure_statistics
 
 __all__ = [
     "audit_release",
-    "evaluate_gate",
-    "gate_failure_message",
     "write_report",
     "ks_distance",
     "wasserstein1_distance",

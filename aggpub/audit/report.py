@@ -29,6 +29,10 @@ AUDIT_JSON = "audit.json"
 CONFIDENTIAL = ("CONFIDENTIAL: this report holds unprotected statistics of the private network. "
                 "For the governance board and the data steward only. Do not publish it, do not give it to "
                 "researchers, do not put it in the bundle.")
+GATE_BASIS_NOTE = ("The gate reads only the released values and the known law of their noise (and, before "
+                   "any noise, the policy and public inputs): its decision would be the same for any true "
+                   "network that gave this release. The true-against-released figures below are for the "
+                   "board's information; they decided nothing.")
 DEFERENCE = ("This report supports a decision; it does not make one. Whether the release may leave the "
              "organisation is for its data-protection officer and ethics board to decide, under the law that "
              "applies (for example GDPR or HIPAA).")
@@ -289,7 +293,8 @@ def render_html(audit: dict) -> str:
                      "it is NOT private and must not be published.</p>")
 
     # decision
-    parts.append("<h2>1. Gate decision</h2>")
+    parts.append("<h2>1. Gate decision (from released values only)</h2>")
+    parts.append(f'<p class="note">{html.escape(GATE_BASIS_NOTE)}</p>')
     if gate.get("checked"):
         verdict = "passed: the release may be published" if gate["passed"] else \
             "FAILED: the release was refused and no bundle was written"
@@ -299,14 +304,18 @@ def render_html(audit: dict) -> str:
             e = gate[key]
             what = e["measures"] + (f" ({html.escape(e['attribute'])})" if e.get("attribute") else "")
             res = '<span class="pass">pass</span>' if e["passed"] else '<span class="fail">fail</span>'
-            meas = _fmt(e["measured"]) if e["measured"] is not None else html.escape(e.get("reason", "n/a"))
-            rows.append([f"<code>{key}</code>", what, _fmt(e["allowed"]), meas, res])
-        parts.append(_table(["threshold", "measures", "allowed", "measured", "result"], rows))
+            val = _fmt(e["value"]) if e["value"] is not None else html.escape(e.get("reason", "n/a"))
+            pre = (audit.get("preflight") or {}).get(key) or {}
+            predicted = _fmt(pre["value"]) if pre.get("value") is not None else "not predicted"
+            rows.append([f"<code>{key}</code>", what, _fmt(e["allowed"]), predicted, val, res])
+        parts.append(_table(["threshold", "measures", "allowed", "predicted before noise",
+                             "estimated from the release", "result"], rows))
         if not gate["passed"]:
             parts.append('<p class="note">The noise of this attempt was drawn on the private data, so its '
                          "privacy budget counts as spent even though nothing was published.</p>")
     else:
         parts.append('<p class="verdict pass">The policy sets no gate thresholds; nothing was checked.</p>')
+    parts.append(f'<p class="note">{html.escape(audit.get("decides", ""))}</p>')
 
     # degree distribution
     parts.append("<h2>2. Degree distribution</h2>")

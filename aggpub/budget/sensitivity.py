@@ -71,20 +71,24 @@ def sensitivity(unit: str, component: str, max_contacts=None, clip=None) -> floa
     return float(value)
 
 
-def check_contact_cap(degrees, max_contacts: int) -> None:
+def check_contact_cap(degrees, max_contacts: int, on_refusal=None) -> None:
     """Refuse a network in which anyone has more than ``max_contacts`` contacts (unit ``person``).
 
-    The bound is the data steward's promise; the input is never truncated to meet
-    it, because no published sensitivity bound covers the counts after
-    truncation. The message gives only how many people exceed the cap.
+    The cap is the data steward's promise, the premise of the person unit's
+    guarantee (neighbouring networks both keep it). Input is never truncated to
+    meet it: no published sensitivity bound covers the counts after truncation.
+    Whether the data break the promise is private, so the refusal says neither
+    how many people nor by how much, and ``on_refusal()`` runs first (the
+    pipeline charges the lifetime ledger: probing the cap costs budget).
 
     Raises
     ------
     PrivacyError
     """
-    degrees = np.asarray(degrees)
-    over = int((degrees > max_contacts).sum())
-    if over:
-        raise PrivacyError(f"'privacy.max_contacts' = {max_contacts}: {over:,} person(s) have more contacts "
-                           "than the cap; unit 'person' refuses such input (it is never truncated). Raise "
-                           "the cap or use unit 'edge'")
+    if bool((np.asarray(degrees) > max_contacts).any()):
+        if on_refusal is not None:
+            on_refusal()
+        raise PrivacyError(f"'privacy.max_contacts' = {max_contacts}: the input breaks the promised cap on contacts "
+                           "per person, so unit 'person' refuses it (it is never truncated). Choose the cap from "
+                           "public facts (the most contacts the survey form can record, the study design), never "
+                           "from this data; this refusal is charged to the lifetime ledger like a release")

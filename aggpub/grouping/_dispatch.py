@@ -9,14 +9,18 @@ from ._common import Grouping
 from .attributes import group_by_attributes
 
 
-def make_grouping(network, policy, budget, source, epsilons) -> Grouping:
-    """Run the policy's grouping method (the grouping stage)."""
+def make_grouping(network, policy, budget, source, epsilons, on_refusal=None) -> Grouping:
+    """Run the policy's grouping method (the grouping stage).
+
+    ``on_refusal()`` runs before a refusal that depends on private data under unit
+    ``person`` (a value outside the declared domains); the pipeline charges the ledger.
+    """
     g = policy.grouping
     if g.method == "attributes":
         if policy.privacy.unit != "edge":
             from .noisy_cells import group_by_noisy_cells
 
-            return group_by_noisy_cells(network, policy, budget, source, epsilons["supernode_sizes"])
+            return group_by_noisy_cells(network, policy, budget, source, epsilons["supernode_sizes"], on_refusal)
         return group_by_attributes(network.people, g.attributes, g.min_size, g.hierarchies, g.merge_order)
     if g.method in ("structure", "attributes+structure"):  # private: spends the grouping share (issue 5)
         from .structure import group_by_structure

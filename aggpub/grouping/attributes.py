@@ -117,7 +117,7 @@ def group_by_attributes(people: pa.Table, attributes, min_size: int, hierarchies
             raise InputError(f"person table: no attribute column '{a}'"
                              f"{closest_name(a, people.column_names)}")
     n = people.num_rows
-    if n < min_size:
+    if n < min_size and cell_counts is None:  # with private sizes only the noisy counts may decide
         raise PrivacyError(f"'grouping.min_size' = {min_size} is larger than the population ({n} people): "
                            "no supernode can have that many members")
     labels, true_counts, inverse = _encode(people, attributes)
@@ -169,8 +169,9 @@ def group_by_attributes(people: pa.Table, attributes, min_size: int, hierarchies
         leftover_total = counts[leftover].sum()
         if leftover_total >= min_size or not released:
             if leftover_total < min_size:
-                raise PrivacyError(f"cannot form supernodes of at least {min_size} people: only "
-                                   f"{int(true_counts.sum())} people in all")
+                raise PrivacyError(f"cannot form supernodes of at least {min_size} people: "
+                                   + ("the noisy cell counts add up to fewer" if cell_counts is not None else
+                                      f"only {int(true_counts.sum())} people in all"))
             lab = _common_label([current[i] for i in leftover])
             released.setdefault(lab, [])
             released[lab] = released[lab] + leftover

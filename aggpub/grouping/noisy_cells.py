@@ -9,7 +9,7 @@ anything (``docs/privacy.md`` section 4).
 
 from __future__ import annotations
 
-__all__ = ["public_domain", "group_by_noisy_cells", "MAX_PUBLIC_CELLS"]
+__all__ = ["declared_domains", "public_domain", "group_by_noisy_cells", "MAX_PUBLIC_CELLS"]
 
 import dataclasses
 
@@ -27,18 +27,14 @@ from .attributes import group_by_attributes
 MAX_PUBLIC_CELLS = 1_000_000
 
 
-def public_domain(people: pa.Table, policy) -> list:
-    """The public value domain of each grouping attribute: the first level of its hierarchy.
-
-    Under unit ``person`` the set of values present in the data is itself private
-    (one person can be the only one with a value), so the fine cells are the full
-    product of declared domains, present in the data or not.
+def declared_domains(policy) -> list:
+    """The value domain of each grouping attribute as the policy declares it: the first level of its
+    hierarchy (public; no data is read).
 
     Raises
     ------
     PolicyError
-        An attribute has no declared hierarchy, or the data hold values outside it
-        (only the count of such people is given).
+        An attribute has no declared hierarchy, or the domains have too many cells.
     """
     g = policy.grouping
     domains = []
@@ -48,17 +44,38 @@ def public_domain(people: pa.Table, policy) -> list:
             raise PolicyError(f"'grouping.hierarchies.{a}': under unit 'person' every grouping attribute needs "
                               "a declared hierarchy, whose first level lists every possible value (the values "
                               "present in the data are private); an identity level mapping each value to itself will do")
-        domain = list(levels[0])
-        inside = pc.is_in(people.column(a), value_set=pa.array(domain, type=pa.string()))
-        outside = people.num_rows - int(pc.sum(inside).as_py() or 0)
-        if outside:
-            raise PolicyError(f"'grouping.hierarchies.{a}.levels[0]' does not list the value of attribute '{a}' "
-                              f"of {outside:,} person(s); the first level must cover every possible value")
-        domains.append(domain)
+        domains.append(list(levels[0]))
     n_cells = float(np.prod([float(len(d)) for d in domains]))
     if n_cells > MAX_PUBLIC_CELLS:
         raise PolicyError(f"'grouping.attributes': {n_cells:.0f} fine cells under unit 'person' (the product of the "
                           f"declared domains); at most {MAX_PUBLIC_CELLS:,} are supported")
+    return domains
+
+
+def public_domain(people: pa.Table, policy, on_refusal=None) -> list:
+    """The declared domains (:func:`declared_domains`), checked against the data.
+
+    Under unit ``person`` the set of values present in the data is itself private
+    (one person can be the only one with a value), so the fine cells are the full
+    product of declared domains, present in the data or not.
+
+    Raises
+    ------
+    PolicyError
+        The data hold a value outside a declared domain. The message names the
+        attribute, never how many people hold such values: whether anyone does is
+        private, so ``on_refusal()`` runs first (the pipeline charges the ledger).
+    """
+    domains = declared_domains(policy)
+    for a, domain in zip(policy.grouping.attributes, domains):
+        inside = pc.is_in(people.column(a), value_set=pa.array(domain, type=pa.string()))
+        if not bool(pc.all(inside).as_py()):
+            if on_refusal is not None:
+                on_refusal()
+            raise PolicyError(f"'grouping.hierarchies.{a}.levels[0]' does not list every value of attribute "
+                              f"'{a}' found in the data; the first level must cover every possible value. Take the "
+                              "domain from a public codebook (the survey form, a published classification), never "
+                              "from this data: this refusal is charged to the lifetime ledger like a release")
     return domains
 
 
@@ -69,17 +86,19 @@ def _domain_rows(attributes, domains) -> pa.Table:
                      for a, d, grid in zip(attributes, domains, grids)})
 
 
-def group_by_noisy_cells(network, policy, budget, source, epsilon: float) -> Grouping:
+def group_by_noisy_cells(network, policy, budget, source, epsilon: float, on_refusal=None) -> Grouping:
     """Attribute grouping for unit ``person``: every size decision on noisy fine-cell counts.
 
     Every fine cell of the public domain (:func:`public_domain`) gets a noisy count
     (discrete Laplace, sensitivity 1, the ``supernode_sizes`` share); the grouping
     merges on those counts only, and the released sizes are sums of them
-    (post-processing). One spend, ``supernode_sizes``, is recorded.
+    (post-processing). One spend, ``supernode_sizes``, is recorded. A value
+    outside the declared domains is refused after ``on_refusal()`` (see
+    :func:`public_domain`).
     """
     g = policy.grouping
     people = network.people.select(list(g.attributes))
-    domains = public_domain(people, policy)
+    domains = public_domain(people, policy, on_refusal)
     # The public cells go first, so the cell order (first appearance) is the domain's, not the data's.
     domain_rows = _domain_rows(g.attributes, domains).cast(people.schema)
     padded = pa.concat_tables([domain_rows, people])

@@ -127,6 +127,40 @@ class GeometricMechanism:
         la = self.log_alpha
         return 2.0 * math.exp(la) / math.expm1(la) ** 2
 
+    def expected_abs(self) -> float:
+        r"""Mean absolute noise :math:`E|Z| = 2\alpha / (1 - \alpha^2)` of one draw (from the pmf).
+
+        Written as ``2 alpha / ((1 - alpha)(1 + alpha))`` with ``1 - alpha = -expm1(log_alpha)``,
+        accurate when :math:`\alpha` is close to 1.
+        """
+        la = self.log_alpha
+        a = math.exp(la)
+        return 2.0 * a / (-math.expm1(la) * (1.0 + a))
+
+    def expected_abs_sum(self, m) -> np.ndarray:
+        r"""Mean absolute value of the sum of ``m`` independent draws, for each entry of ``m``.
+
+        Exact (up to double rounding) from the law of the sum, computed once per
+        distinct ``m`` by :func:`aggpub.estimates.intervals.sum_noise_pmf`; the
+        normal approximation :math:`\sqrt{2 m \operatorname{Var} Z / \pi}` where that
+        law's grid would be too large. ``m = 0`` gives 0.
+        """
+        from ..estimates.intervals import sum_noise_pmf
+
+        m = np.asarray(m, dtype=np.int64)
+        out = np.zeros(m.shape, dtype=np.float64)
+        for mv in np.unique(m):
+            if mv <= 0:
+                continue
+            if mv == 1:
+                val = self.expected_abs()
+            else:
+                pmf = sum_noise_pmf([self.scale], [int(mv)])
+                val = (math.sqrt(2.0 * mv * self.variance() / math.pi) if pmf is None
+                       else 2.0 * float(np.dot(np.arange(len(pmf)), pmf)))
+            out[m == mv] = val
+        return out
+
     def _mass_at_zero(self) -> float:
         # (1 - a) / (1 + a) == tanh(epsilon / (2 sensitivity)), accurate for a near 1.
         return math.tanh(-self.log_alpha / 2.0)

@@ -1,0 +1,347 @@
+"""The auditor: the true network against the release, for the board (confidential; decides nothing).
+
+Inputs already validated: ``release`` comes from :func:`aggpub.pipeline.build_release`.
+The true tables are computed once (:mod:`aggpub.audit.truth`); each section
+below reads them and the released tables. The figures go into the confidential
+report only: the gate never reads them (:mod:`aggpub.gate`), and acting on them
+(refusing or retrying because the truth looked bad) is a data-dependent choice
+outside the guarantee.
+"""
+
+from __future__ import annotations
+
+__all__ = ["audit_release", "MAX_STRUCTURE_EDGES", "RESIDUAL"]
+
+import math
+from datetime import datetime, timezone
+
+import numpy as np
+
+from ..progress import silent
+from ..released import release_degree_histograms
+from ..synthesis import sample_block_network
+from . import degrees as deg
+from . import network_stats as struct
+from .draws import audit_source, default_monte_carlo, map_draws, mc_errors, post_process, spread
+from .metrics import distribution_distances, error_summary
+from .truth import released_cells, truth_of_release
+
+#: Largest network (contacts) whose structure the audit computes in memory.
+MAX_STRUCTURE_EDGES = 500_000  # above this the sampled-structure comparison is skipped (too slow for a release)
+RESIDUAL = "*"
+CONFIDENTIAL_NOTE = ("CONFIDENTIAL: true-against-released figures for the board. They decide nothing by "
+                     "themselves; refusing or retrying a release because the truth looked bad is a "
+                     "data-dependent choice that no epsilon covers.")
+
+
+def _expected_abs(mech, var_q, single_cell: bool):
+    """Expected absolute error per query before clamping.
+
+    A single cell: ``E|Z| = 2 alpha / (1 - alpha^2)`` for the discrete Laplace
+    law (from its pmf, Ghosh, Roughgarden, Sundararajan, STOC 2009). Sums of
+    cells: normal approximation ``sqrt(2 var / pi)``.
+    """
+    if single_cell:
+        return np.full(len(var_q), mech.expected_abs())
+    return np.sqrt(2 * np.asarray(var_q) / math.pi)
+
+
+def audit_release(release, *, monte_carlo: int | None = None, source=None, structure_samples: int = 3,
+                  n_cut_queries: int = 200, sanity_bound: float | None = None, seed: int | None = None,
+                  progress=None) -> dict:
+    """Audit a built release against the true network it came from.
+
+    Parameters
+    ----------
+    release : aggpub.pipeline.Release
+        From :func:`aggpub.pipeline.build_release` (holds the confidential truth).
+    monte_carlo : int, optional
+        Number of fresh noise draws on the true table for the spread of each
+        error figure (0: none; default :func:`aggpub.audit.draws.default_monte_carlo`
+        of the number of superedge cells: 20 on small tables, at least 3 on large ones).
+    source : aggpub.noise.RandomSource, optional
+        Randomness for the Monte Carlo noise (default: PCG64 seeded from the
+        operating system's entropy). Separate from the release's own noise; the
+        re-drawn tables are never published.
+    structure_samples : int
+        Synthetic networks sampled from the release (and as many from the true
+        aggregate) for the structure comparison (0: skip).
+    n_cut_queries : int
+        Random cut queries.
+    sanity_bound : float, optional
+        ``s`` of the relative error; default 0.1% of the number of contacts (at least 1).
+    seed : int, optional
+        Seed for the choice of cut queries and the synthetic networks (audit-internal).
+    progress : callable, optional
+
+    Returns
+    -------
+    dict
+        JSON-ready figures (keys ``degree_distribution``, ``queries``, ``error_split``,
+        ``structure``, ``budget``, ``grouping``, ``network`` ...); keys starting with
+        ``_`` hold arrays for the plots and are not written to ``audit.json``.
+
+    References
+    ----------
+    X. Xiao, G. Wang, J. Gehrke, "Differential privacy via wavelet transforms", ICDE 2010.
+    M. Hay, G. Miklau, D. Jensen, D. Towsley, P. Weis, "Resisting structural
+    re-identification in anonymized social networks", PVLDB 1(1), 2008.
+    """
+    progress = progress or silent
+    source = source or audit_source()
+    rng = np.random.default_rng(seed)
+    truth = truth_of_release(release, sanity_bound=sanity_bound, cuts=n_cut_queries, rng=rng)
+    if monte_carlo is None:
+        monte_carlo = default_monte_carlo(truth.n_groups * (truth.n_groups + 1) // 2)
+    m = release.manifest
+    out = {
+        "confidential": True,
+        "what": "utility audit of a release against the true network; holds unprotected statistics",
+        "decides": CONFIDENTIAL_NOTE,
+        "created_utc": datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ"),
+        "title": m.get("title"),
+        "seeded_release": bool(m.get("seeded")),
+        "network": {"people": int(release.network.n_people), "contacts": truth.n_edges},
+        "settings": {"monte_carlo_draws": int(monte_carlo), "structure_samples": int(structure_samples),
+                     "sanity_bound": truth.s_bound,
+                     "sanity_bound_rule": "0.1% of the number of contacts, at least 1 (Xiao, Wang, Gehrke, "
+                                          "ICDE 2010; fraction recalled from memory)"
+                                          if not sanity_bound else "given"},
+        "notes": list(truth.notes),
+        "grouping": _grouping_summary(release, truth),
+        "budget": {"epsilon_total": m.get("epsilon_total"), "epsilon_spent": m.get("epsilon_spent"),
+                   "privacy_unit": m.get("privacy_unit"), "components": m.get("components", [])},
+    }
+    plot = {"sizes": truth.true_sizes, "true_pmf": truth.true_hist / truth.true_hist.sum(), "rel_errors": {}}
+    progress("audit: degree distribution (true against released)")
+    dd, deg_mc = _degree_section(release, truth, monte_carlo, source, plot, out["notes"])
+    out["degree_distribution"] = dd
+    out["queries"] = {}
+    if truth.st is not None and "superedges" in release.tables:
+        progress("audit: query workloads (cells, contact matrices, cuts, degree totals)")
+        out["queries"] = _query_section(release, truth, monte_carlo, source, deg_mc, plot, progress)
+        if deg_mc is not None and deg_mc["ks"]:
+            dd["monte_carlo"] = {k: spread(deg_mc[k]) for k in ("ks", "wasserstein1", "l1")}
+            dd["monte_carlo"]["note"] = (f"{deg_mc['draws']} fresh noise draws on the true superedge table "
+                                         "(the first draws of the query workloads' Monte Carlo)")
+    out["structure"] = _structure_section(release, truth, structure_samples, rng, progress)
+    if "ks" in dd:
+        out["error_split"] = _error_split(dd, out["queries"])
+    out["_plot"] = plot
+    return out
+
+
+def _grouping_summary(release, truth) -> dict:
+    grouping, sizes = release.grouping, truth.true_sizes
+    people = release.network.people
+    attrs = {}
+    for c, vals in truth.labels.items():
+        if c not in release.policy.grouping.attributes or c not in people.column_names:
+            continue  # a label column that is not a person attribute (e.g. a tier of a structural grouping)
+        fine = set(str(x) for x in people.column(c).unique().to_pylist())
+        kind = np.array(["residual" if v == RESIDUAL else ("exact" if v in fine else "generalised") for v in vals])
+        attrs[c] = {k: {"supernodes": int((kind == k).sum()), "people": int(sizes[kind == k].sum())}
+                    for k in ("exact", "generalised", "residual")}
+        attrs[c]["distinct_label_values"] = int(len(set(vals)))
+    return {
+        "method": grouping.method,
+        "public": bool(grouping.public),
+        "supernodes": int(grouping.n_supernodes),
+        "min_size_policy": int(release.policy.grouping.min_size),
+        "size_min": int(sizes.min()), "size_median": float(np.median(sizes)), "size_max": int(sizes.max()),
+        "attributes": attrs,
+        "notes": list(grouping.notes),
+    }
+
+
+def _histogram_degrees(release, truth, monte_carlo, source, dd, plot) -> None:
+    """Degree distribution from the released per-supernode histograms (and their Monte Carlo)."""
+    rh = deg.released_histogram_degrees(release.tables["degree_histograms"])
+    top = len(rh) - 1
+    true_capped = truth.true_capped(top)
+    dd.update(distribution_distances(true_capped, rh))
+    dd["basis"] = (f"released per-supernode degree histograms (bins 0..{top - 1} and '{top} or more'); "
+                   "true degrees capped the same way")
+    dd["grouping_loss"] = {"ks": 0.0, "wasserstein1": 0.0, "l1": 0.0,
+                           "note": "histograms summed over supernodes are exact without noise"}
+    plot["released_pmf"] = rh / rh.sum()
+    plot["released_basis"] = "released degree histograms"
+    hist_mech = release.mechanisms.get("degree_histograms")
+    if monte_carlo and hist_mech is not None:
+        runs = []
+        for _ in range(int(monte_carlo)):
+            # the statistic's own release function: the same noise and post-processing
+            table, _, _ = release_degree_histograms(truth.hist_truth, truth.pub_sizes, hist_mech.epsilon,
+                                                    hist_mech.sensitivity, source)
+            runs.append(distribution_distances(true_capped, deg.released_histogram_degrees(table, top + 1)))
+        dd["monte_carlo"] = {k: spread([r[k] for r in runs]) for k in ("ks", "wasserstein1", "l1")}
+        dd["monte_carlo"]["note"] = "fresh noise on the true histograms, post-processed as released"
+
+
+def _degree_section(release, truth, monte_carlo, source, plot, notes):
+    """The degree distribution, true against released; returns it and the block model's Monte Carlo state."""
+    st = truth.st
+    dd = {"true_mean_degree": float(truth.true_deg.mean()), "true_max_degree": int(truth.true_deg.max())}
+    deg_mc = None
+    have_edges = st is not None and "superedges" in release.tables
+    if have_edges:
+        rel = released_cells(release, truth.n_groups)
+        group_pmf, method = deg.implied_degree_pmf(st.a, st.b, st.count, truth.true_sizes)
+        block_pmf, _ = deg.implied_degree_pmf(st.a, st.b, rel, truth.pub_sizes, method=method)
+        plot["grouping_pmf"], plot["block_pmf"] = group_pmf, block_pmf
+        dd["block_model_method"] = method
+        dd["grouping_only"] = distribution_distances(truth.true_hist, group_pmf)
+        dd["block_model_released"] = distribution_distances(truth.true_hist, block_pmf)
+        dd["noise_only_block_model"] = distribution_distances(group_pmf, block_pmf)
+    if "degree_histograms" in release.tables:
+        _histogram_degrees(release, truth, monte_carlo, source, dd, plot)
+    elif have_edges:
+        dd.update(dd["block_model_released"])
+        dd["basis"] = ("block model implied by the released superedge counts and sizes (degree of a member "
+                       f"of supernode a: sum over b of Binomial contacts; {method} computation)")
+        dd["grouping_loss"] = dict(dd["grouping_only"])
+        plot["released_pmf"] = block_pmf
+        plot["released_basis"] = "block model of the released superedges"
+        if monte_carlo and release.mechanisms.get("superedge_counts") is not None:
+            # filled by the Monte Carlo of the query workloads, from its first draws
+            deg_mc = {"draws": int(min(monte_carlo, 5)), "method": method,  # each recomputes the mixture
+                      "terms": deg.block_model_terms(st.a, st.b, truth.true_sizes), "ks": [], "wasserstein1": [],
+                      "l1": []}
+    else:
+        dd["basis"] = "not measurable: the release has neither superedge counts nor degree histograms"
+        notes.append(dd["basis"])
+    if "ks" in dd:
+        dd["noise_added"] = {k: dd[k] - dd["grouping_loss"][k] for k in ("ks", "wasserstein1", "l1")}
+    return dd, deg_mc
+
+
+def _monte_carlo(truth, mech, monte_carlo, source, deg_mc):
+    """Fresh noise draws on the true table: error figures per workload (and the degree spread)."""
+    st = truth.st
+    mc = {w.name: {"mean_absolute_error": [], "median_relative_error": [], "p90_relative_error": []}
+          for w in truth.workloads}
+
+    def one_draw(i, draw_source):
+        """Figures of fresh noise draw ``i`` (inputs already validated; runs in a worker thread)."""
+        noisy = st.count + mech.noise(len(st.count), draw_source)
+        degree = None
+        if deg_mc is not None and i < deg_mc["draws"]:  # the degree distribution's spread
+            pmf, _ = deg.implied_degree_pmf(st.a, st.b, post_process(noisy, truth.cap_true, truth.threshold),
+                                            truth.true_sizes, method=deg_mc["method"], terms=deg_mc["terms"])
+            degree = distribution_distances(truth.true_hist, pmf)
+        table = post_process(noisy, truth.cap_pub, truth.threshold).astype(np.float64)
+        del noisy
+        return degree, {w.name: mc_errors(truth.true_answers[w.name], w.answer(table), truth.s_bound)
+                        for w in truth.workloads}
+
+    for degree, errors in map_draws(one_draw, int(monte_carlo), len(st.count), source):
+        if degree is not None:
+            for k, v in degree.items():
+                deg_mc[k].append(v)
+        for name, (mae, p50, p90) in errors.items():
+            mc[name]["mean_absolute_error"].append(mae)
+            mc[name]["median_relative_error"].append(p50)
+            mc[name]["p90_relative_error"].append(p90)
+    return mc
+
+
+def _workload_summary(w, tru, est, est_unclamped, mech, s_bound, mc) -> dict:
+    summ = error_summary(tru, est, s_bound)
+    if est_unclamped is not None:
+        # what a researcher gets by summing edge_count_unclamped, as the reader's guide advises
+        summ["from_unclamped_counts"] = error_summary(tru, est_unclamped, s_bound)
+    summ["grouping_loss_mean_absolute_error"] = 0.0
+    summ["grouping_loss_note"] = "an exact sum of superedge cells: grouping alone loses nothing"
+    if mech is not None:
+        var_q = w.noise_variance(mech.variance())
+        summ["expected_rmse"] = float(np.sqrt(var_q.mean()))
+        summ["expected_mean_absolute_error"] = float(_expected_abs(mech, var_q, w.single_cell).mean())
+        summ["expected_note"] = ("from the mechanism's variance before clamping at 0 and at the possible "
+                                 "pairs" + ("" if w.single_cell else "; mean absolute error by normal approximation"))
+    if mc[w.name]["mean_absolute_error"]:
+        summ["monte_carlo"] = {k: spread(v) for k, v in mc[w.name].items()}
+    if w.notes:
+        summ["notes"] = w.notes
+    if w.name.startswith("contact_matrix:"):
+        summ["true_total"] = float(tru.sum())
+    return summ
+
+
+def _query_section(release, truth, monte_carlo, source, deg_mc, plot, progress) -> dict:
+    st = truth.st
+    mech = release.mechanisms.get("superedge_counts")
+    rel = released_cells(release, truth.n_groups)
+    unclamped = None if truth.threshold is not None else released_cells(release, truth.n_groups,
+                                                                        "edge_count_unclamped")
+    mc = {w.name: {"mean_absolute_error": []} for w in truth.workloads}
+    if monte_carlo and mech is not None:
+        progress(f"audit: {int(monte_carlo)} fresh noise draws on the true table (Monte Carlo)")
+        mc = _monte_carlo(truth, mech, monte_carlo, source, deg_mc)
+    out = {}
+    for w in truth.workloads:
+        tru = truth.true_answers[w.name]
+        est = w.answer(rel)
+        est_u = None if unclamped is None else w.answer(unclamped.astype(np.float64))
+        out[w.name] = _workload_summary(w, tru, est, est_u, mech, truth.s_bound, mc)
+        plot["rel_errors"][w.name] = np.abs(est - tru) / np.maximum(tru, truth.s_bound)
+    # relative error with s = 1, for reading per-cell errors against small counts
+    cells = out["superedge_cells"]
+    true_t = st.count.astype(np.float64)
+    r1 = np.abs(rel - true_t) / np.maximum(true_t, 1.0)
+    cells["median_relative_error_s1"] = float(np.median(r1))
+    cells["p90_relative_error_s1"] = float(np.percentile(r1, 90))
+    cells["zero_cells_true"] = int((st.count == 0).sum())
+    cells["zero_cells_released"] = int((rel == 0).sum())
+    # clamping at 0 lifts the empty cells: the bias every sum of many cells inherits
+    cells["released_total_minus_true_total"] = float(rel.sum() - true_t.sum())
+    return out
+
+
+def _error_split(dd, queries) -> dict:
+    split = {
+        "degree_ks": {"total": dd["ks"], "grouping": dd["grouping_loss"]["ks"], "noise_added": dd["noise_added"]["ks"]},
+        "degree_wasserstein1": {"total": dd["wasserstein1"], "grouping": dd["grouping_loss"]["wasserstein1"],
+                                "noise_added": dd["noise_added"]["wasserstein1"]},
+        "note": "grouping: the aggregate without noise against the true network; noise_added: total minus "
+                "grouping (distances are not additive, so this is a difference, not a component)",
+    }
+    for name, w in queries.items():
+        split[f"{name}:mean_absolute_error"] = {"total": w["mean_absolute_error"], "grouping": 0.0,
+                                                "noise_added": w["mean_absolute_error"]}
+    return split
+
+
+def _structure_section(release, truth, samples, rng, progress) -> dict:
+    network, st = release.network, truth.st
+    if st is None or "superedges" not in release.tables:
+        return {"skipped": "no superedge counts in the release"}
+    if not samples:
+        return {"skipped": "structure_samples = 0"}
+    if network.n_edges > MAX_STRUCTURE_EDGES:
+        return {"skipped": f"network has more than {MAX_STRUCTURE_EDGES:,} contacts; structure comparison "
+                           "is done in memory and was left out"}
+    progress(f"audit: structure of the true network and of {samples} + {samples} sampled networks")
+    codes = {c: np.unique(np.asarray(vals, dtype=str), return_inverse=True)[1] for c, vals in truth.labels.items()}
+    u, v = network.engine.edge_arrays()
+    assignment = release.grouping.assignment
+    true_stats = struct.structure_statistics(u, v, network.n_people,
+                                             {c: code[assignment] for c, code in codes.items()})
+    rel = released_cells(release, truth.n_groups)
+
+    def sampled(counts, sizes):  # counts within [0, possible pairs of sizes]: clamped, or true
+        runs = []
+        for _ in range(samples):
+            su, sv = sample_block_network(st.a, st.b, counts, sizes, rng)
+            cats = {c: np.repeat(code, sizes) for c, code in codes.items()}
+            runs.append(struct.structure_statistics(su, sv, int(sizes.sum()), cats))
+        return {k: spread([r[k] for r in runs]) for k in runs[0] if k != "people"}
+
+    return {
+        "true": true_stats,
+        "sampled_from_release": sampled(rel, truth.pub_sizes),
+        "sampled_from_true_aggregate": sampled(st.count, truth.true_sizes),
+        "sampler": "aggpub.synthesis.sample_block_network: uniform distinct pairs within each cell "
+                   "(Hay, Miklau, Jensen, Towsley, Weis, PVLDB 2008)",
+        "note": "sampled_from_true_aggregate shows what grouping alone loses; the difference to "
+                "sampled_from_release is what noise adds",
+    }

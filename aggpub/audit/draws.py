@@ -1,0 +1,102 @@
+"""Fresh noise draws on the true tables (the audit's Monte Carlo): one draw evaluated, many mapped.
+
+Confidential: the re-drawn tables are never published, only error figures
+computed from them go into the board's report.
+"""
+
+from __future__ import annotations
+
+__all__ = ["MC_DEFAULT_MAX", "MC_DEFAULT_MIN", "MC_DEFAULT_VALUES", "MC_PARALLEL_MAX_CELLS", "audit_source",
+           "default_monte_carlo", "map_draws", "mc_errors", "post_process", "spread"]
+
+import os
+
+import numpy as np
+
+#: Above this many cells the Monte Carlo runs one draw at a time (each draw holds a few copies of the table).
+MC_PARALLEL_MAX_CELLS = 5_000_000
+#: Monte Carlo draws when none are asked for: as many as fit ``MC_DEFAULT_VALUES`` values
+#: (draws x cells), between ``MC_DEFAULT_MIN`` and ``MC_DEFAULT_MAX``.
+MC_DEFAULT_MAX = 20
+MC_DEFAULT_MIN = 3
+MC_DEFAULT_VALUES = 6_000_000
+
+
+def default_monte_carlo(n_cells: int) -> int:
+    """Monte Carlo draws the audit makes by default on a table of ``n_cells`` cells.
+
+    20 draws up to 300,000 cells; fewer above (each draw costs a pass over every
+    cell and every workload), never fewer than 3. An error figure that averages
+    over millions of cells varies little from draw to draw, so a few draws show
+    its spread; the expected errors beside it are exact.
+    """
+    per = MC_DEFAULT_VALUES // max(int(n_cells), 1)
+    return int(min(MC_DEFAULT_MAX, max(MC_DEFAULT_MIN, per)))
+
+
+def audit_source():
+    """Randomness for the audit's Monte Carlo: PCG64 seeded from the operating system's entropy.
+
+    The re-drawn tables are never published (only error figures computed from
+    them go into the confidential report), so a fast generator seeded once from
+    the operating system serves; reading the operating system's source for each
+    of millions of values costs seconds on large tables.
+    """
+    import secrets
+
+    from ..noise.sampler import SeededRandomSource
+
+    return SeededRandomSource(secrets.randbits(63))
+
+
+def post_process(noisy, cap, threshold=None):
+    """A noisy table post-processed as the release is.
+
+    ``clip(noisy, 0, cap)`` on every cell; with a sparse ``threshold``, cells
+    whose noisy value is below it are absent (read as 0), which is the law the
+    sparse release samples (noise every cell, then threshold).
+    """
+    out = np.clip(noisy, 0, cap)
+    if threshold is not None:
+        out = np.where(noisy >= threshold, out, 0)
+    return out
+
+
+def mc_errors(true, estimate, sanity_bound: float) -> tuple[float, float, float]:
+    """Mean absolute, median relative and p90 relative error (the Monte Carlo's figures).
+
+    The same definitions as :func:`aggpub.audit.metrics.error_summary`, without
+    the figures the Monte Carlo does not keep.
+    """
+    abs_err = np.abs(estimate - true)
+    p50, p90 = np.percentile(abs_err / np.maximum(true, sanity_bound), [50, 90])
+    return float(abs_err.mean()), float(p50), float(p90)
+
+
+def spread(values) -> dict:
+    """Mean, standard deviation and 5th/95th percentiles of a figure over the draws."""
+    v = np.asarray(values, dtype=np.float64)
+    return {"mean": float(v.mean()), "sd": float(v.std(ddof=1)) if len(v) > 1 else 0.0,
+            "p05": float(np.percentile(v, 5)), "p95": float(np.percentile(v, 95)), "draws": int(len(v))}
+
+
+def map_draws(one_draw, draws: int, n_cells: int, source):
+    """``one_draw(i, source_i)`` for ``i < draws``, in order, on up to two worker threads.
+
+    Each draw gets its own generator, seeded from ``source`` (so a seeded audit
+    stays reproducible and the draws stay independent); the work of a draw is
+    numpy on whole tables, which runs outside Python's global interpreter lock,
+    so two draws proceed at once on a two-core machine. Tables above
+    :data:`MC_PARALLEL_MAX_CELLS` cells run one draw at a time to bound memory.
+    """
+    from concurrent.futures import ThreadPoolExecutor
+
+    from ..noise.sampler import SeededRandomSource
+
+    seeds = np.floor(source.uniform(draws) * 2.0 ** 53).astype(np.int64)
+    sources = [SeededRandomSource(int(x)) for x in seeds]
+    workers = 1 if n_cells > MC_PARALLEL_MAX_CELLS else max(1, min(2, os.cpu_count() or 1, draws))
+    if workers == 1:
+        return [one_draw(i, src) for i, src in enumerate(sources)]
+    with ThreadPoolExecutor(max_workers=workers, thread_name_prefix="aggpub-audit") as pool:
+        return list(pool.map(one_draw, range(draws), sources))

@@ -1,0 +1,192 @@
+"""The pre-flight: the gate's figures predicted from the policy and public inputs, before any noise.
+
+A release whose gate is expected to fail should be stopped before noise is
+drawn and budget spent. The prediction may read only what is public:
+
+* under unit ``edge`` the person table (who is in the data, their attributes):
+  the supernodes are formed exactly as the release will form them (for the
+  public grouping methods);
+* under unit ``person`` nothing but the policy: the people are a stand-in of
+  ``assumptions.people`` persons spread evenly over the declared domains.
+
+The contacts are never read. They are a stand-in too: ``assumptions.contacts_per_person``
+contacts per person (a public planning figure: the survey's design, a published
+study), spread over the supernode pairs in proportion to their possible pairs
+(homogeneous mixing). The prediction is the figure :func:`aggpub.gate.released.released_metrics`
+computes on that stand-in release: what the gate is expected to find if the
+network looks like the assumptions say. Without the assumptions the relative
+errors and degree distances cannot be predicted, and the pre-flight says so.
+"""
+
+from __future__ import annotations
+
+__all__ = ["Assumptions", "StandIn", "stand_in_release", "predicted_metrics"]
+
+from dataclasses import dataclass, field
+
+import numpy as np
+import pyarrow as pa
+
+from ..budget import sensitivity
+from ..cells import all_cells, possible_pairs
+from ..errors import PolicyError
+from .released import released_metrics
+
+
+@dataclass(frozen=True)
+class Assumptions:
+    """Public planning figures the prediction may use (``[assumptions]`` in a policy)."""
+
+    people: int | None = None
+    contacts_per_person: float | None = None
+
+
+def _assumptions(policy) -> Assumptions:
+    a = getattr(policy, "assumptions", None)
+    if a is None:
+        return Assumptions()
+    return Assumptions(people=getattr(a, "people", None), contacts_per_person=getattr(a, "contacts_per_person", None))
+
+
+@dataclass
+class StandIn:
+    """A release built from public inputs and assumptions: what the pre-flight judges."""
+
+    tables: dict
+    manifest: dict
+    n_people: int
+    notes: list = field(default_factory=list)
+    grouping_exact: bool = True  # the supernodes are the ones the release will form
+
+
+def _stand_in_people(policy, assumptions: Assumptions):
+    """Person unit: ``assumptions.people`` persons spread evenly over the declared domains (public)."""
+    from ..grouping.noisy_cells import _domain_rows, declared_domains
+
+    if assumptions.people is None:
+        raise PolicyError("the pre-flight under unit 'person' needs 'assumptions.people' (a public figure for "
+                          "the population size, e.g. from a census); the person file is private and is not read")
+    g = policy.grouping
+    cells = _domain_rows(g.attributes, declared_domains(policy))
+    reps = np.full(cells.num_rows, assumptions.people // max(cells.num_rows, 1), dtype=np.int64)
+    reps[: assumptions.people - int(reps.sum())] += 1
+    return cells.take(pa.array(np.repeat(np.arange(cells.num_rows), reps)))
+
+
+def _stand_in_grouping(policy, people: pa.Table | None, assumptions: Assumptions):
+    """Sizes and labels of the supernodes, from public information only; and whether they are exact."""
+    from ..grouping import group_by_attributes
+
+    g = policy.grouping
+    unit = policy.privacy.unit
+    notes = []
+    if unit == "person":
+        people = _stand_in_people(policy, assumptions)
+        notes.append(f"people: a stand-in of {people.num_rows:,} persons (assumptions.people) spread evenly over "
+                     "the declared attribute domains; the person file is private under unit 'person' and was "
+                     "not read")
+    elif people is None:
+        raise PolicyError("the pre-flight under unit 'edge' needs the person table (public under that unit)")
+    if g.method in ("attributes", "attributes+structure"):
+        grouping = group_by_attributes(people.select(list(g.attributes)), g.attributes, g.min_size,
+                                       g.hierarchies, g.merge_order)
+        sizes, labels = grouping.sizes(), grouping.labels
+        exact = unit == "edge" and g.method == "attributes"
+    else:  # given / random / structure: the same number of people in groups of about min_size
+        n = people.num_rows
+        k = max(1, n // max(g.min_size, 1))
+        sizes = np.full(k, n // k, dtype=np.int64)
+        sizes[: n - int(sizes.sum())] += 1
+        labels = pa.table({"supernode": pa.array(np.arange(k, dtype=np.int64))})
+        exact = False
+    if g.method == "attributes+structure":  # private split of each attribute cell into degree tiers
+        parts = np.minimum(g.tiers, np.maximum(1, sizes // g.min_size))
+        new_sizes = np.concatenate([np.full(p, s // p) + (np.arange(p) < s % p) for s, p in zip(sizes, parts)])
+        labels = labels.take(pa.array(np.repeat(np.arange(len(sizes)), parts)))
+        labels = labels.set_column(0, "supernode", pa.array(np.arange(len(new_sizes), dtype=np.int64)))
+        sizes = new_sizes.astype(np.int64)
+    if not exact:
+        notes.append(f"supernodes: grouping method '{g.method}' under unit '{unit}' reads private data (or "
+                     "draws at random); the pre-flight uses a stand-in of the same number of people in groups "
+                     "of about min_size")
+    return sizes.astype(np.int64), labels, exact, people.num_rows, notes
+
+
+def stand_in_release(policy, people: pa.Table | None = None) -> StandIn:
+    """The stand-in release the pre-flight judges (no noise; public inputs and assumptions only).
+
+    Parameters
+    ----------
+    policy : ReleasePolicy
+    people : pyarrow.Table, optional
+        The person table (unit ``edge`` only: it is public there).
+    """
+    from ..policy import epsilon_shares
+
+    assumptions = _assumptions(policy)
+    sizes, labels, exact, n_people, notes = _stand_in_grouping(policy, people, assumptions)
+    unit, D = policy.privacy.unit, policy.privacy.max_contacts
+    shares = epsilon_shares(policy)
+    comps = []
+    for name in ("superedge_counts", "degree_histograms"):
+        option = getattr(policy.components, name)
+        if option.enabled:
+            comps.append({"name": name, "epsilon": shares[name], "sensitivity": sensitivity(unit, name, D)})
+    tables = {"supernodes": labels.add_column(1, "size", pa.array(sizes))}
+    c = assumptions.contacts_per_person
+    if c is not None:
+        a, b = all_cells(len(sizes))
+        cap = possible_pairs(sizes, a, b)
+        expected = c * n_people / 2.0 * cap / max(float(cap.sum()), 1.0)
+        counts = np.rint(expected).astype(np.int64)
+        tables["superedges"] = pa.table({"supernode_a": a, "supernode_b": b, "edge_count": counts,
+                                         "edge_count_unclamped": counts, "possible_pairs": cap})
+        notes.append(f"contacts: {c:g} per person (assumptions.contacts_per_person), spread over supernode pairs "
+                     "in proportion to their possible pairs; the edge file is never read")
+        if policy.components.degree_histograms.enabled:
+            tables["degree_histograms"] = _stand_in_histograms(sizes, c, policy.components.degree_histograms.max_degree)
+    return StandIn(tables=tables, manifest={"components": comps, "max_contacts": D}, n_people=int(n_people),
+                   notes=notes, grouping_exact=exact)
+
+
+def _stand_in_histograms(sizes, c: float, cap: int) -> pa.Table:
+    """Every supernode's members with Poisson(c) contacts, binned 0..cap-1 and 'cap or more'."""
+    from scipy import stats
+
+    pmf = stats.poisson.pmf(np.arange(cap), c)
+    pmf = np.append(pmf, max(0.0, 1.0 - pmf.sum()))
+    people = np.floor(np.outer(sizes, pmf)).astype(np.int64)
+    people[:, int(np.argmax(pmf))] += sizes - people.sum(axis=1)  # rows add up to the sizes
+    g, nb = people.shape
+    return pa.table({"supernode": np.repeat(np.arange(g), nb), "degree_bin": np.tile(np.arange(nb), g),
+                     "people": people.reshape(-1)})
+
+
+def predicted_metrics(policy, people: pa.Table | None = None) -> dict:
+    """The gate's figures predicted before any noise (see the module docstring).
+
+    Returns
+    -------
+    dict
+        A metrics table (:func:`aggpub.gate.released.released_metrics`) with ``notes``,
+        ``supernodes`` (count and sizes of the stand-in) and ``grouping_exact``.
+    """
+    stand = stand_in_release(policy, people)
+    if "superedges" in stand.tables:
+        out = released_metrics(stand.tables, stand.manifest, policy)
+    else:
+        why = ("needs 'assumptions.contacts_per_person' (a public planning figure); the contacts are private "
+               "and are never read before the noise")
+        out = {k: None for k in ("superedge_median_relative_error", "contact_matrix_median_relative_error",
+                                 "degree_ks", "degree_wasserstein1")}
+        out["why"] = {k: why for k in out}
+        from . import gate_attribute
+
+        out["contact_matrix_attribute"] = gate_attribute(policy)
+    sizes = np.asarray(stand.tables["supernodes"].column("size").to_numpy())
+    out["supernodes"] = {"count": int(len(sizes)), "size_min": int(sizes.min()), "size_median": float(np.median(sizes)),
+                         "size_max": int(sizes.max()), "people": stand.n_people}
+    out["grouping_exact"] = stand.grouping_exact
+    out["notes"] = stand.notes
+    out["noise"] = [dict(c, scale=c["sensitivity"] / c["epsilon"]) for c in stand.manifest["components"]]
+    return out
