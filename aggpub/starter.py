@@ -773,36 +773,10 @@ def write_draft_policy(out, draft: DraftPolicy, *, overwrite: bool = False, inpu
         ``out`` exists (and ``overwrite`` is false), is one of ``inputs``, is a
         folder, or its folder is missing or not writable.
     """
-    from .bundle._files import fsync_path, temp_sibling
+    from .outputs import write_file, write_synced
 
     out = Path(out).absolute()
     for inp in inputs:
         if inp is not None and out.exists() and Path(inp).exists() and os.path.samefile(out, inp):
             raise OutputError(f"{out}: the output would replace an input file")
-    if out.is_dir():
-        raise OutputError(f"{out}: output path is a folder")
-    if (out.exists() or out.is_symlink()) and not overwrite:
-        raise OutputError(f"{out}: output file already exists (use --overwrite to replace it)")
-    if not out.parent.is_dir():
-        raise OutputError(f"{out.parent}: folder of the output does not exist")
-    if not os.access(out.parent, os.W_OK | os.X_OK):
-        raise OutputError(f"{out.parent}: output folder is not writable")
-    tmp = temp_sibling(out, "tmp")
-    try:
-        with open(tmp, "x", encoding="utf-8", newline="\n") as fh:
-            fh.write(draft.text)
-            fh.flush()
-            os.fsync(fh.fileno())
-        if overwrite:
-            os.replace(tmp, out)
-        else:
-            os.link(tmp, out)  # fails if ``out`` appeared meanwhile: never replaces a file silently
-        fsync_path(out.parent)
-    except FileExistsError:
-        raise OutputError(f"{out}: output file already exists (use --overwrite to replace it)") from None
-    except OSError as exc:
-        raise OutputError(f"{out}: cannot write the policy ({exc.strerror})") from None
-    finally:
-        if tmp.exists():
-            tmp.unlink()
-    return out
+    return write_file(out, lambda tmp: write_synced(tmp, draft.text), overwrite=overwrite, what="policy")
