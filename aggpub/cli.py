@@ -128,6 +128,31 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--overwrite", action="store_true", help="replace an existing sweep folder at --out")
     p.add_argument("--seed", type=int, help="fixed seed of the planning draws")
     _add_common(p)
+
+    p = sub.add_parser("draft-policy", help="write a commented starting policy for a person file and attributes",
+                       description="Write a starting release policy in which every key is commented with what it "
+                       "does and the choices: epsilon 1.0, min_size 20, grouping by the given attributes, a "
+                       "[ledger] section commented out, no [gate] thresholds. Under --unit edge the person table "
+                       "is public, so each attribute's values are read from it and listed, each mapped to itself, "
+                       "for you to map to broader groups. Under --unit person the values in the person file are "
+                       "private: only its header is read, and the attribute domains come from a public codebook "
+                       "(--codebook, a CSV file attribute,value[,broader[,broader_2...]]; see docs/policy.md).",
+                       epilog=EXIT_CODES_HELP, formatter_class=argparse.RawDescriptionHelpFormatter)
+    p.add_argument("--nodes", required=True, type=Path, help="person file: CSV, TSV or Parquet")
+    p.add_argument("--attributes", required=True, metavar="A,B",
+                   help="comma-separated grouping attributes (columns of the person file)")
+    p.add_argument("--unit", default="edge", choices=("edge", "person"), help="privacy unit (default edge)")
+    p.add_argument("--codebook", type=Path, metavar="FILE",
+                   help="public codebook of attribute values (CSV: attribute,value[,broader...]); "
+                        "required with --unit person")
+    p.add_argument("--max-contacts", type=int, metavar="N",
+                   help="promised cap on contacts per person; required with --unit person")
+    p.add_argument("--node-column", default="node", help="person id column (default 'node')")
+    p.add_argument("--epsilon", type=float, default=1.0, help="total epsilon to write (default 1.0)")
+    p.add_argument("--min-size", type=int, default=20, help="smallest supernode to write (default 20)")
+    p.add_argument("--out", required=True, type=Path, help="policy file to write (TOML)")
+    p.add_argument("--overwrite", action="store_true", help="replace an existing file at --out")
+    _add_common(p)
     return parser
 
 
@@ -314,8 +339,23 @@ def cmd_sweep(args):
     return 0
 
 
+def cmd_draft_policy(args):
+    from .starter import draft_policy, write_draft_policy
+
+    draft = draft_policy(args.nodes, args.attributes.split(","), unit=args.unit, codebook=args.codebook,
+                         max_contacts=args.max_contacts, node_column=args.node_column, epsilon=args.epsilon,
+                         min_size=args.min_size)
+    path = write_draft_policy(args.out, draft, overwrite=args.overwrite, inputs=(args.nodes, args.codebook))
+    print(f"wrote a starting policy to {path} (unit {draft.unit}, attributes {', '.join(draft.attributes)})")
+    for note in draft.notes:
+        print(f"  {note}")
+    print(f"next: review {path} (every key is commented; docs/policy.md explains each), then")
+    print(f"  aggpub release --policy {path} --edges EDGES --nodes {args.nodes} --out BUNDLE")
+    return 0
+
+
 COMMANDS = {"release": cmd_release, "check": cmd_check, "demo": cmd_demo, "ledger": cmd_ledger,
-            "sample": cmd_sample, "sweep": cmd_sweep}
+            "sample": cmd_sample, "sweep": cmd_sweep, "draft-policy": cmd_draft_policy}
 
 
 def main(argv=None) -> int:

@@ -1,10 +1,24 @@
-"""Release policies: strict TOML read with the standard library into frozen dataclasses.
+"""Release policies: one table of keys drives the strict TOML parser, the dataclasses and the reference.
 
 A policy states the privacy unit, the total epsilon of one release, how people
 are grouped into supernodes, which components are released with which share of
-the budget, the lifetime ledger and the utility gate. Parsing is strict: an
-unknown key, a wrong type or a value out of range raises :class:`PolicyError`
-naming the key (and suggesting the closest known key).
+the budget, the lifetime ledger, the utility gate and the input column names.
+
+Everything about a key is written once, in :data:`POLICY_KEYS` (section, name,
+type, default, allowed values or range, when it is required, a one-line
+meaning, a longer explanation and an example); the rules that tie several keys
+together are written once, in :data:`POLICY_RULES`. From these:
+
+* the policy dataclasses validate and normalise their own fields when they are
+  built (in ``__post_init__``), so a :class:`ReleasePolicy` built in Python
+  cannot hold an out-of-range epsilon, an unknown unit or a ``min_size`` below 1;
+  the errors are :class:`PolicyError` naming the key and the value received;
+* :func:`parse_policy` checks the keys of decoded TOML against the table (an
+  unknown key is refused with the closest known key suggested), fills the
+  table's defaults and builds the dataclasses, which do the rest;
+* :func:`policy_reference` writes ``docs/policy.md``
+  (``python scripts/policy_reference.py > docs/policy.md``; the test suite
+  regenerates it and compares).
 
 ``parse_policy`` works on a mapping (already decoded TOML); ``read_policy``
 opens a file. Relative paths inside a policy are resolved against the policy
@@ -25,23 +39,726 @@ __all__ = [
     "read_policy",
     "parse_policy",
     "policy_to_dict",
+    "epsilon_shares",
+    "budgeted_components",
+    "sizes_need_budget",
     "PRIVACY_UNITS",
     "GROUPING_METHODS",
+    "COMPONENT_NAMES",
+    "PolicyKey",
+    "PolicySection",
+    "PolicyRule",
+    "POLICY_KEYS",
+    "POLICY_SECTIONS",
+    "POLICY_RULES",
+    "REQUIRED",
+    "KINDS",
+    "Range",
+    "When",
+    "Depends",
+    "EXAMPLE_POLICY",
+    "policy_key",
+    "check_value",
+    "policy_reference",
 ]
 
 import dataclasses
 import math
+import numbers
+import os
 import tomllib
 import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Mapping
+from typing import Any, Callable, Mapping
 
 from .errors import InputError, PolicyError, closest_name
 
 PRIVACY_UNITS = ("edge", "person")
 GROUPING_METHODS = ("attributes", "structure", "attributes+structure", "given", "random")
+PRIVATE_GROUPING_METHODS = ("structure", "attributes+structure")
+ATTRIBUTE_GROUPING_METHODS = ("attributes", "attributes+structure")
+COMPONENT_NAMES = ("supernode_sizes", "superedge_counts", "degree_histograms", "weight_totals")
+SUPEREDGE_METHODS = ("auto", "dense", "sparse")
 EPSILON_WARN_ABOVE = 10.0
+
+
+# --------------------------------------------------------------------------- the table's vocabulary
+
+
+class _Required:
+    """Marker of a key that has no default: the policy must set it."""
+
+    def __repr__(self):
+        return "REQUIRED"
+
+
+#: Default of a key that must be given.
+REQUIRED = _Required()
+
+#: The value types a key can have, with how the reference names them.
+KINDS = {
+    "number": "number",
+    "integer": "integer",
+    "boolean": "boolean",
+    "string": "string",
+    "strings": "list of strings",
+    "path": "string (a path)",
+    "levels": "list of tables",
+}
+
+
+@dataclass(frozen=True)
+class Range:
+    """Allowed numeric range; ``None`` leaves a side open-ended. Numbers must be finite."""
+
+    low: float | None = None
+    high: float | None = None
+    low_open: bool = False
+    high_open: bool = False
+
+    def holds(self, v) -> bool:
+        if isinstance(v, float) and not math.isfinite(v):
+            return False
+        if self.low is not None and (v <= self.low if self.low_open else v < self.low):
+            return False
+        if self.high is not None and (v >= self.high if self.high_open else v > self.high):
+            return False
+        return True
+
+    def text(self) -> str:
+        """``> 0``, ``>= 1`` or ``(0, 1]``."""
+        if self.low is not None and self.high is not None:
+            return f"{'(' if self.low_open else '['}{self.low:g}, {self.high:g}{')' if self.high_open else ']'}"
+        if self.low is not None:
+            return f"{'>' if self.low_open else '>='} {self.low:g}"
+        return f"{'<' if self.high_open else '<='} {self.high:g}"
+
+    def message(self, kind: str) -> str:
+        if kind == "integer":
+            return f"must be {self.text()}"
+        if self.high is not None and self.low is not None:
+            return f"must be a number in {self.text()}"
+        return f"must be a finite number {self.text()}"
+
+
+@dataclass(frozen=True)
+class When:
+    """A condition on another key of the same section: ``key`` has one of ``values``."""
+
+    key: str
+    values: tuple
+    reason: str = ""
+
+    def holds(self, obj, section: str) -> bool:
+        return getattr(obj, _attr_of(section, self.key)) in self.values
+
+    def text(self, section: str) -> str:
+        where = f"{section}.{self.key}" if section else self.key
+        return f"{where} is " + " or ".join(_toml_literal(v) for v in self.values)
+
+
+@dataclass(frozen=True)
+class Depends:
+    """A default that depends on another key of the same section."""
+
+    key: str
+    values: Mapping[Any, Any]
+    otherwise: Any
+
+    def resolve(self, obj, section: str):
+        return self.values.get(getattr(obj, _attr_of(section, self.key)), self.otherwise)
+
+    def text(self, section: str) -> str:
+        by = {}
+        for k, v in self.values.items():
+            by.setdefault(v, []).append(k)
+        parts = [f"{_toml_literal(v)} when {section}.{self.key} is " + " or ".join(_toml_literal(k) for k in ks)
+                 for v, ks in by.items()]
+        return "; ".join(parts) + f"; {_toml_literal(self.otherwise)} otherwise"
+
+
+@dataclass(frozen=True)
+class PolicyKey:
+    """One key of a release policy: everything the parser, the dataclasses and the reference need.
+
+    Attributes
+    ----------
+    section : str
+        The TOML table holding the key (``"privacy"``, ``"components.superedge_counts"``,
+        ``"grouping.hierarchies.<attribute>"``); ``""`` for the top level.
+    name : str
+        The key as written in TOML.
+    kind : str
+        One of :data:`KINDS`.
+    default
+        The value used when the key is absent: a value, ``None`` (not set),
+        :data:`REQUIRED` or a :class:`Depends`.
+    meaning : str
+        One line: what the key does.
+    details : str
+        A longer explanation (Markdown).
+    example : str
+        A TOML fragment using the key; merged into a minimal policy it must parse.
+    choices : tuple
+        The allowed values, if the key takes one of a few.
+    range : Range, optional
+        The allowed numeric range.
+    nonempty : bool
+        A string or list that must not be empty.
+    needed_when, only_when : When, optional
+        The key must be set when the condition holds / may be set only when it holds.
+    attr : str
+        The dataclass field holding the value, when it is not named like the key.
+    suggested
+        The value a starting policy writes, and the Python default of a required key.
+    default_doc : str
+        How the reference states a default that code computes (e.g. from other keys).
+    allowed_doc : str
+        What else the reference says about the allowed values (a rule written elsewhere).
+    """
+
+    section: str
+    name: str
+    kind: str
+    default: Any
+    meaning: str
+    details: str = ""
+    example: str = ""
+    choices: tuple = ()
+    range: Range | None = None
+    nonempty: bool = False
+    needed_when: When | None = None
+    only_when: When | None = None
+    attr: str = ""
+    suggested: Any = None
+    default_doc: str = ""
+    allowed_doc: str = ""
+
+    @property
+    def path(self) -> str:
+        """The dotted name (``privacy.epsilon``)."""
+        return f"{self.section}.{self.name}" if self.section else self.name
+
+    @property
+    def field(self) -> str:
+        return self.attr or self.name
+
+    @property
+    def required(self) -> bool:
+        return self.default is REQUIRED
+
+    def python_default(self):
+        """The dataclass default: the table's default, or the suggested value of a required key."""
+        if self.default is REQUIRED:
+            return self.suggested
+        if isinstance(self.default, Depends):
+            return None
+        return self.default
+
+
+@dataclass(frozen=True)
+class PolicySection:
+    """One TOML table of a policy."""
+
+    name: str
+    meaning: str
+    details: str = ""
+    required: bool = False
+
+
+@dataclass(frozen=True)
+class PolicyRule:
+    """A rule tying several keys together, checked when the section's dataclass is built."""
+
+    section: str  # where the rule is checked and documented ("" = the whole policy)
+    text: str  # the rule in one sentence, for the reference
+    check: Callable[[Any], None]
+
+
+def _toml_literal(v) -> str:
+    if isinstance(v, bool):
+        return "true" if v else "false"
+    if isinstance(v, str):
+        return '"' + v.replace("\\", "\\\\").replace('"', '\\"') + '"'
+    if isinstance(v, (list, tuple)):
+        return "[" + ", ".join(_toml_literal(x) for x in v) + "]"
+    if isinstance(v, float):
+        return repr(v)
+    return str(v)
+
+
+# --------------------------------------------------------------------------- the table
+
+_UNIT_PERSON = When("unit", ("person",), "unit 'person' needs the promised cap on contacts per person")
+
+POLICY_SECTIONS: tuple[PolicySection, ...] = (
+    PolicySection(
+        "", "Top-level keys.",
+        "Keys written before the first `[section]` header."),
+    PolicySection(
+        "privacy", "The privacy unit and the total epsilon of one release.",
+        "What one protected unit is, and how much privacy loss this release may spend in all. "
+        "`docs/privacy.md` gives the definitions, the sensitivity of every released component under each "
+        "unit, and what the guarantee does not cover.",
+        required=True),
+    PolicySection(
+        "grouping", "How people are grouped into supernodes of at least `min_size` members.",
+        "A supernode stands for a group of people; only supernode-level numbers are released. Grouping by "
+        "public attributes costs no budget under unit `edge`; the structural methods read the contacts and are "
+        "paid from `epsilon_share` (`docs/privacy-grouping.md`).",
+        required=True),
+    PolicySection(
+        "grouping.hierarchies.<attribute>", "Generalisation levels of one grouping attribute.",
+        "One table per attribute, e.g. `[grouping.hierarchies.age_band]`; `<attribute>` must be one of "
+        "`grouping.attributes`. When a cell of people sharing the same values has fewer than `min_size` "
+        "members, its values climb these levels (one attribute at a time, in `merge_order`) so it merges with "
+        "its neighbours instead of joining the residual supernode."),
+    PolicySection(
+        "components", "Which components are released, each with its share of epsilon.",
+        "Holds one table per component. Components without an explicit `share` split what the explicit "
+        "shares (and a private grouping's `epsilon_share`) leave, equally. Supernode sizes need no share under "
+        "unit `edge`."),
+    PolicySection(
+        "components.supernode_sizes", "The number of people in each supernode.",
+        "Exact and free under unit `edge` (the person table is public there); noisy, and paid from the "
+        "budget, under unit `person`."),
+    PolicySection(
+        "components.superedge_counts", "Contacts within each supernode and between each pair of supernodes.",
+        "Every cell of the upper triangle (diagonal included) gets discrete Laplace noise, zeros included, "
+        "or the sparse release below. L1 sensitivity 1 under `edge`, `max_contacts` under `person`."),
+    PolicySection(
+        "components.degree_histograms", "For each supernode, how many members have 0, 1, 2, ... contacts.",
+        "Noisy histograms, made consistent with the supernode sizes afterwards (post-processing). L1 "
+        "sensitivity 4 under `edge`, `2 * max_contacts + 1` under `person`."),
+    PolicySection(
+        "components.weight_totals", "The clipped total weight (e.g. minutes) of the contacts of each cell.",
+        "Each contact's weight is clipped to `[0, clip]` and rounded; L1 sensitivity `clip` under `edge`, "
+        "`max_contacts * clip` under `person`."),
+    PolicySection(
+        "ledger", "The lifetime budget of one dataset, kept in a file across releases.",
+        "Every release of the same people adds up: two releases at epsilon 1 are a release at epsilon 2. With "
+        "this section, each release charges its total epsilon to the ledger before the first noise is drawn, "
+        "and a release that would exceed `lifetime_epsilon` is refused. Keep one ledger file per dataset and "
+        "name it in every policy that releases that dataset. `aggpub ledger FILE` lists the spends."),
+    PolicySection(
+        "gate", "Utility thresholds a release must meet before it is published.",
+        "Each threshold is compared with a figure of the confidential audit (released against true values). "
+        "A release that misses one is not published (exit code 6); its budget stays charged because the "
+        "noise was drawn. Unset thresholds are not checked. The pass/fail outcome depends on the true network, "
+        "so set thresholds to catch a release that would mislead, not to retry until one passes."),
+    PolicySection(
+        "input", "Column names of the input files.",
+        "Command-line options (`--source-column`, `--target-column`, `--node-column`, `--weight-column`, "
+        "`--drop-unknown`) override these."),
+)
+
+_SHARE_DETAILS = ("A fraction of `privacy.epsilon`. When every budgeted component has a share, the shares and "
+                  "`grouping.epsilon_share` must add up to 1; otherwise the components without a share split "
+                  "what is left equally. A share on a disabled component is refused.")
+
+
+def _component_keys(name, enabled, meaning_enabled, extra_details_enabled=""):
+    section = f"components.{name}"
+    share_example = {
+        "supernode_sizes": '[privacy]\nunit = "person"\nepsilon = 2.0\nmax_contacts = 60\n\n'
+                           "[components.supernode_sizes]\nshare = 0.2\n\n[components.superedge_counts]\nshare = 0.8\n",
+        "superedge_counts": "[components.superedge_counts]\nshare = 0.7\n\n"
+                            "[components.degree_histograms]\nenabled = true\nshare = 0.3\n",
+        "degree_histograms": "[components.superedge_counts]\nshare = 0.7\n\n"
+                             "[components.degree_histograms]\nenabled = true\nshare = 0.3\n",
+        "weight_totals": '[components.weight_totals]\nenabled = true\nshare = 0.5\ncolumn = "minutes"\nclip = 120\n',
+    }[name]
+    share_details = _SHARE_DETAILS
+    if name == "supernode_sizes":
+        share_details = ("Under unit `person` only: the noisy sizes are paid from the budget. Under `edge` the sizes "
+                         "are exact (public grouping) or post-processing of a private grouping's noisy output, so a "
+                         "share is refused. " + _SHARE_DETAILS)
+    enabled_example = (f"[{section}]\nenabled = {_toml_literal(not enabled)}\n" if name != "weight_totals" else
+                       '[components.weight_totals]\nenabled = true\ncolumn = "minutes"\nclip = 120\n')
+    if name == "superedge_counts":
+        enabled_example = "[components.superedge_counts]\nenabled = false\n\n" \
+                          "[components.degree_histograms]\nenabled = true\n"
+    return (
+        PolicyKey(section, "enabled", "boolean", enabled, meaning_enabled,
+                  extra_details_enabled or "At least one of superedge counts, degree histograms and weight totals "
+                  "must be enabled.", enabled_example),
+        PolicyKey(section, "share", "number", None, "share of `privacy.epsilon` spent on this component",
+                  share_details, share_example, range=Range(0, 1, low_open=True)),
+    )
+
+
+POLICY_KEYS: tuple[PolicyKey, ...] = (
+    # ---------------------------------------------------------------- top level
+    PolicyKey(
+        "", "title", "string", "", "a name for the release",
+        "Copied into the bundle's manifest with the rest of the policy and shown on the confidential report. "
+        "It is published: keep private information out of it.",
+        'title = "Quennet Vale contacts, spring survey"'),
+    # ---------------------------------------------------------------- privacy
+    PolicyKey(
+        "privacy", "unit", "string", "edge",
+        "what one protected unit is: one contact, or one person with all of their contacts",
+        "`edge`: neighbouring datasets differ in one contact between two people. The person table (who is in "
+        "the data and their attributes) is public, so supernode sizes are released exactly.\n\n"
+        "`person`: neighbouring datasets differ in one person together with all of their contacts, on networks "
+        "promised to have at most `max_contacts` contacts per person. Supernode sizes get noise too, and every "
+        "grouping attribute needs a declared value domain (`[grouping.hierarchies.<attribute>]`), because the "
+        "values present in the data are private. Only method `attributes` is available under `person`.",
+        '[privacy]\nunit = "person"\nepsilon = 2.0\nmax_contacts = 60\n',
+        choices=PRIVACY_UNITS),
+    PolicyKey(
+        "privacy", "epsilon", "number", REQUIRED, "the total privacy-loss budget of this release",
+        "Smaller is more private and noisier. The components (and a private grouping) split it by their "
+        "shares, and their spends add up to exactly this value. Above 10 the policy is accepted with a "
+        "warning: the guarantee is then weak. Repeated releases of the same people add up; `[ledger]` caps "
+        "their sum.",
+        "[privacy]\nepsilon = 0.5\n",
+        range=Range(0, None, low_open=True), suggested=1.0),
+    PolicyKey(
+        "privacy", "max_contacts", "integer", None, "the promised cap on contacts per person, for unit `person`",
+        "A promise about the data made by the steward. It bounds the sensitivity of superedge counts "
+        "(`max_contacts`), degree histograms (`2 * max_contacts + 1`) and weight totals under `person`. Input in "
+        "which anyone has more contacts is refused (saying how many people exceed it, never who), never "
+        "truncated. A larger cap means more noise.",
+        '[privacy]\nunit = "person"\nepsilon = 2.0\nmax_contacts = 60\n',
+        range=Range(1, None), needed_when=_UNIT_PERSON, only_when=_UNIT_PERSON),
+    # ---------------------------------------------------------------- grouping
+    PolicyKey(
+        "grouping", "method", "string", "attributes", "how people become supernodes",
+        "`attributes`: people with the same values of `attributes` form a cell; small cells climb the "
+        "hierarchies, what is still too small joins one residual supernode. Public, no budget under `edge`.\n\n"
+        "`structure`: tiers of people with similar noisy degrees (and optional noisy contact-profile rounds). "
+        "It reads the contacts, so it is paid from `epsilon_share`.\n\n"
+        "`attributes+structure`: attribute cells cut further by noisy degree tiers; paid like `structure`.\n\n"
+        "`given`: a public person -> supernode map read from `map`. Sound only if the map is public.\n\n"
+        "`random`: people dealt at random into groups of `min_size`; a baseline for the audit.",
+        '[grouping]\nmethod = "structure"\nmin_size = 20\n',
+        choices=GROUPING_METHODS),
+    PolicyKey(
+        "grouping", "attributes", "strings", (), "person-table columns whose values define the supernodes",
+        "Each is a column of the person file. Listed once each. Required (at least one) for methods "
+        "`attributes` and `attributes+structure`.",
+        '[grouping]\nattributes = ["age_band", "neighbourhood"]\nmin_size = 20\n',
+        allowed_doc="columns of the person file, each once",
+        needed_when=When("method", ATTRIBUTE_GROUPING_METHODS,
+                         "methods 'attributes' and 'attributes+structure' need at least one attribute")),
+    PolicyKey(
+        "grouping", "min_size", "integer", REQUIRED, "the smallest number of people in a released supernode",
+        "Every released supernode stands for at least this many people: small cells are generalised up the "
+        "hierarchies, and what is still too small joins a residual supernode (its differing values shown as "
+        "`*`). Larger values hide individuals better and blur differences between groups. Under `person` the "
+        "decisions are taken on noisy counts, so a true size can fall below it.",
+        "[grouping]\nmin_size = 50\n",
+        range=Range(1, None), suggested=20),
+    PolicyKey(
+        "grouping", "merge_order", "strings", (), "the order in which the attributes' hierarchies are climbed",
+        "A small cell first gives up detail of the first attribute listed, then of the next. Attributes not "
+        "listed follow, last attribute first. Each must be one of `attributes`, listed once.",
+        '[grouping]\nattributes = ["age_band", "neighbourhood"]\nmin_size = 20\n'
+        'merge_order = ["neighbourhood", "age_band"]\n',
+        default_doc="the reverse of `attributes`", allowed_doc="names from `attributes`, each once"),
+    PolicyKey(
+        "grouping", "epsilon_share", "number",
+        Depends("method", {m: 0.3 for m in PRIVATE_GROUPING_METHODS}, 0.0),
+        "share of `privacy.epsilon` spent on a private (structural) grouping",
+        "Only for methods `structure` and `attributes+structure`, which read the contacts: must then be "
+        "strictly between 0 and 1. With `rounds = r` it is split into `r + 1` equal parts. For the public "
+        "methods it must stay 0.",
+        '[grouping]\nmethod = "structure"\nmin_size = 20\nepsilon_share = 0.4\n',
+        range=Range(0, 1, high_open=True)),
+    PolicyKey(
+        "grouping", "tiers", "integer", 8, "structural grouping: the most degree tiers",
+        "People are cut into at most this many quantile tiers of their noisy degree (per attribute cell for "
+        "`attributes+structure`); tiers smaller than `min_size` merge with a neighbour. Unused by other methods.",
+        '[grouping]\nmethod = "structure"\nmin_size = 20\ntiers = 12\n',
+        range=Range(1, None)),
+    PolicyKey(
+        "grouping", "rounds", "integer", 0, "structural grouping: noisy contact-profile refinement rounds",
+        "Each round releases, to the grouping step only, every person's noisy number of contacts with each "
+        "current group and re-clusters; it costs an equal part of `epsilon_share`. Unused by other methods.",
+        '[grouping]\nmethod = "structure"\nmin_size = 20\nrounds = 1\n',
+        range=Range(0, None)),
+    PolicyKey(
+        "grouping", "map", "path", None, "method `given`: the public person -> supernode map",
+        "A CSV or Parquet file with columns `node` (the person id, as in the person file) and `supernode` (any "
+        "label), relative to the policy file's folder. Every person must be listed once and every supernode must "
+        "have at least `min_size` people. No budget is charged, so the map must be public: a map derived from "
+        "the contacts is a release of its own and voids the guarantee.",
+        '[grouping]\nmethod = "given"\nmin_size = 20\nmap = "districts.csv"\n',
+        nonempty=True, attr="map_path",
+        needed_when=When("method", ("given",), "method 'given' needs the public person -> supernode map"),
+        only_when=When("method", ("given",))),
+    # ---------------------------------------------------------------- grouping.hierarchies.<attribute>
+    PolicyKey(
+        "grouping.hierarchies.<attribute>", "levels", "levels", REQUIRED,
+        "generalisation steps: each table maps a value to its broader value",
+        "`levels[0]` maps each value of the attribute to a broader value, `levels[1]` maps each of those to a "
+        "still broader one, and so on; each level must cover every value the previous level produces. Values "
+        "are strings (write numbers in quotes).\n\n"
+        "Under `person`, the keys of `levels[0]` are the attribute's declared domain: list every possible value "
+        "(mapping a value to itself declares it without generalising), because the values present in the data "
+        "are private; data holding a value outside the domain are refused. Under `edge`, a value missing from "
+        "`levels[0]` is refused only if it sits in a cell too small to release.\n\n"
+        "TOML also allows each level as a table of its own, one value per line (`aggpub draft-policy` writes "
+        "this form):\n\n"
+        "```toml\n[[grouping.hierarchies.age_band.levels]]\n\"0-4\" = \"0-9\"\n\"5-9\" = \"0-9\"\n\n"
+        "[[grouping.hierarchies.age_band.levels]]   # the next step\n\"0-9\" = \"0-19\"\n```",
+        allowed_doc="tables value -> broader value, each level covering the values of the one before",
+        example='[grouping]\nattributes = ["age_band", "neighbourhood"]\nmin_size = 20\n\n'
+        '[grouping.hierarchies.age_band]\n# 5-year bands -> 10-year bands -> 20-year bands\n'
+        'levels = [\n  { "0-4" = "0-9", "5-9" = "0-9", "10-14" = "10-19", "15-19" = "10-19" },\n'
+        '  { "0-9" = "0-19", "10-19" = "0-19" },\n]\n'),
+    # ---------------------------------------------------------------- components
+    *_component_keys("supernode_sizes", True, "release the size of each supernode",
+                     "Under `person` it must stay enabled: the noisy sizes bound the superedge counts."),
+    *_component_keys("superedge_counts", True, "release the noisy contact counts of every cell"),
+    PolicyKey(
+        "components.superedge_counts", "method", "string", "auto", "how the cells are noised: dense, sparse or auto",
+        "`dense`: every cell gets noise and is released, zeros included.\n\n"
+        "`sparse`: noisy values are drawn for the non-zero cells and, without touching every empty cell, for the "
+        "empty cells whose noise passes `sparse_threshold`; cells below the threshold are not released "
+        "(Cormode, Procopiuc, Srivastava, Tran, ICDT 2012). Same distribution as dense-then-threshold.\n\n"
+        "`auto`: dense below `sparse_above_cells` cells, sparse from there.",
+        '[components.superedge_counts]\nmethod = "sparse"\n',
+        choices=SUPEREDGE_METHODS),
+    PolicyKey(
+        "components.superedge_counts", "sparse_threshold", "number", None,
+        "sparse release: noisy cells below this value are not released",
+        "Rounded up to an integer (noisy counts are integers). By default the smallest threshold that keeps, in "
+        "expectation, at most about one empty cell per supernode, computed from public values only (the number "
+        "of cells and supernodes and epsilon). Lower keeps more true and more false cells.",
+        '[components.superedge_counts]\nmethod = "sparse"\nsparse_threshold = 3.0\n',
+        range=Range(0, None, low_open=True),
+        default_doc="computed from the number of cells, supernodes and the noise scale"),
+    PolicyKey(
+        "components.superedge_counts", "sparse_above_cells", "integer", 10_000_000,
+        "method `auto`: switch to the sparse release from this many cells",
+        "The number of cells is `n * (n + 1) / 2` for `n` supernodes, a public value.",
+        "[components.superedge_counts]\nsparse_above_cells = 1000000\n",
+        range=Range(1, None)),
+    *_component_keys("degree_histograms", False, "release a noisy degree histogram per supernode"),
+    PolicyKey(
+        "components.degree_histograms", "max_degree", "integer", 50,
+        "public cap of the histograms: the top bin counts `max_degree` contacts or more",
+        "A public choice, not read from the data. Bins `0 .. max_degree`; a larger cap gives more bins, each "
+        "with its own noise.",
+        "[components.degree_histograms]\nenabled = true\nmax_degree = 40\n",
+        range=Range(1, None)),
+    *_component_keys("weight_totals", False, "release noisy clipped weight totals per cell"),
+    PolicyKey(
+        "components.weight_totals", "column", "string", None, "the edge column holding each contact's weight",
+        "A numeric column of the edge file, e.g. a duration in minutes; weights must be finite and "
+        "non-negative. Must agree with `input.weight` or `--weight-column` if those are set.",
+        '[components.weight_totals]\nenabled = true\ncolumn = "minutes"\nclip = 120\n',
+        nonempty=True,
+        needed_when=When("enabled", (True,), "weight totals need the edge weight column and the clip bound")),
+    PolicyKey(
+        "components.weight_totals", "clip", "integer", None, "each contact's weight is clipped to `[0, clip]`",
+        "The L1 sensitivity of the totals (times `max_contacts` under `person`): a larger clip keeps long "
+        "contacts whole and adds more noise.",
+        '[components.weight_totals]\nenabled = true\ncolumn = "minutes"\nclip = 120\n',
+        range=Range(1, None),
+        needed_when=When("enabled", (True,), "weight totals need the edge weight column and the clip bound")),
+    # ---------------------------------------------------------------- ledger
+    PolicyKey(
+        "ledger", "path", "path", REQUIRED, "the ledger file (SQLite), relative to the policy file's folder",
+        "Created on first use. Use one ledger file per dataset and keep it with the dataset's records: the "
+        "ledger is the only thing that keeps repeated releases of the same people bounded. Its entries are "
+        "hash-chained; `aggpub ledger FILE` verifies and lists them.",
+        '[ledger]\npath = "quennet-vale.ledger"\ndataset = "quennet-vale-contacts-2026"\nlifetime_epsilon = 3.0\n',
+        nonempty=True),
+    PolicyKey(
+        "ledger", "dataset", "string", REQUIRED, "the identifier of the dataset whose releases add up",
+        "Name the people, not the release: every release of the same people uses the same identifier.",
+        '[ledger]\npath = "quennet-vale.ledger"\ndataset = "quennet-vale-contacts-2026"\nlifetime_epsilon = 3.0\n',
+        nonempty=True),
+    PolicyKey(
+        "ledger", "lifetime_epsilon", "number", REQUIRED, "the most epsilon all releases of the dataset may spend",
+        "The sum agreed with the governance board. A release whose epsilon would take the total above it is "
+        "refused before any noise is drawn.",
+        '[ledger]\npath = "quennet-vale.ledger"\ndataset = "quennet-vale-contacts-2026"\nlifetime_epsilon = 3.0\n',
+        range=Range(0, None, low_open=True)),
+    # ---------------------------------------------------------------- gate
+    PolicyKey(
+        "gate", "max_degree_ks", "number", None,
+        "largest allowed Kolmogorov-Smirnov distance of the degree distribution",
+        "Between the true degree distribution and the one the release implies: the noisy degree histograms if "
+        "they are released, else the distribution implied by sampling graphs uniformly from the released "
+        "supernode sizes and superedge counts. 0 to 1; lower is stricter.",
+        "[gate]\nmax_degree_ks = 0.1\n",
+        range=Range(0, None)),
+    PolicyKey(
+        "gate", "max_degree_wasserstein", "number", None,
+        "largest allowed Wasserstein-1 distance of the degree distribution",
+        "In contacts per person: the average number of contacts by which the released degree distribution "
+        "must be moved to match the true one.",
+        "[gate]\nmax_degree_wasserstein = 2.0\n",
+        range=Range(0, None)),
+    PolicyKey(
+        "gate", "max_contact_matrix_median_relative_error", "number", None,
+        "largest allowed median relative error of the contact matrix",
+        "Over the cells of the contact matrix by `contact_matrix_attribute` (contacts between the values of "
+        "one attribute, summed from the superedge cells).",
+        "[gate]\nmax_contact_matrix_median_relative_error = 0.1\n",
+        range=Range(0, None)),
+    PolicyKey(
+        "gate", "max_superedge_median_relative_error", "number", None,
+        "largest allowed median relative error of the superedge cells",
+        "Over every superedge cell; the relative error of a cell is `|released - true| / max(true, s)` with a "
+        "small sanity bound `s`.",
+        "[gate]\nmax_superedge_median_relative_error = 0.5\n",
+        range=Range(0, None)),
+    PolicyKey(
+        "gate", "contact_matrix_attribute", "string", None, "the attribute of the gated contact matrix",
+        "One of `grouping.attributes`.",
+        '[gate]\nmax_contact_matrix_median_relative_error = 0.1\ncontact_matrix_attribute = "age_band"\n',
+        default_doc="the first of `grouping.attributes`", allowed_doc="one of `grouping.attributes`"),
+    # ---------------------------------------------------------------- input
+    PolicyKey("input", "source", "string", "source", "edge column of the first person of a contact", "",
+              '[input]\nsource = "person_a"\n', nonempty=True),
+    PolicyKey("input", "target", "string", "target", "edge column of the second person of a contact", "",
+              '[input]\ntarget = "person_b"\n', nonempty=True),
+    PolicyKey("input", "node", "string", "node", "person-file column holding the person id",
+              "Ids are text; CSV ids are read verbatim (`007` stays `007`).",
+              '[input]\nnode = "resident_id"\n', nonempty=True),
+    PolicyKey("input", "weight", "string", None, "edge column holding each contact's weight",
+              "Read only when weight totals are enabled; duplicate rows of a contact have their weights summed.",
+              '[input]\nweight = "minutes"\n', nonempty=True),
+    PolicyKey("input", "drop_unknown", "boolean", False,
+              "drop edges naming people missing from the person file instead of refusing the input",
+              "The number of rows dropped is reported, never the ids.",
+              "[input]\ndrop_unknown = true\n"),
+)
+
+_KEYS: dict[tuple[str, str], PolicyKey] = {(k.section, k.name): k for k in POLICY_KEYS}
+_KEYS_BY_SECTION: dict[str, tuple[PolicyKey, ...]] = {
+    s.name: tuple(k for k in POLICY_KEYS if k.section == s.name) for s in POLICY_SECTIONS}
+_SECTION_NAMES = tuple(s.name for s in POLICY_SECTIONS)
+
+
+def policy_key(path: str) -> PolicyKey:
+    """The table entry of a key by its dotted name (``"privacy.epsilon"``)."""
+    section, _, name = path.rpartition(".")
+    try:
+        return _KEYS[(section, name)]
+    except KeyError:
+        raise KeyError(path) from None
+
+
+def _subsections(section: str) -> tuple[str, ...]:
+    """Names of the tables directly inside ``section`` (``"hierarchies"`` in ``grouping``)."""
+    if not section:
+        return tuple(s for s in _SECTION_NAMES if s and "." not in s)
+    prefix = f"{section}."
+    return tuple(dict.fromkeys(s[len(prefix):].split(".")[0] for s in _SECTION_NAMES if s.startswith(prefix)))
+
+
+def _known_names(section: str) -> list[str]:
+    return [k.name for k in _KEYS_BY_SECTION[section]] + list(_subsections(section))
+
+
+def _attr_of(section: str, key: str) -> str:
+    return _KEYS[(section, key)].field
+
+
+def _default(section: str, name: str):
+    return _KEYS[(section, name)].python_default()
+
+
+# --------------------------------------------------------------------------- values: type and range
+
+
+def _typename(value):
+    if value is None:
+        return "nothing"
+    return {str: "a string", bool: "a boolean", int: "an integer", float: "a number",
+            list: "a list", tuple: "a list", dict: "a table"}.get(type(value), type(value).__name__)
+
+
+def _convert(key: PolicyKey, value, path: str | None = None):
+    """``value`` checked against the key's type, range and choices; normalised (int -> float, list -> tuple)."""
+    path = path or key.path
+    kind = key.kind
+    if kind == "number":
+        if isinstance(value, bool) or not isinstance(value, numbers.Real):
+            raise PolicyError(f"'{path}' must be a number, got {_typename(value)} {value!r}")
+        value = float(value)
+    elif kind == "integer":
+        if isinstance(value, bool) or not isinstance(value, numbers.Integral):
+            raise PolicyError(f"'{path}' must be an integer, got {_typename(value)} {value!r}")
+        value = int(value)
+    elif kind == "boolean":
+        if not isinstance(value, bool):
+            raise PolicyError(f"'{path}' must be true or false, got {_typename(value)} {value!r}")
+    elif kind == "string":
+        if not isinstance(value, str):
+            raise PolicyError(f"'{path}' must be a string, got {_typename(value)} {value!r}")
+    elif kind == "strings":
+        if not isinstance(value, (list, tuple)) or not all(isinstance(v, str) for v in value):
+            raise PolicyError(f"'{path}' must be a list of strings, got {_typename(value)} {value!r}")
+        value = tuple(value)
+    elif kind == "path":
+        if not isinstance(value, (str, os.PathLike)):
+            raise PolicyError(f"'{path}' must be a string (a path), got {_typename(value)} {value!r}")
+        if key.nonempty and not str(value).strip():
+            raise PolicyError(f"'{path}' must not be empty")
+        value = Path(value)
+    else:  # pragma: no cover - the table only uses the kinds above
+        raise AssertionError(kind)
+    if key.range is not None and not key.range.holds(value):
+        raise PolicyError(f"'{path}' {key.range.message(kind)}, got {value!r}")
+    if key.choices and value not in key.choices:
+        raise PolicyError(f"'{path}' must be one of " + ", ".join(repr(o) for o in key.choices) + f", got {value!r}")
+    if key.nonempty and kind == "string" and not value.strip():
+        raise PolicyError(f"'{path}' must not be empty")
+    return value
+
+
+def check_value(path: str, value):
+    """``value`` checked against the table entry of key ``path`` (type, range, choices), normalised.
+
+    Raises
+    ------
+    PolicyError
+        Naming the key and the value received.
+    """
+    return _convert(policy_key(path), value)
+
+
+def _validate_fields(obj, section: str, keys=None) -> None:
+    """Check and normalise every field of a section's dataclass against the table, then its rules."""
+    keys = _KEYS_BY_SECTION[section] if keys is None else keys
+    not_given = set()
+    for key in keys:
+        value = getattr(obj, key.field)
+        if value is None:
+            not_given.add(key.name)
+        if value is None and isinstance(key.default, Depends):
+            value = key.default.resolve(obj, section)
+        elif value is None and key.default is not None and key.default is not REQUIRED:
+            value = key.default
+        if value is None:
+            if key.required:
+                raise PolicyError(f"missing key '{key.path}'")
+        else:
+            value = _convert(key, value)
+        object.__setattr__(obj, key.field, value)
+    for key in keys:
+        value = getattr(obj, key.field)
+        unset = value is None or (key.kind == "strings" and not value)
+        if key.needed_when is not None and key.needed_when.holds(obj, section) and unset:
+            reason = f": {key.needed_when.reason}" if key.needed_when.reason else ""
+            if key.name in not_given:
+                raise PolicyError(f"missing key '{key.path}'{reason}")
+            raise PolicyError(f"'{key.path}' must not be empty{reason}")
+        if key.only_when is not None and not unset and not key.only_when.holds(obj, section):
+            other = getattr(obj, _attr_of(section, key.only_when.key))
+            raise PolicyError(f"'{key.path}' only applies when {key.only_when.text(section)}, "
+                              f"not {_toml_literal(other)}")
+    for rule in POLICY_RULES:
+        if rule.section == section:
+            rule.check(obj)
 
 
 # --------------------------------------------------------------------------- dataclasses
@@ -51,9 +768,12 @@ EPSILON_WARN_ABOVE = 10.0
 class PrivacyPolicy:
     """``[privacy]``: the neighbouring relation and the total epsilon of one release."""
 
-    unit: str = "edge"
-    epsilon: float = 1.0
-    max_contacts: int | None = None
+    unit: str = _default("privacy", "unit")
+    epsilon: float = _default("privacy", "epsilon")
+    max_contacts: int | None = _default("privacy", "max_contacts")
+
+    def __post_init__(self):
+        _validate_fields(self, "privacy")
 
 
 @dataclass(frozen=True)
@@ -63,24 +783,34 @@ class GroupingPolicy:
     ``hierarchies`` maps an attribute to its generalisation levels; each level is
     a mapping from a value to its coarser value. ``merge_order`` lists the
     attributes in the order their hierarchies are climbed (default: the reverse
-    of ``attributes``, so the last attribute is generalised first).
+    of ``attributes``, so the last attribute is generalised first; a partial
+    order is completed that way when the policy is built).
     """
 
-    method: str = "attributes"
-    attributes: tuple[str, ...] = ()
-    min_size: int = 20
+    method: str = _default("grouping", "method")
+    attributes: tuple[str, ...] = _default("grouping", "attributes")
+    min_size: int = _default("grouping", "min_size")
     hierarchies: Mapping[str, tuple[Mapping[str, str], ...]] = field(default_factory=dict)
-    merge_order: tuple[str, ...] = ()
-    epsilon_share: float = 0.0  # share of the release epsilon spent on a private grouping
-    tiers: int = 8  # structure grouping: number of degree tiers
-    rounds: int = 0  # structure grouping: profile refinement rounds
-    map_path: Path | None = None  # method "given": CSV/Parquet with node, supernode
+    merge_order: tuple[str, ...] = _default("grouping", "merge_order")
+    epsilon_share: float = _default("grouping", "epsilon_share")  # None: the table's default for the method
+    tiers: int = _default("grouping", "tiers")  # structure grouping: number of degree tiers
+    rounds: int = _default("grouping", "rounds")  # structure grouping: profile refinement rounds
+    map_path: Path | None = _default("grouping", "map")  # method "given": CSV/Parquet with node, supernode
     seed_note: str = ""
+
+    def __post_init__(self):
+        _validate_fields(self, "grouping")
 
 
 @dataclass(frozen=True)
 class ComponentPolicy:
-    """One released component: switch, share of epsilon and its own options."""
+    """One released component: switch, share of epsilon and its own options.
+
+    Only the options of the component named ``name`` may differ from their
+    defaults (``max_degree`` for degree histograms, ``column`` and ``clip`` for
+    weight totals, ``method``, ``sparse_threshold`` and ``sparse_above_cells``
+    for superedge counts); unset options take the table's defaults.
+    """
 
     name: str
     enabled: bool
@@ -88,9 +818,23 @@ class ComponentPolicy:
     max_degree: int | None = None  # degree histograms: public cap (top bin = cap or more)
     column: str | None = None  # weight totals: the edge weight column
     clip: int | None = None  # weight totals: weights clipped to [0, clip]
-    method: str = "auto"  # superedge counts: dense, sparse or auto
+    method: str = _default("components.superedge_counts", "method")  # superedge counts: dense, sparse or auto
     sparse_threshold: float | None = None  # sparse release: noisy cells below are dropped
-    sparse_above_cells: int = 10_000_000  # auto switches to sparse from this many cells
+    sparse_above_cells: int = _default("components.superedge_counts", "sparse_above_cells")
+
+    def __post_init__(self):
+        if self.name not in COMPONENT_NAMES:
+            raise PolicyError(f"unknown component '{self.name}'{closest_name(self.name, COMPONENT_NAMES)}; "
+                              "one of " + ", ".join(COMPONENT_NAMES))
+        section = f"components.{self.name}"
+        own = {k.field for k in _KEYS_BY_SECTION[section]}
+        for f in dataclasses.fields(self):
+            if f.name in ("name",) or f.name in own:
+                continue
+            if getattr(self, f.name) != f.default:
+                raise PolicyError(f"'{section}' has no key '{f.name}' (it belongs to another component), "
+                                  f"got {getattr(self, f.name)!r}")
+        _validate_fields(self, section)
 
 
 @dataclass(frozen=True)
@@ -101,6 +845,15 @@ class ComponentsPolicy:
     superedge_counts: ComponentPolicy
     degree_histograms: ComponentPolicy
     weight_totals: ComponentPolicy
+
+    def __post_init__(self):
+        for name in COMPONENT_NAMES:
+            c = getattr(self, name)
+            if not isinstance(c, ComponentPolicy) or c.name != name:
+                raise PolicyError(f"'components.{name}' must be a ComponentPolicy named '{name}', got {c!r}")
+        for rule in POLICY_RULES:
+            if rule.section == "components":
+                rule.check(self)
 
     def all(self) -> tuple[ComponentPolicy, ...]:
         return (self.supernode_sizes, self.superedge_counts, self.degree_histograms, self.weight_totals)
@@ -113,6 +866,9 @@ class LedgerPolicy:
     path: Path
     dataset: str
     lifetime_epsilon: float
+
+    def __post_init__(self):
+        _validate_fields(self, "ledger")
 
 
 @dataclass(frozen=True)
@@ -128,21 +884,36 @@ class GatePolicy:
     max_superedge_median_relative_error: float | None = None
     contact_matrix_attribute: str | None = None  # default: first grouping attribute
 
+    def __post_init__(self):
+        _validate_fields(self, "gate")
+
 
 @dataclass(frozen=True)
 class InputPolicy:
     """``[input]``: column names of the input files (command-line options override)."""
 
-    source: str = "source"
-    target: str = "target"
-    node: str = "node"
-    weight: str | None = None
-    drop_unknown: bool = False
+    source: str = _default("input", "source")
+    target: str = _default("input", "target")
+    node: str = _default("input", "node")
+    weight: str | None = _default("input", "weight")
+    drop_unknown: bool = _default("input", "drop_unknown")
+
+    def __post_init__(self):
+        _validate_fields(self, "input")
+
+
+_SECTION_CLASSES = {"privacy": PrivacyPolicy, "grouping": GroupingPolicy, "components": ComponentsPolicy,
+                    "ledger": LedgerPolicy, "gate": GatePolicy, "input": InputPolicy}
 
 
 @dataclass(frozen=True)
 class ReleasePolicy:
-    """A whole release policy."""
+    """A whole release policy.
+
+    Building one checks each section's type and the rules that tie sections
+    together (:data:`POLICY_RULES` of section ``""``); each section checked its
+    own keys when it was built.
+    """
 
     privacy: PrivacyPolicy
     grouping: GroupingPolicy
@@ -150,12 +921,165 @@ class ReleasePolicy:
     ledger: LedgerPolicy | None = None
     gate: GatePolicy = field(default_factory=GatePolicy)
     input: InputPolicy = field(default_factory=InputPolicy)
-    title: str = ""
+    title: str = _default("", "title")
     source_path: Path | None = None
 
+    def __post_init__(self):
+        for name, cls in _SECTION_CLASSES.items():
+            value = getattr(self, name)
+            if name == "ledger" and value is None:
+                continue
+            if not isinstance(value, cls):
+                raise PolicyError(f"'{name}' must be a {cls.__name__}, got {_typename(value)}")
+        if self.source_path is not None and not isinstance(self.source_path, Path):
+            object.__setattr__(self, "source_path", Path(self.source_path))
+        _validate_fields(self, "")
+
     def replace(self, **changes) -> "ReleasePolicy":
-        """A copy with some top-level sections replaced."""
+        """A copy with some top-level sections replaced (checked like a new policy)."""
         return dataclasses.replace(self, **changes)
+
+
+# --------------------------------------------------------------------------- rules tying keys together
+
+POLICY_RULES: list[PolicyRule] = []
+
+
+def _rule(section: str, text: str):
+    def register(fn):
+        POLICY_RULES.append(PolicyRule(section, text, fn))
+        return fn
+    return register
+
+
+@_rule("grouping", "`attributes` lists each attribute once.")
+def _attributes_once(g: GroupingPolicy):
+    if len(set(g.attributes)) != len(g.attributes):
+        raise PolicyError("'grouping.attributes' lists an attribute twice")
+
+
+@_rule("grouping", "`merge_order` names only attributes of `attributes`, each once; the attributes it leaves out "
+                   "follow, last attribute first.")
+def _merge_order(g: GroupingPolicy):
+    for a in g.merge_order:
+        if a not in g.attributes:
+            raise PolicyError(f"'grouping.merge_order' names '{a}', which is not in grouping.attributes"
+                              f"{closest_name(a, g.attributes)}")
+    if len(set(g.merge_order)) != len(g.merge_order):
+        raise PolicyError("'grouping.merge_order' lists an attribute twice")
+    full = tuple(g.merge_order) + tuple(a for a in reversed(g.attributes) if a not in g.merge_order)
+    object.__setattr__(g, "merge_order", full)
+
+
+@_rule("grouping", "`epsilon_share` is strictly between 0 and 1 for the methods `structure` and "
+                   "`attributes+structure`, and 0 for the others.")
+def _epsilon_share(g: GroupingPolicy):
+    if g.method in PRIVATE_GROUPING_METHODS and not (0 < g.epsilon_share < 1):
+        raise PolicyError(f"'grouping.epsilon_share' must be in (0, 1) for method '{g.method}', "
+                          f"got {g.epsilon_share!r}")
+    if g.method not in PRIVATE_GROUPING_METHODS and g.epsilon_share != 0.0:
+        raise PolicyError(f"'grouping.epsilon_share' only applies to private grouping methods, not '{g.method}', "
+                          f"got {g.epsilon_share!r}")
+
+
+@_rule("grouping", "Each `[grouping.hierarchies.<attribute>]` names one of `attributes`; its `levels` is a non-empty "
+                   "list of non-empty tables mapping strings to strings, each level covering every value the "
+                   "previous level produces.")
+def _hierarchies(g: GroupingPolicy):
+    if not isinstance(g.hierarchies, Mapping):
+        raise PolicyError(f"'grouping.hierarchies' must be a table attribute -> levels, got {_typename(g.hierarchies)}")
+    out = {}
+    for attr, levels in g.hierarchies.items():
+        if attr not in g.attributes:
+            raise PolicyError(f"unknown key 'grouping.hierarchies.{attr}': not one of grouping.attributes"
+                              f"{closest_name(attr, g.attributes)}")
+        out[attr] = _check_levels(levels, f"grouping.hierarchies.{attr}.levels")
+    object.__setattr__(g, "hierarchies", out)
+
+
+def _check_levels(levels, key):
+    """``levels = [ {fine = coarse, ...}, {coarse = coarser, ...} ]`` checked, as a tuple of dicts."""
+    if not isinstance(levels, (list, tuple)) or not levels:
+        raise PolicyError(f"'{key}' must be a non-empty list of tables value -> coarser value")
+    out = []
+    for i, level in enumerate(levels):
+        where = f"{key}[{i}]"
+        if not isinstance(level, Mapping) or not level:
+            raise PolicyError(f"'{where}' must be a non-empty table value -> coarser value")
+        for k, v in level.items():
+            if not isinstance(k, str):
+                raise PolicyError(f"'{where}' keys must be strings, got {_typename(k)}")
+            if not isinstance(v, str):
+                raise PolicyError(f"'{where}.{k}' must map to a string, got {_typename(v)}")
+        out.append(dict(level))
+    for i in range(1, len(out)):
+        missing = set(out[i - 1].values()) - set(out[i])
+        if missing:
+            raise PolicyError(f"'{key}[{i}]' does not cover {len(missing)} value(s) "
+                              f"of level {i - 1}: {sorted(missing)[:5]}")
+    return tuple(out)
+
+
+@_rule("components", "At least one of `superedge_counts`, `degree_histograms` and `weight_totals` is enabled.")
+def _one_component(c: ComponentsPolicy):
+    if not (c.superedge_counts.enabled or c.degree_histograms.enabled or c.weight_totals.enabled):
+        raise PolicyError("'components': at least one of superedge_counts, degree_histograms, "
+                          "weight_totals must be enabled")
+
+
+@_rule("", "Under unit `edge`, `components.supernode_sizes.share` is not set: the sizes are exact (public "
+           "grouping) or post-processing of a private grouping's noisy output.")
+def _sizes_share_under_edge(policy: ReleasePolicy):
+    if policy.privacy.unit == "edge" and policy.components.supernode_sizes.share is not None:
+        # public grouping: sensitivity 0; private grouping: the sizes are post-processing of its noisy
+        # output (already charged as 'grouping'). Either way a share here would be silently unused.
+        raise PolicyError("'components.supernode_sizes.share': under unit 'edge' the sizes are released "
+                          "exactly (public grouping, or post-processing of a private one); remove the share")
+
+
+@_rule("", "A disabled component has no `share` (it would go unused).")
+def _share_of_disabled(policy: ReleasePolicy):
+    for c in policy.components.all():
+        if c.share is not None and not c.enabled:
+            raise PolicyError(f"'components.{c.name}.share' is set but the component is not enabled; "
+                              "its share would go unused")
+
+
+@_rule("", "Under unit `person`, `components.supernode_sizes.enabled` is true: the noisy sizes bound the "
+           "superedge counts.")
+def _sizes_under_person(policy: ReleasePolicy):
+    if policy.privacy.unit == "person" and not policy.components.supernode_sizes.enabled:
+        raise PolicyError("'components.supernode_sizes.enabled' must be true under unit 'person': "
+                          "the noisy sizes are needed to bound the superedge counts")
+
+
+@_rule("", "When every budgeted component has a `share`, the shares and `grouping.epsilon_share` add up to 1; "
+           "when only some have one, they add up to less than 1 (the others split the rest equally).")
+def _shares_add_up(policy: ReleasePolicy):
+    budgeted = budgeted_components(policy)
+    shares = [c.share for c in budgeted if c.share is not None]
+    if shares and len(shares) == len(budgeted):
+        total = sum(shares) + policy.grouping.epsilon_share
+        if abs(total - 1.0) > 1e-9:
+            raise PolicyError(f"'components.*.share' and 'grouping.epsilon_share' must add up to 1, "
+                              f"got {total:g}")
+    elif shares and sum(shares) + policy.grouping.epsilon_share >= 1.0:
+        raise PolicyError("'components.*.share': the explicit shares leave nothing for the other components")
+
+
+@_rule("", "`gate.contact_matrix_attribute` is one of `grouping.attributes`.")
+def _gate_attribute(policy: ReleasePolicy):
+    attr = policy.gate.contact_matrix_attribute
+    if attr is not None and attr not in policy.grouping.attributes:
+        raise PolicyError(f"'gate.contact_matrix_attribute' must be one of grouping.attributes"
+                          f"{closest_name(attr, policy.grouping.attributes)}, got {attr!r}")
+
+
+def _check_cross_rules(policy: ReleasePolicy) -> None:
+    """The rules tying sections together (run when a :class:`ReleasePolicy` is built)."""
+    for rule in POLICY_RULES:
+        if rule.section == "":
+            rule.check(policy)
 
 
 # --------------------------------------------------------------------------- reading
@@ -198,30 +1122,73 @@ def read_policy(path) -> ReleasePolicy:
 
 
 def parse_policy(data: Mapping[str, Any], base_dir=None, source_path=None) -> ReleasePolicy:
-    """Build a :class:`ReleasePolicy` from decoded TOML (inputs validated here)."""
+    """Build a :class:`ReleasePolicy` from decoded TOML.
+
+    The keys are checked against :data:`POLICY_KEYS` here (unknown keys are
+    refused with the closest known key suggested, missing required keys are
+    named); types, ranges and rules are checked by the dataclasses as they are
+    built.
+    """
     base_dir = Path(base_dir) if base_dir is not None else Path.cwd()
     top = _Section(data, "")
-    top.check_keys({"title", "privacy", "grouping", "components", "ledger", "gate", "input"})
-    title = top.get("title", str, "")
-    privacy = _parse_privacy(top.section("privacy", required=True))
-    grouping = _parse_grouping(top.section("grouping", required=True), base_dir)
-    components = _parse_components(top.section("components"), privacy)
+    title_kw = _section_values(top, "", base_dir)
+    privacy = PrivacyPolicy(**_section_values(top.section("privacy", required=True), "privacy", base_dir))
+    grouping_sec = top.section("grouping", required=True)
+    grouping_kw = _section_values(grouping_sec, "grouping", base_dir)
+    hier_sec = grouping_sec.section("hierarchies")
+    if hier_sec is not None:
+        levels_section = "grouping.hierarchies.<attribute>"
+        hierarchies = {}
+        for attr in hier_sec.data:
+            sub = hier_sec.section(attr)
+            values = _section_values(sub, levels_section, base_dir)
+            hierarchies[attr] = values["levels"]
+        grouping_kw["hierarchies"] = hierarchies
+    grouping = GroupingPolicy(**grouping_kw)
+    comp_sec = top.section("components") or _Section({}, "components")
+    _section_values(comp_sec, "components", base_dir)  # checks the component names
+    components = ComponentsPolicy(**{
+        name: ComponentPolicy(name=name, **_section_values(
+            comp_sec.section(name) or _Section({}, comp_sec.key(name)), f"components.{name}", base_dir))
+        for name in COMPONENT_NAMES})
     ledger_sec = top.section("ledger")
-    ledger = _parse_ledger(ledger_sec, base_dir) if ledger_sec is not None else None
-    gate = _parse_gate(top.section("gate"))
-    input_policy = _parse_input(top.section("input"))
-    policy = ReleasePolicy(
-        privacy=privacy,
-        grouping=grouping,
-        components=components,
-        ledger=ledger,
-        gate=gate,
-        input=input_policy,
-        title=title,
-        source_path=Path(source_path) if source_path is not None else None,
-    )
-    _check_cross_rules(policy)
+    ledger = LedgerPolicy(**_section_values(ledger_sec, "ledger", base_dir)) if ledger_sec is not None else None
+    gate_sec = top.section("gate")
+    gate = GatePolicy(**_section_values(gate_sec, "gate", base_dir)) if gate_sec is not None else GatePolicy()
+    input_sec = top.section("input")
+    input_policy = InputPolicy(**_section_values(input_sec, "input", base_dir)) if input_sec is not None \
+        else InputPolicy()
+    policy = ReleasePolicy(privacy=privacy, grouping=grouping, components=components, ledger=ledger, gate=gate,
+                           input=input_policy, source_path=Path(source_path) if source_path is not None else None,
+                           **title_kw)
+    if policy.privacy.epsilon > EPSILON_WARN_ABOVE:
+        warnings.warn(
+            f"privacy.epsilon = {policy.privacy.epsilon:g} is above {EPSILON_WARN_ABOVE:g}: the guarantee is weak",
+            stacklevel=2,
+        )
     return policy
+
+
+def _section_values(sec: "_Section", section: str, base_dir: Path) -> dict:
+    """The keyword arguments of a section's dataclass: keys checked, paths resolved.
+
+    An absent optional key is passed as ``None`` ("not set"): the dataclass fills
+    in the table's default, so TOML and Python get the same defaults.
+    """
+    sec.check_keys(_known_names(section))
+    out = {}
+    for key in _KEYS_BY_SECTION[section]:
+        path = sec.key(key.name)
+        if key.name not in sec.data:
+            if key.required:
+                raise PolicyError(f"missing key '{path}'")
+            out[key.field] = None
+            continue
+        value = sec.data[key.name]
+        if key.kind == "path":
+            value = base_dir / _convert(key, value, path)
+        out[key.field] = value
+    return out
 
 
 class _Section:
@@ -248,258 +1215,8 @@ class _Section:
             return None
         return _Section(self.data[name], self.key(name))
 
-    def get(self, name, kind, default=..., check=None, hint=""):
-        if name not in self.data:
-            if default is ...:
-                raise PolicyError(f"missing key '{self.key(name)}'{hint}")
-            return default
-        value = self.data[name]
-        value = _coerce(value, kind, self.key(name))
-        if check is not None:
-            message = check(value)
-            if message:
-                raise PolicyError(f"'{self.key(name)}' {message}, got {value!r}")
-        return value
 
-
-def _typename(value):
-    return {str: "a string", bool: "a boolean", int: "an integer", float: "a number",
-            list: "a list", dict: "a table"}.get(type(value), type(value).__name__)
-
-
-def _coerce(value, kind, key):
-    if kind is float:
-        if isinstance(value, bool) or not isinstance(value, (int, float)):
-            raise PolicyError(f"'{key}' must be a number, got {_typename(value)} {value!r}")
-        return float(value)
-    if kind is int:
-        if isinstance(value, bool) or not isinstance(value, int):
-            raise PolicyError(f"'{key}' must be an integer, got {_typename(value)} {value!r}")
-        return value
-    if kind is bool:
-        if not isinstance(value, bool):
-            raise PolicyError(f"'{key}' must be true or false, got {_typename(value)} {value!r}")
-        return value
-    if kind is str:
-        if not isinstance(value, str):
-            raise PolicyError(f"'{key}' must be a string, got {_typename(value)} {value!r}")
-        return value
-    if kind == "strlist":
-        if not isinstance(value, list) or not all(isinstance(v, str) for v in value):
-            raise PolicyError(f"'{key}' must be a list of strings, got {_typename(value)} {value!r}")
-        return tuple(value)
-    raise AssertionError(kind)
-
-
-def _positive_finite(v):
-    if not math.isfinite(v) or v <= 0:
-        return "must be a finite number > 0"
-    return None
-
-
-def _share(v):
-    if not math.isfinite(v) or not 0 < v <= 1:
-        return "must be a number in (0, 1]"
-    return None
-
-
-def _at_least(n):
-    return lambda v: None if v >= n else f"must be >= {n}"
-
-
-def _one_of(options):
-    return lambda v: None if v in options else "must be one of " + ", ".join(repr(o) for o in options)
-
-
-def _parse_privacy(sec: _Section) -> PrivacyPolicy:
-    sec.check_keys({"unit", "epsilon", "max_contacts"})
-    unit = sec.get("unit", str, "edge", check=_one_of(PRIVACY_UNITS))
-    epsilon = sec.get("epsilon", float, check=_positive_finite)
-    if epsilon > EPSILON_WARN_ABOVE:
-        warnings.warn(
-            f"privacy.epsilon = {epsilon:g} is above {EPSILON_WARN_ABOVE:g}: the guarantee is weak",
-            stacklevel=2,
-        )
-    max_contacts = sec.get("max_contacts", int, None, check=_at_least(1))
-    if unit == "person" and max_contacts is None:
-        raise PolicyError(
-            "missing key 'privacy.max_contacts': unit 'person' needs the promised cap on contacts per person"
-        )
-    if unit == "edge" and max_contacts is not None:
-        raise PolicyError("'privacy.max_contacts' only applies to unit 'person'")
-    return PrivacyPolicy(unit=unit, epsilon=epsilon, max_contacts=max_contacts)
-
-
-def _parse_grouping(sec: _Section, base_dir: Path) -> GroupingPolicy:
-    sec.check_keys({"method", "attributes", "min_size", "hierarchies", "merge_order",
-                    "epsilon_share", "tiers", "rounds", "map"})
-    method = sec.get("method", str, "attributes", check=_one_of(GROUPING_METHODS))
-    needs_attrs = method in ("attributes", "attributes+structure")
-    attributes = sec.get("attributes", "strlist", () if not needs_attrs else ...)
-    if needs_attrs and not attributes:
-        raise PolicyError(f"'grouping.attributes' must name at least one attribute for method '{method}'")
-    if len(set(attributes)) != len(attributes):
-        raise PolicyError("'grouping.attributes' lists an attribute twice")
-    min_size = sec.get("min_size", int, check=_at_least(1))
-    hier_sec = sec.section("hierarchies")
-    hierarchies = {}
-    if hier_sec is not None:
-        hier_sec.check_keys(set(attributes))
-        for attr, spec in hier_sec.data.items():
-            hierarchies[attr] = _parse_hierarchy(_Section(spec, hier_sec.key(attr)))
-    merge_order = sec.get("merge_order", "strlist", ())
-    for a in merge_order:
-        if a not in attributes:
-            raise PolicyError(f"'grouping.merge_order' names '{a}', which is not in grouping.attributes"
-                              f"{closest_name(a, attributes)}")
-    if len(set(merge_order)) != len(merge_order):
-        raise PolicyError("'grouping.merge_order' lists an attribute twice")
-    if not merge_order:
-        merge_order = tuple(reversed(attributes))
-    else:
-        merge_order = tuple(merge_order) + tuple(a for a in reversed(attributes) if a not in merge_order)
-    private_method = method in ("structure", "attributes+structure")
-    epsilon_share = sec.get("epsilon_share", float, 0.3 if private_method else 0.0)
-    if private_method and not (0 < epsilon_share < 1):
-        raise PolicyError(f"'grouping.epsilon_share' must be in (0, 1) for method '{method}', got {epsilon_share!r}")
-    if not private_method and epsilon_share != 0.0:
-        raise PolicyError(f"'grouping.epsilon_share' only applies to private grouping methods, not '{method}'")
-    tiers = sec.get("tiers", int, 8, check=_at_least(1))
-    rounds = sec.get("rounds", int, 0, check=_at_least(0))
-    map_value = sec.get("map", str, None)
-    if method == "given" and map_value is None:
-        raise PolicyError("missing key 'grouping.map': method 'given' needs the public person -> supernode map")
-    map_path = (base_dir / map_value) if map_value else None
-    return GroupingPolicy(method=method, attributes=tuple(attributes), min_size=min_size,
-                          hierarchies=hierarchies, merge_order=merge_order, epsilon_share=epsilon_share,
-                          tiers=tiers, rounds=rounds, map_path=map_path)
-
-
-def _parse_hierarchy(sec: _Section):
-    """``levels = [ {fine = coarse, ...}, {coarse = coarser, ...} ]``."""
-    sec.check_keys({"levels"})
-    levels = sec.data.get("levels")
-    if not isinstance(levels, list) or not levels:
-        raise PolicyError(f"'{sec.key('levels')}' must be a non-empty list of tables value -> coarser value")
-    out = []
-    for i, level in enumerate(levels):
-        key = f"{sec.key('levels')}[{i}]"
-        if not isinstance(level, Mapping) or not level:
-            raise PolicyError(f"'{key}' must be a non-empty table value -> coarser value")
-        for k, v in level.items():
-            if not isinstance(v, str):
-                raise PolicyError(f"'{key}.{k}' must map to a string, got {_typename(v)}")
-        out.append(dict(level))
-    for i in range(1, len(out)):
-        missing = set(out[i - 1].values()) - set(out[i])
-        if missing:
-            raise PolicyError(f"'{sec.key('levels')}[{i}]' does not cover {len(missing)} value(s) "
-                              f"of level {i - 1}: {sorted(missing)[:5]}")
-    return tuple(out)
-
-
-_COMPONENT_KEYS = {
-    "supernode_sizes": {"enabled", "share"},
-    "superedge_counts": {"enabled", "share", "method", "sparse_threshold", "sparse_above_cells"},
-    "degree_histograms": {"enabled", "share", "max_degree"},
-    "weight_totals": {"enabled", "share", "column", "clip"},
-}
-
-
-def _parse_components(sec: _Section | None, privacy: PrivacyPolicy) -> ComponentsPolicy:
-    data = sec if sec is not None else _Section({}, "components")
-    data.check_keys(set(_COMPONENT_KEYS))
-    parsed = {}
-    for name, keys in _COMPONENT_KEYS.items():
-        sub = data.section(name) or _Section({}, data.key(name))
-        sub.check_keys(keys)
-        default_on = name == "superedge_counts" or (name == "supernode_sizes")
-        enabled = sub.get("enabled", bool, default_on)
-        share = sub.get("share", float, None, check=_share)
-        kwargs = {}
-        if name == "degree_histograms":
-            kwargs["max_degree"] = sub.get("max_degree", int, 50, check=_at_least(1))
-        if name == "weight_totals":
-            kwargs["column"] = sub.get("column", str, None)
-            kwargs["clip"] = sub.get("clip", int, None, check=_at_least(1))
-            if enabled and (kwargs["column"] is None or kwargs["clip"] is None):
-                raise PolicyError(f"'{sub.key('column')}' and '{sub.key('clip')}' are required "
-                                  "when weight totals are enabled")
-        if name == "superedge_counts":
-            kwargs["method"] = sub.get("method", str, "auto", check=_one_of(("auto", "dense", "sparse")))
-            kwargs["sparse_threshold"] = sub.get("sparse_threshold", float, None, check=_positive_finite)
-            kwargs["sparse_above_cells"] = sub.get("sparse_above_cells", int, 10_000_000, check=_at_least(1))
-        parsed[name] = ComponentPolicy(name=name, enabled=enabled, share=share, **kwargs)
-    if not parsed["superedge_counts"].enabled and not parsed["degree_histograms"].enabled \
-            and not parsed["weight_totals"].enabled:
-        raise PolicyError("'components': at least one of superedge_counts, degree_histograms, "
-                          "weight_totals must be enabled")
-    return ComponentsPolicy(**parsed)
-
-
-def _parse_ledger(sec: _Section, base_dir: Path) -> LedgerPolicy:
-    sec.check_keys({"path", "dataset", "lifetime_epsilon"})
-    path = sec.get("path", str)
-    dataset = sec.get("dataset", str, check=lambda v: None if v.strip() else "must not be empty")
-    lifetime = sec.get("lifetime_epsilon", float, check=_positive_finite)
-    return LedgerPolicy(path=(base_dir / path), dataset=dataset, lifetime_epsilon=lifetime)
-
-
-def _parse_gate(sec: _Section | None) -> GatePolicy:
-    if sec is None:
-        return GatePolicy()
-    keys = {f.name for f in dataclasses.fields(GatePolicy)}
-    sec.check_keys(keys)
-    values = {}
-    for f in dataclasses.fields(GatePolicy):
-        if f.name == "contact_matrix_attribute":
-            values[f.name] = sec.get(f.name, str, None)
-        else:
-            values[f.name] = sec.get(f.name, float, None,
-                                     check=lambda v: None if math.isfinite(v) and v >= 0 else
-                                     "must be a finite number >= 0")
-    return GatePolicy(**values)
-
-
-def _parse_input(sec: _Section | None) -> InputPolicy:
-    if sec is None:
-        return InputPolicy()
-    sec.check_keys({"source", "target", "node", "weight", "drop_unknown"})
-    return InputPolicy(
-        source=sec.get("source", str, "source"),
-        target=sec.get("target", str, "target"),
-        node=sec.get("node", str, "node"),
-        weight=sec.get("weight", str, None),
-        drop_unknown=sec.get("drop_unknown", bool, False),
-    )
-
-
-def _check_cross_rules(policy: ReleasePolicy) -> None:
-    comps = policy.components
-    if policy.privacy.unit == "edge" and comps.supernode_sizes.share is not None:
-        # public grouping: sensitivity 0; private grouping: the sizes are post-processing of its noisy
-        # output (already charged as 'grouping'). Either way a share here would be silently unused.
-        raise PolicyError("'components.supernode_sizes.share': under unit 'edge' the sizes are released "
-                          "exactly (public grouping, or post-processing of a private one); remove the share")
-    for c in comps.all():
-        if c.share is not None and not c.enabled:
-            raise PolicyError(f"'components.{c.name}.share' is set but the component is not enabled; "
-                              "its share would go unused")
-    if policy.privacy.unit == "person" and not comps.supernode_sizes.enabled:
-        raise PolicyError("'components.supernode_sizes.enabled' must be true under unit 'person': "
-                          "the noisy sizes are needed to bound the superedge counts")
-    shares = [c.share for c in budgeted_components(policy) if c.share is not None]
-    if shares and len(shares) == len(budgeted_components(policy)):
-        total = sum(shares) + policy.grouping.epsilon_share
-        if abs(total - 1.0) > 1e-9:
-            raise PolicyError(f"'components.*.share' and 'grouping.epsilon_share' must add up to 1, "
-                              f"got {total:g}")
-    elif shares and sum(shares) + policy.grouping.epsilon_share >= 1.0:
-        raise PolicyError("'components.*.share': the explicit shares leave nothing for the other components")
-    if policy.gate.contact_matrix_attribute is not None and \
-            policy.gate.contact_matrix_attribute not in policy.grouping.attributes:
-        raise PolicyError(f"'gate.contact_matrix_attribute' must be one of grouping.attributes"
-                          f"{closest_name(policy.gate.contact_matrix_attribute, policy.grouping.attributes)}")
+# --------------------------------------------------------------------------- the budget split
 
 
 def budgeted_components(policy: ReleasePolicy) -> list[ComponentPolicy]:
@@ -564,3 +1281,192 @@ def policy_to_dict(policy: ReleasePolicy) -> dict:
     d = conv(policy)
     d.pop("source_path", None)
     return d
+
+
+# --------------------------------------------------------------------------- the reference (docs/policy.md)
+
+#: A complete policy using every section; the reference shows it and the tests parse it.
+EXAMPLE_POLICY = '''\
+# Release policy for the contact survey of the invented town of Quennet Vale.
+title = "Quennet Vale contacts: open research release"
+
+[privacy]
+unit = "edge"            # one contact between two residents is protected
+epsilon = 1.0            # total for this release, shared by the components below
+
+[grouping]
+method = "attributes"    # public attributes only: supernode sizes need no budget
+attributes = ["age_band", "neighbourhood"]
+min_size = 20            # every supernode stands for at least 20 residents
+merge_order = ["neighbourhood", "age_band"]   # give up place detail before age detail
+
+[grouping.hierarchies.age_band]
+# 5-year bands -> 10-year bands -> 20-year bands
+levels = [
+  { "0-4" = "0-9", "5-9" = "0-9", "10-14" = "10-19", "15-19" = "10-19", "20-24" = "20-29", "25-29" = "20-29", "30-34" = "30-39", "35-39" = "30-39", "40-44" = "40-49", "45-49" = "40-49", "50-54" = "50-59", "55-59" = "50-59", "60-64" = "60-69", "65-69" = "60-69", "70-74" = "70-79", "75-79" = "70-79", "80+" = "80+" },
+  { "0-9" = "0-19", "10-19" = "0-19", "20-29" = "20-39", "30-39" = "20-39", "40-49" = "40-59", "50-59" = "40-59", "60-69" = "60-79", "70-79" = "60-79", "80+" = "80+" },
+]
+
+[grouping.hierarchies.neighbourhood]
+# neighbourhood -> zone
+levels = [
+  { "Alderquay" = "Millward", "Brackenholt" = "Millward", "Cinder Row" = "Millward", "Dovecote Green" = "Northreach", "Emberlea" = "Northreach", "Fennick Heights" = "Northreach", "Gorsemoor" = "Southmere", "Hollin Cross" = "Southmere", "Ivywick" = "Southmere", "Juniper Flats" = "Eastling", "Kestrel Bank" = "Eastling", "Loomside" = "Eastling" },
+]
+
+[components.supernode_sizes]
+enabled = true           # exact and free under unit "edge"
+
+[components.superedge_counts]
+share = 0.5              # half of epsilon: contacts within and between supernodes
+method = "auto"          # dense below 10 million cells, sparse above
+
+[components.degree_histograms]
+enabled = true
+share = 0.3
+max_degree = 40          # public cap; the top bin counts "40 or more"
+
+[components.weight_totals]
+enabled = true
+share = 0.2
+column = "minutes"       # contact duration
+clip = 120               # each contact counts for at most 120 minutes
+
+[ledger]
+path = "quennet-vale.ledger"          # one ledger file per dataset, relative to this file
+dataset = "quennet-vale-contacts-2026"
+lifetime_epsilon = 3.0                # all releases of these people together
+
+[gate]
+max_degree_ks = 0.10
+max_contact_matrix_median_relative_error = 0.25
+contact_matrix_attribute = "age_band"
+
+[input]
+source = "source"
+target = "target"
+node = "node"
+weight = "minutes"
+drop_unknown = false
+'''
+
+
+def _default_text(key: PolicyKey) -> str:
+    if key.default_doc:
+        return key.default_doc
+    if key.required:
+        return "required"
+    if isinstance(key.default, Depends):
+        return key.default.text(key.section)
+    if key.default is None:
+        return "not set"
+    return f"`{_toml_literal(key.default)}`"
+
+
+def _allowed_text(key: PolicyKey) -> str:
+    parts = []
+    if key.choices:
+        parts.append(", ".join(f"`{_toml_literal(c)}`" for c in key.choices))
+    if key.range is not None:
+        parts.append(key.range.text() + (" (finite)" if key.kind == "number" else ""))
+    if key.nonempty:
+        parts.append("not empty")
+    if key.allowed_doc:
+        parts.append(key.allowed_doc)
+    if key.kind == "boolean":
+        parts.append("`true`, `false`")
+    if key.needed_when is not None:
+        parts.append(f"required when {key.needed_when.text(key.section)}")
+    if key.only_when is not None:
+        parts.append(f"only when {key.only_when.text(key.section)}")
+    return "; ".join(parts) or "any"
+
+
+def _cell(text: str) -> str:
+    return text.replace("|", "\\|").replace("\n", " ")
+
+
+def _section_title(name: str) -> str:
+    return "Top level" if not name else f"`[{name}]`"
+
+
+def policy_reference(keys=None, sections=None, rules=None) -> str:
+    """The Markdown reference of every policy section, key and rule (the text of ``docs/policy.md``).
+
+    Parameters
+    ----------
+    keys, sections, rules : sequence, optional
+        The tables to document (default: :data:`POLICY_KEYS`, :data:`POLICY_SECTIONS`,
+        :data:`POLICY_RULES` as they are when called).
+
+    Returns
+    -------
+    str
+        Markdown: the sections, a table of all keys, each key's type, default,
+        allowed values, meaning, explanation and example, the rules, the complete
+        :data:`EXAMPLE_POLICY` and the starting policy's notes
+        (:data:`aggpub.starter.STARTER_REFERENCE`). ``scripts/policy_reference.py``
+        prints, writes or checks it.
+    """
+    from .starter import STARTER_REFERENCE
+
+    keys = POLICY_KEYS if keys is None else tuple(keys)
+    sections = POLICY_SECTIONS if sections is None else tuple(sections)
+    rules = POLICY_RULES if rules is None else list(rules)
+    by_section = {s.name: [k for k in keys if k.section == s.name] for s in sections}
+
+    out = [
+        "# Release policy reference",
+        "",
+        "<!-- Generated from the key table in aggpub/policy.py by `python scripts/policy_reference.py > "
+        "docs/policy.md`. Do not edit by hand: the test suite regenerates this file and compares. -->",
+        "",
+        "A release policy is a TOML file (UTF-8) that states what one release protects and spends, how people "
+        "are grouped into supernodes, which components are released, the lifetime ledger and the utility gate. "
+        "`aggpub release --policy FILE` reads it strictly: an unknown key is refused with the closest known key "
+        "suggested (`unknown key 'privacy.epsilom' (did you mean 'epsilon'?)`), and a wrong type or a value out "
+        "of range is refused naming the key and the value received (exit code 4). Relative paths are resolved "
+        "against the policy file's folder. The same checks run when the policy objects are built in Python "
+        "(`aggpub.policy.ReleasePolicy` and its sections).",
+        "",
+        "`aggpub draft-policy` writes a commented starting policy for your person file and attributes (see "
+        "[Starting policy](#starting-policy-aggpub-draft-policy) below).",
+        "",
+        "## Sections",
+        "",
+        "| section | required | what it holds |",
+        "|---|---|---|",
+    ]
+    for s in sections:
+        out.append(f"| {_section_title(s.name)} | {'yes' if s.required else 'no'} | {_cell(s.meaning)} |")
+    out += ["", "## All keys", "", "| key | type | default | allowed | meaning |", "|---|---|---|---|---|"]
+    for k in keys:
+        out.append(f"| `{k.path}` | {KINDS[k.kind]} | {_cell(_default_text(k))} | {_cell(_allowed_text(k))} "
+                   f"| {_cell(k.meaning)} |")
+    for s in sections:
+        out += ["", f"## {_section_title(s.name)}", "", s.meaning, ""]
+        if s.details:
+            out += [s.details, ""]
+        own_rules = [r for r in rules if r.section == s.name and s.name]
+        if own_rules:
+            out += ["Rules checked for this section:", ""] + [f"- {r.text}" for r in own_rules] + [""]
+        for k in by_section[s.name]:
+            out += [f"### `{k.path}`", "",
+                    f"- type: {KINDS[k.kind]}",
+                    f"- default: {_default_text(k)}",
+                    f"- allowed: {_allowed_text(k)}",
+                    f"- meaning: {k.meaning}", ""]
+            if k.details:
+                out += [k.details, ""]
+            if k.example:
+                out += ["```toml", k.example.rstrip("\n"), "```", ""]
+        if not by_section[s.name]:
+            subs = [x.name for x in sections if x.name.startswith(f"{s.name}.")]
+            out += ["No keys of its own; its tables: " + ", ".join(f"`[{x}]`" for x in subs) + ".", ""]
+    out += ["## Rules across sections", "",
+            "Checked when the whole policy is built, after each section has checked its own keys:", ""]
+    out += [f"- {r.text}" for r in rules if r.section == ""]
+    out += ["", "## A complete example", "",
+            "Every section, for the invented town of Quennet Vale (`aggpub demo` writes its people and contacts):",
+            "", "```toml", EXAMPLE_POLICY.rstrip("\n"), "```", ""]
+    out.append(STARTER_REFERENCE.rstrip("\n"))
+    return "\n".join(out).rstrip("\n") + "\n"
