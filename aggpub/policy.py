@@ -36,6 +36,7 @@ __all__ = [
     "LedgerPolicy",
     "GatePolicy",
     "InputPolicy",
+    "AssumptionsPolicy",
     "read_policy",
     "parse_policy",
     "policy_to_dict",
@@ -343,10 +344,20 @@ POLICY_SECTIONS: tuple[PolicySection, ...] = (
         "name it in every policy that releases that dataset. `aggpub ledger FILE` lists the spends."),
     PolicySection(
         "gate", "Utility thresholds a release must meet before it is published.",
-        "Each threshold is compared with a figure of the confidential audit (released against true values). "
-        "A release that misses one is not published (exit code 6); its budget stays charged because the "
-        "noise was drawn. Unset thresholds are not checked. The pass/fail outcome depends on the true network, "
-        "so set thresholds to catch a release that would mislead, not to retry until one passes."),
+        "Each threshold is compared with the error a researcher should expect from the noise, judged only on "
+        "values that are already public: before any noise, predicted from the policy, the public inputs and "
+        "`[assumptions]` (`aggpub plan`; a release expected to fail is refused uncharged, exit code 6); after "
+        "the noise, estimated from the released values and the known law of their noise (a release that "
+        "misses a threshold is not published, exit code 6, and its budget stays charged because the noise was "
+        "drawn). The decision never reads the true network, so it is covered by the guarantee; the "
+        "confidential audit's true-against-released figures decide nothing. Unset thresholds are not checked."),
+    PolicySection(
+        "assumptions", "Public planning figures the pre-flight may use to predict the gate.",
+        "The contacts are private and are never read before the noise, so the pre-flight (`aggpub plan`, and "
+        "the check `aggpub release` makes before drawing any noise) needs a public figure for how many "
+        "contacts to expect; under unit `person` also for how many people. Take them from public facts (the "
+        "study design, a published survey), never from this data. Without them the relative errors and degree "
+        "distances are not predicted, and only the gate on the released values judges them."),
     PolicySection(
         "input", "Column names of the input files.",
         "Command-line options (`--source-column`, `--target-column`, `--node-column`, `--weight-column`, "
@@ -583,30 +594,33 @@ POLICY_KEYS: tuple[PolicyKey, ...] = (
     PolicyKey(
         "gate", "max_degree_ks", "number", None,
         "largest allowed Kolmogorov-Smirnov distance of the degree distribution",
-        "Between the true degree distribution and the one the release implies: the noisy degree histograms if "
+        "The mean distance between the degree distribution the release implies (the noisy degree histograms if "
         "they are released, else the distribution implied by sampling graphs uniformly from the released "
-        "supernode sizes and superedge counts. 0 to 1; lower is stricter.",
+        "supernode sizes and superedge counts) and copies of it re-noised with the same law: the distance the "
+        "noise adds. 0 to 1; lower is stricter.",
         "[gate]\nmax_degree_ks = 0.1\n",
         range=Range(0, None)),
     PolicyKey(
         "gate", "max_degree_wasserstein", "number", None,
         "largest allowed Wasserstein-1 distance of the degree distribution",
-        "In contacts per person: the average number of contacts by which the released degree distribution "
-        "must be moved to match the true one.",
+        "In contacts per person, measured like `max_degree_ks` (release against re-noised copies of itself): "
+        "how far the noise moves the degree distribution.",
         "[gate]\nmax_degree_wasserstein = 2.0\n",
         range=Range(0, None)),
     PolicyKey(
         "gate", "max_contact_matrix_median_relative_error", "number", None,
         "largest allowed median relative error of the contact matrix",
-        "Over the cells of the contact matrix by `contact_matrix_attribute` (contacts between the values of "
-        "one attribute, summed from the superedge cells).",
+        "Over the entries of the contact matrix by `contact_matrix_attribute` (contacts between the values of "
+        "one attribute, summed from the superedge cells): the expected absolute noise of the entry (exact law "
+        "of a sum of discrete Laplace draws) over its released (unbiased) value, with a sanity bound of 0.1% "
+        "of the released contacts.",
         "[gate]\nmax_contact_matrix_median_relative_error = 0.1\n",
         range=Range(0, None)),
     PolicyKey(
         "gate", "max_superedge_median_relative_error", "number", None,
         "largest allowed median relative error of the superedge cells",
-        "Over every superedge cell; the relative error of a cell is `|released - true| / max(true, s)` with a "
-        "small sanity bound `s`.",
+        "Over every superedge cell: the expected absolute noise `E|Z|` over `max(released, s)`, the released "
+        "value being the unbiased (unclamped) count and `s` a sanity bound of 0.1% of the released contacts.",
         "[gate]\nmax_superedge_median_relative_error = 0.5\n",
         range=Range(0, None)),
     PolicyKey(
@@ -614,6 +628,24 @@ POLICY_KEYS: tuple[PolicyKey, ...] = (
         "One of `grouping.attributes`.",
         '[gate]\nmax_contact_matrix_median_relative_error = 0.1\ncontact_matrix_attribute = "age_band"\n',
         default_doc="the first of `grouping.attributes`", allowed_doc="one of `grouping.attributes`"),
+    # ---------------------------------------------------------------- assumptions
+    PolicyKey(
+        "assumptions", "contacts_per_person", "number", None,
+        "expected contacts per person, a public planning figure for the pre-flight",
+        "Used only to predict the gate before any noise (`aggpub plan` and the pre-flight of `aggpub release`): "
+        "the predicted contacts are spread over the supernode pairs in proportion to their possible pairs. "
+        "Take it from the study design or a published survey (for example the daily contacts reported by "
+        "Mossong et al., PLoS Medicine 2008), never from this data.",
+        "[assumptions]\ncontacts_per_person = 11.0\n",
+        range=Range(0, None, low_open=True)),
+    PolicyKey(
+        "assumptions", "people", "integer", None,
+        "expected number of people, a public planning figure for the pre-flight under unit `person`",
+        "Under unit `person` the person file is private and is not read before the noise: the pre-flight "
+        "spreads this many people evenly over the declared attribute domains. Take it from a census or the "
+        "study's sampling frame. Under unit `edge` the person table is public and this key is not needed.",
+        "[assumptions]\npeople = 30000\n",
+        range=Range(1, None)),
     # ---------------------------------------------------------------- input
     PolicyKey("input", "source", "string", "source", "edge column of the first person of a contact", "",
               '[input]\nsource = "person_a"\n', nonempty=True),
@@ -889,6 +921,17 @@ class GatePolicy:
 
 
 @dataclass(frozen=True)
+class AssumptionsPolicy:
+    """``[assumptions]``: public planning figures the pre-flight may use (never read from the data)."""
+
+    contacts_per_person: float | None = None
+    people: int | None = None
+
+    def __post_init__(self):
+        _validate_fields(self, "assumptions")
+
+
+@dataclass(frozen=True)
 class InputPolicy:
     """``[input]``: column names of the input files (command-line options override)."""
 
@@ -903,7 +946,8 @@ class InputPolicy:
 
 
 _SECTION_CLASSES = {"privacy": PrivacyPolicy, "grouping": GroupingPolicy, "components": ComponentsPolicy,
-                    "ledger": LedgerPolicy, "gate": GatePolicy, "input": InputPolicy}
+                    "ledger": LedgerPolicy, "gate": GatePolicy, "assumptions": AssumptionsPolicy,
+                    "input": InputPolicy}
 
 
 @dataclass(frozen=True)
@@ -922,6 +966,7 @@ class ReleasePolicy:
     gate: GatePolicy = field(default_factory=GatePolicy)
     input: InputPolicy = field(default_factory=InputPolicy)
     title: str = _default("", "title")
+    assumptions: AssumptionsPolicy = field(default_factory=AssumptionsPolicy)
     source_path: Path | None = None
 
     def __post_init__(self):
@@ -1155,11 +1200,15 @@ def parse_policy(data: Mapping[str, Any], base_dir=None, source_path=None) -> Re
     ledger = LedgerPolicy(**_section_values(ledger_sec, "ledger", base_dir)) if ledger_sec is not None else None
     gate_sec = top.section("gate")
     gate = GatePolicy(**_section_values(gate_sec, "gate", base_dir)) if gate_sec is not None else GatePolicy()
+    assumptions_sec = top.section("assumptions")
+    assumptions = AssumptionsPolicy(**_section_values(assumptions_sec, "assumptions", base_dir)) \
+        if assumptions_sec is not None else AssumptionsPolicy()
     input_sec = top.section("input")
     input_policy = InputPolicy(**_section_values(input_sec, "input", base_dir)) if input_sec is not None \
         else InputPolicy()
     policy = ReleasePolicy(privacy=privacy, grouping=grouping, components=components, ledger=ledger, gate=gate,
-                           input=input_policy, source_path=Path(source_path) if source_path is not None else None,
+                           input=input_policy, assumptions=assumptions,
+                           source_path=Path(source_path) if source_path is not None else None,
                            **title_kw)
     if policy.privacy.epsilon > EPSILON_WARN_ABOVE:
         warnings.warn(
@@ -1254,13 +1303,12 @@ def epsilon_shares(policy: ReleasePolicy) -> dict[str, float]:
     if policy.grouping.epsilon_share:
         out["grouping"] = total * policy.grouping.epsilon_share
     names = list(shares)
-    for name in names[:-1]:
-        out[name] = total * shares[name]
     if names:  # the last share takes what is left, so the spends never add up above the total
-        last = total - sum(out.values())
-        while sum(out.values()) + last > total:
-            last = math.nextafter(last, 0.0)
-        out[names[-1]] = last
+        from .budget import split_epsilon
+
+        leading = [out["grouping"]] if "grouping" in out else []
+        parts = split_epsilon(total, leading + [total * shares[name] for name in names[:-1]])
+        out.update(zip(names, parts[len(leading):]))
     return out
 
 
@@ -1340,6 +1388,9 @@ lifetime_epsilon = 3.0                # all releases of these people together
 max_degree_ks = 0.10
 max_contact_matrix_median_relative_error = 0.25
 contact_matrix_attribute = "age_band"
+
+[assumptions]
+contacts_per_person = 11.0            # public planning figure (the study design), for the pre-flight
 
 [input]
 source = "source"

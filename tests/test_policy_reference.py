@@ -140,7 +140,7 @@ def test_every_dataclass_field_is_a_documented_key():
     internal = {("GroupingPolicy", "seed_note"), ("GroupingPolicy", "hierarchies"), ("ComponentPolicy", "name"),
                 ("ReleasePolicy", "source_path")}
     sections = {P.PrivacyPolicy: "privacy", P.GroupingPolicy: "grouping", P.LedgerPolicy: "ledger",
-                P.GatePolicy: "gate", P.InputPolicy: "input"}
+                P.GatePolicy: "gate", P.InputPolicy: "input", P.AssumptionsPolicy: "assumptions"}
     for cls, section in sections.items():
         for f in dataclasses.fields(cls):
             if (cls.__name__, f.name) in internal:
@@ -148,7 +148,7 @@ def test_every_dataclass_field_is_a_documented_key():
             key = next(k for k in P.POLICY_KEYS if k.section == section and k.field == f.name)
             assert key.path in documented
     for f in dataclasses.fields(P.ReleasePolicy):
-        if f.name in {"privacy", "grouping", "components", "ledger", "gate", "input"}:
+        if f.name in {"privacy", "grouping", "components", "ledger", "gate", "input", "assumptions"}:
             assert f"## `[{f.name}]`" in text
         elif ("ReleasePolicy", f.name) not in internal:
             assert f.name in documented

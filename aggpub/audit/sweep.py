@@ -330,7 +330,8 @@ def _read_once(policy, edges, people, progress, *, engine, memory_limit, debug, 
 
     progress("reading edges and people (once for the whole sweep)")
     unweighted = policy.replace(components=dataclasses.replace(
-        policy.components, weight_totals=dataclasses.replace(policy.components.weight_totals, enabled=False)))
+        policy.components, weight_totals=dataclasses.replace(policy.components.weight_totals, enabled=False,
+                                                             share=None)))
     return load_policy_inputs(unweighted, edges, people, source=source, target=target, node=node,
                               drop_unknown=drop_unknown, debug=debug,
                               engine=make_engine(engine, **({"memory_limit": memory_limit} if memory_limit else {})))
