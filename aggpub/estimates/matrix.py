@@ -50,8 +50,10 @@ discrete Laplace draws (and of sums of ``n`` i.i.d. draws, which are differences
 of two negative binomial variables). Where all weights are integers (a raw view,
 a sum of raw cells) its law is computed exactly on the integer grid
 (:func:`aggpub.researcher.sum_noise_pmf`); for the least-squares estimates the
-weights are real, and the interval is the Monte Carlo quantile of the exact
-noise law (post-processing: it draws from the *known* law and reads no data).
+weights are real, and the interval is the Monte Carlo quantile of the known
+noise law (post-processing: it draws from the *known* law and reads no data);
+with very many groups of supernode cells the least important ones are drawn as
+one Gaussian vector of the same covariance (:meth:`ConsistentEstimate.noise_draws`).
 
 References
 ----------
@@ -72,10 +74,10 @@ from __future__ import annotations
 
 __all__ = ["FineTable", "ViewRelease", "ConsistentEstimate", "consistent_estimates", "possible_values_from_labels",
            "possible_values_from_people", "contact_matrix", "contact_matrix_square", "RESIDUAL",
-           "MAX_VIEW_CELLS", "MAX_BLOCK_ATOMS"]
+           "MAX_VIEW_CELLS", "MAX_BLOCK_ATOMS", "MAX_EXACT_GROUPS"]
 
 import math
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 
 import numpy as np
 import pyarrow as pa
@@ -127,9 +129,9 @@ def possible_values_from_labels(labels, domain, hierarchy=None) -> np.ndarray:
 
     Parameters
     ----------
-    labels : sequence of str or None
-        The attribute's value in each supernode's label; ``None`` when the
-        attribute is not a grouping attribute (every value possible).
+    labels : sequence of str
+        The attribute's value in each supernode's label. (An attribute outside
+        the grouping allows every value: ``np.ones((G, K), bool)``.)
     domain : sequence of str
         The attribute's values, in code order.
     hierarchy : sequence of mapping, optional
@@ -142,8 +144,6 @@ def possible_values_from_labels(labels, domain, hierarchy=None) -> np.ndarray:
     """
     domain = [str(x) for x in domain]
     k = len(domain)
-    if labels is None:
-        raise ValueError("'labels' is None: pass the number of supernodes through np.ones((G, K), bool)")
     labels = [str(x) for x in labels]
     cover = {v: {i} for i, v in enumerate(domain)}
     current = list(domain)
@@ -362,7 +362,21 @@ class ConsistentEstimate:
 
     Built by :func:`consistent_estimates`; read the estimates with :meth:`view`,
     the supernode cells with :meth:`fine`, variances with :meth:`variance` and
-    intervals with :meth:`half_widths`.
+    intervals with :meth:`half_widths` (or draws of the noise with
+    :meth:`noise_draws`). Queries are sparse matrices over the stacked view
+    cells (:meth:`query_matrix`).
+
+    Attributes
+    ----------
+    estimate : numpy.ndarray
+        Every view cell, views stacked in input order, layers within a view.
+    dim_free : int
+        Dimension of the null space ``Z`` (directions the supernode table cannot tell apart).
+    n_groups : int
+        Groups of interchangeable supernode cells.
+    draw_info : dict
+        After :meth:`noise_draws`: groups drawn exactly / as a Gaussian and the
+        largest share of a query's supernode-noise sd carried by a Gaussian-treated group.
     """
 
     def __init__(self, **kw):
