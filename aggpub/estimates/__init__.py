@@ -1,1 +1,14 @@
-"""Post-processing of released values: non-negative, consistent, unbiased estimates and their intervals."""
+"""Post-processing of released values (reads public tables only; costs no privacy budget).
+
+* :mod:`aggpub.estimates.consistency` -- clamping, isotonic regression and consistent histograms.
+* :mod:`aggpub.estimates.intervals` -- the exact law of sums of discrete Laplace noise, intervals
+  for sums of cells, cut-query masks.
+* :mod:`aggpub.estimates.supergraph` -- the release as a networkx graph of supernodes.
+* :mod:`aggpub.estimates.views` -- true view tables (contacts between values of an attribute,
+  optionally per layer), their sensitivities, one noisy release.
+* :mod:`aggpub.estimates.matrix` -- consistent estimates by generalised least squares over the
+  supernode table and the views, intervals, the contact matrix.
+
+The modules are imported where they are used (no eager imports here), so that a command
+pays only for what it needs.
+"""
