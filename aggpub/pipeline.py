@@ -109,7 +109,10 @@ def build_release(network: Network, policy: ReleasePolicy, *, seed: int | None =
     if ledger is not None:
         source = ChargeOnFirstDraw(source, ledger.charge)
     budget = ReleaseBudget(policy.privacy.epsilon)
-    epsilons = epsilon_shares(policy)
+    # the number of people is public under unit edge only (it decides whether an unset triangle_count is on)
+    epsilons = epsilon_shares(policy, network.n_people if policy.privacy.unit == "edge" else None)
+    if ledger is not None:  # the ledger records the split as released (charged at the first draw, below)
+        ledger.components = epsilons
     # A refusal on a private condition (the promised cap or domains broken) is charged like a release.
     on_refusal = ledger.charge if ledger is not None else None
     if policy.privacy.unit == "person":  # the promise D is checked on the data, never enforced by truncation

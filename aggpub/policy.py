@@ -46,6 +46,9 @@ __all__ = [
     "PRIVACY_UNITS",
     "GROUPING_METHODS",
     "COMPONENT_NAMES",
+    "EDGE_ONLY_COMPONENTS",
+    "TRIANGLE_AUTO_MAX_PEOPLE",
+    "component_enabled",
     "PolicyKey",
     "PolicySection",
     "PolicyRule",
@@ -79,7 +82,17 @@ PRIVACY_UNITS = ("edge", "person")
 GROUPING_METHODS = ("attributes", "structure", "attributes+structure", "given", "random")
 PRIVATE_GROUPING_METHODS = ("structure", "attributes+structure")
 ATTRIBUTE_GROUPING_METHODS = ("attributes", "attributes+structure")
-COMPONENT_NAMES = ("supernode_sizes", "superedge_counts", "degree_histograms", "weight_totals")
+COMPONENT_NAMES = ("supernode_sizes", "superedge_counts", "degree_histograms", "weight_totals", "degree_sequences",
+                   "triangle_count")
+#: Components on by default under unit ``edge`` only (no sensitivity is derived for them under ``person``).
+EDGE_ONLY_COMPONENTS = ("degree_sequences", "triangle_count")
+#: ``triangle_count`` is on by default (unit ``edge``) for up to this many people: counting triangles costs
+#: about the sum of squared degrees, so on larger networks it waits to be asked for. The number of people
+#: is public under ``edge``; the number of contacts is not, and nothing here reads it.
+TRIANGLE_AUTO_MAX_PEOPLE = 100_000
+#: Weight of each component in the split of the budget the explicit shares leave (see ``epsilon_shares``).
+SHARE_WEIGHTS = {"triangle_count": 1.0}
+DEFAULT_SHARE_WEIGHT = 2.0
 SUPEREDGE_METHODS = ("auto", "dense", "sparse")
 EPSILON_WARN_ABOVE = 10.0
 
@@ -337,6 +350,20 @@ POLICY_SECTIONS: tuple[PolicySection, ...] = (
         "Each contact's weight is clipped to `[0, clip]` and rounded; L1 sensitivity `clip` under `edge`, "
         "`max_contacts * clip` under `person`."),
     PolicySection(
+        "components.degree_sequences", "For each supernode, its members' numbers of contacts, sorted.",
+        "Every person's number of contacts, sorted within their supernode, with discrete Laplace noise on every "
+        "entry; L1 sensitivity 2 under `edge` (one contact raises two degrees by one, which moves two sorted "
+        "positions by one). The released estimates (an isotonic fit rescaled to the consistent superedge "
+        "estimates) give synthetic networks their degree heterogeneity (`aggpub sample`). Unit `edge` only: no "
+        "sensitivity is derived under `person`, where it is off and enabling it is refused."),
+    PolicySection(
+        "components.triangle_count", "The number of triangles of the whole network.",
+        "Released with the ladder mechanism (its noise follows the network's second largest number of contacts, "
+        "a width that is never published); synthetic networks are fitted to it so that they keep local "
+        "clustering. Unit `edge` only: no sensitivity is derived under `person`, where it is off and enabling "
+        "it is refused. Counting triangles costs about the sum of the squared numbers of contacts, so by "
+        f"default it is on only for up to {TRIANGLE_AUTO_MAX_PEOPLE:,} people (a public figure under `edge`)."),
+    PolicySection(
         "ledger", "The lifetime budget of one dataset, kept in a file across releases.",
         "Every release of the same people adds up: two releases at epsilon 1 are a release at epsilon 2. With "
         "this section, each release charges its total epsilon to the ledger before the first noise is drawn, "
@@ -366,10 +393,12 @@ POLICY_SECTIONS: tuple[PolicySection, ...] = (
 
 _SHARE_DETAILS = ("A fraction of `privacy.epsilon`. When every budgeted component has a share, the shares and "
                   "`grouping.epsilon_share` must add up to 1; otherwise the components without a share split "
-                  "what is left equally. A share on a disabled component is refused.")
+                  "what is left, `triangle_count` taking half the part of each other one (with nothing set under "
+                  "unit `edge`: superedge counts 0.4, degree sequences 0.4, triangle count 0.2). A share on a "
+                  "disabled component is refused.")
 
 
-def _component_keys(name, enabled, meaning_enabled, extra_details_enabled=""):
+def _component_keys(name, enabled, meaning_enabled, extra_details_enabled="", default_doc=""):
     section = f"components.{name}"
     share_example = {
         "supernode_sizes": '[privacy]\nunit = "person"\nepsilon = 2.0\nmax_contacts = 60\n\n'
@@ -379,6 +408,9 @@ def _component_keys(name, enabled, meaning_enabled, extra_details_enabled=""):
         "degree_histograms": "[components.superedge_counts]\nshare = 0.7\n\n"
                              "[components.degree_histograms]\nenabled = true\nshare = 0.3\n",
         "weight_totals": '[components.weight_totals]\nenabled = true\nshare = 0.5\ncolumn = "minutes"\nclip = 120\n',
+        "degree_sequences": "[components.superedge_counts]\nshare = 0.5\n\n[components.degree_sequences]\nshare = 0.4\n",
+        "triangle_count": "[components.superedge_counts]\nshare = 0.45\n\n[components.degree_sequences]\nshare = 0.45\n\n"
+                          "[components.triangle_count]\nshare = 0.1\n",
     }[name]
     share_details = _SHARE_DETAILS
     if name == "supernode_sizes":
@@ -393,7 +425,7 @@ def _component_keys(name, enabled, meaning_enabled, extra_details_enabled=""):
     return (
         PolicyKey(section, "enabled", "boolean", enabled, meaning_enabled,
                   extra_details_enabled or "At least one of superedge counts, degree histograms and weight totals "
-                  "must be enabled.", enabled_example),
+                  "must be enabled.", enabled_example, default_doc=default_doc),
         PolicyKey(section, "share", "number", None, "share of `privacy.epsilon` spent on this component",
                   share_details, share_example, range=Range(0, 1, low_open=True)),
     )
@@ -557,6 +589,23 @@ POLICY_KEYS: tuple[PolicyKey, ...] = (
         "[components.degree_histograms]\nenabled = true\nmax_degree = 40\n",
         range=Range(1, None)),
     *_component_keys("weight_totals", False, "release noisy clipped weight totals per cell"),
+    *_component_keys(
+        "degree_sequences", None, "release every supernode's noisy sorted degree sequence",
+        "On by default under unit `edge` (unless the explicit shares of the other components already use the "
+        "whole budget: a policy that splits the budget itself lists what it wants); off under `person`, where "
+        "`enabled = true` is refused (no sensitivity is derived there). Synthetic networks drawn from a release "
+        "without it give every member of a supernode the same expected number of contacts.",
+        default_doc="on under unit `edge` unless the explicit shares already add up to 1; off under `person`"),
+    *_component_keys(
+        "triangle_count", None, "release the noisy number of triangles (ladder mechanism)",
+        f"On by default under unit `edge` for networks of up to {TRIANGLE_AUTO_MAX_PEOPLE:,} people (unless the "
+        "explicit shares of the other components already use the whole budget); `enabled = true` switches it on "
+        "at any size (the count then costs time roughly in proportion to the sum of the squared numbers of "
+        "contacts). Off under `person`, where `enabled = true` is refused. Without it synthetic networks lose "
+        "most local clustering.",
+        default_doc=f"on under unit `edge` for up to {TRIANGLE_AUTO_MAX_PEOPLE:,} people (a public figure "
+                    "under `edge`) unless the explicit shares already add up to 1; off otherwise and under "
+                    "`person`"),
     PolicyKey(
         "components.weight_totals", "column", "string", None, "the edge column holding each contact's weight",
         "A numeric column of the edge file, e.g. a duration in minutes; weights must be finite and "
@@ -845,7 +894,7 @@ class ComponentPolicy:
     """
 
     name: str
-    enabled: bool
+    enabled: bool | None  # None: on or off by the rules of its key's default (degree sequences, triangle count)
     share: float | None = None
     max_degree: int | None = None  # degree histograms: public cap (top bin = cap or more)
     column: str | None = None  # weight totals: the edge weight column
@@ -877,8 +926,13 @@ class ComponentsPolicy:
     superedge_counts: ComponentPolicy
     degree_histograms: ComponentPolicy
     weight_totals: ComponentPolicy
+    degree_sequences: ComponentPolicy | None = None  # None: default (resolved with the privacy unit)
+    triangle_count: ComponentPolicy | None = None
 
     def __post_init__(self):
+        for name in EDGE_ONLY_COMPONENTS:
+            if getattr(self, name) is None:
+                object.__setattr__(self, name, ComponentPolicy(name, None))
         for name in COMPONENT_NAMES:
             c = getattr(self, name)
             if not isinstance(c, ComponentPolicy) or c.name != name:
@@ -888,7 +942,7 @@ class ComponentsPolicy:
                 rule.check(self)
 
     def all(self) -> tuple[ComponentPolicy, ...]:
-        return (self.supernode_sizes, self.superedge_counts, self.degree_histograms, self.weight_totals)
+        return tuple(getattr(self, name) for name in COMPONENT_NAMES)
 
 
 @dataclass(frozen=True)
@@ -1072,6 +1126,23 @@ def _one_component(c: ComponentsPolicy):
                           "weight_totals must be enabled")
 
 
+@_rule("", "Under unit `person`, `components.degree_sequences` and `components.triangle_count` are off and "
+           "`enabled = true` is refused (no sensitivity is derived for them there). Under unit `edge`, each of them "
+           "left unset is on, except when the explicit shares (with `grouping.epsilon_share`) already add up to 1; "
+           f"`triangle_count` then still waits for the number of people (on up to {TRIANGLE_AUTO_MAX_PEOPLE:,}).")
+def _edge_only_defaults(policy: ReleasePolicy):
+    if policy.privacy.unit == "edge":
+        return  # the defaults are resolved where they are read (component_enabled)
+    for name in EDGE_ONLY_COMPONENTS:
+        c = getattr(policy.components, name)
+        if c.enabled or c.share is not None:
+            what = {"degree_sequences": "sorted degree sequences", "triangle_count": "the triangle count"}[name]
+            key = "enabled" if c.enabled else "share"
+            raise PolicyError(f"'components.{name}.{key}' is set: no sensitivity is derived for {what} under unit "
+                              f"'{policy.privacy.unit}', so it cannot be released; remove the key (it is off under "
+                              "this unit) or release degree histograms instead")
+
+
 @_rule("", "Under unit `edge`, `components.supernode_sizes.share` is not set: the sizes are exact (public "
            "grouping) or post-processing of a private grouping's noisy output.")
 def _sizes_share_under_edge(policy: ReleasePolicy):
@@ -1085,7 +1156,7 @@ def _sizes_share_under_edge(policy: ReleasePolicy):
 @_rule("", "A disabled component has no `share` (it would go unused).")
 def _share_of_disabled(policy: ReleasePolicy):
     for c in policy.components.all():
-        if c.share is not None and not c.enabled:
+        if c.share is not None and c.enabled is False:
             raise PolicyError(f"'components.{c.name}.share' is set but the component is not enabled; "
                               "its share would go unused")
 
@@ -1268,11 +1339,38 @@ class _Section:
 # --------------------------------------------------------------------------- the budget split
 
 
-def budgeted_components(policy: ReleasePolicy) -> list[ComponentPolicy]:
+def component_enabled(policy: ReleasePolicy, name: str, n_people: int | None = None) -> bool:
+    """Whether component ``name`` is released (its ``enabled`` key, or the rules of its default).
+
+    ``degree_sequences`` and ``triangle_count`` left unset are on under unit ``edge``
+    (a ``share`` switches them on too) unless the explicit shares of the other
+    components and ``grouping.epsilon_share`` already add up to 1, and off under
+    ``person``; an unset ``triangle_count`` is on for up to
+    :data:`TRIANGLE_AUTO_MAX_PEOPLE` people. ``n_people`` is the number of people
+    (public under ``edge``); ``None`` before the person table is read (counted as on).
+    Everything here reads the policy and that public number only.
+    """
+    c = getattr(policy.components, name)
+    if c.enabled is not None:
+        return bool(c.enabled)
+    if name not in EDGE_ONLY_COMPONENTS or policy.privacy.unit != "edge":
+        return False
+    if c.share is not None:
+        return True
+    explicit = sum(o.share for o in policy.components.all()
+                   if o.share is not None and o.name not in EDGE_ONLY_COMPONENTS and o.enabled is not False)
+    if explicit + policy.grouping.epsilon_share >= 1.0 - 1e-9:
+        return False
+    if name == "triangle_count" and n_people is not None:
+        return int(n_people) <= TRIANGLE_AUTO_MAX_PEOPLE
+    return True
+
+
+def budgeted_components(policy: ReleasePolicy, n_people: int | None = None) -> list[ComponentPolicy]:
     """Enabled components that need a share of epsilon (sizes are free under edge + public grouping)."""
     out = []
     for c in policy.components.all():
-        if not c.enabled:
+        if not component_enabled(policy, c.name, n_people):
             continue
         if c.name == "supernode_sizes" and not sizes_need_budget(policy):
             continue
@@ -1285,20 +1383,23 @@ def sizes_need_budget(policy: ReleasePolicy) -> bool:
     return policy.privacy.unit == "person"
 
 
-def epsilon_shares(policy: ReleasePolicy) -> dict[str, float]:
+def epsilon_shares(policy: ReleasePolicy, n_people: int | None = None) -> dict[str, float]:
     """Epsilon of each budgeted component (and ``grouping`` if private), adding up to the total.
 
-    Components with an explicit ``share`` get it; the rest split what remains equally
-    (the documented default).
+    Components with an explicit ``share`` get it; the rest split what remains in
+    proportion to their weights (:data:`SHARE_WEIGHTS`: ``triangle_count`` 1, every
+    other component 2), the documented default. ``n_people`` decides whether an unset
+    ``triangle_count`` is on (:func:`component_enabled`; public under unit ``edge``).
     """
     total = policy.privacy.epsilon
-    comps = budgeted_components(policy)
+    comps = budgeted_components(policy, n_people)
     explicit = {c.name: c.share for c in comps if c.share is not None}
     rest = [c.name for c in comps if c.share is None]
     left = 1.0 - sum(explicit.values()) - policy.grouping.epsilon_share
+    weights = {name: SHARE_WEIGHTS.get(name, DEFAULT_SHARE_WEIGHT) for name in rest}
     shares = dict(explicit)
     for name in rest:
-        shares[name] = left / len(rest)
+        shares[name] = left * weights[name] / sum(weights.values())
     out = {}
     if policy.grouping.epsilon_share:
         out["grouping"] = total * policy.grouping.epsilon_share
@@ -1365,19 +1466,25 @@ levels = [
 enabled = true           # exact and free under unit "edge"
 
 [components.superedge_counts]
-share = 0.5              # half of epsilon: contacts within and between supernodes
+share = 0.35             # contacts within and between supernodes
 method = "auto"          # dense below 10 million cells, sparse above
 
 [components.degree_histograms]
 enabled = true
-share = 0.3
+share = 0.1
 max_degree = 40          # public cap; the top bin counts "40 or more"
 
 [components.weight_totals]
 enabled = true
-share = 0.2
+share = 0.1
 column = "minutes"       # contact duration
 clip = 120               # each contact counts for at most 120 minutes
+
+[components.degree_sequences]
+share = 0.3              # on by default under unit "edge": every supernode's sorted numbers of contacts
+
+[components.triangle_count]
+share = 0.15             # on by default under unit "edge" (up to 100,000 people): for clustering in samples
 
 [ledger]
 path = "quennet-vale.ledger"          # one ledger file per dataset, relative to this file

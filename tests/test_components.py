@@ -206,9 +206,14 @@ def test_all_components_release_and_bundle_check(unit, tmp_path):
     m = r.manifest
     names = [c["name"] for c in m["components"]]
     expected = ["superedge_counts", "degree_histograms", "weight_totals"]
-    assert names == (["supernode_sizes"] + expected if unit == "person" else expected)
+    # issue 12: under unit edge degree sequences and the triangle count are on by default (off under person)
+    assert names == (["supernode_sizes"] + expected if unit == "person"
+                     else expected + ["degree_sequences", "triangle_count"])
     for c in m["components"]:
         assert set(c) == {"name", "epsilon", "sensitivity", "mechanism", "scale"}
+        if c["name"] == "triangle_count":  # the ladder mechanism: rung score sensitivity 1, rung scale 2/epsilon
+            assert c["mechanism"] == "ladder" and c["scale"] == pytest.approx(2 / c["epsilon"])
+            continue
         assert c["mechanism"] == "discrete_laplace" and c["scale"] == pytest.approx(c["sensitivity"] / c["epsilon"])
         D = 40 if unit == "person" else None
         assert c["sensitivity"] == budget.sensitivity(unit, c["name"], max_contacts=D, clip=60)
@@ -331,7 +336,9 @@ clip = 30
 """)
     release, path = run_release(tmp_path / "policy.toml", tmp_path / "contacts.csv", tmp_path / "people.csv",
                                 tmp_path / "out", seed=2)
-    assert [c["name"] for c in release.manifest["components"]] == ["weight_totals"]
+    # issue 12: degree sequences and the triangle count are on by default under unit edge
+    assert [c["name"] for c in release.manifest["components"]] == ["weight_totals", "degree_sequences",
+                                                                     "triangle_count"]
     assert release.manifest["components"][0]["sensitivity"] == 30
     assert release.truth["weight_totals"].count.sum() > 0
     bundle = read_bundle(path)

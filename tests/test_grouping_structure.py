@@ -323,7 +323,8 @@ def test_given_map_joins_ids_and_notes_public_requirement(karate, tmp_path):
     labels = r.supernodes.column("map_supernode").to_pylist()
     assert [labels[g] for g in r.grouping.assignment] == club
     assert MAP_NOTE in r.manifest["grouping_notes"]
-    assert [c["name"] for c in r.manifest["components"]] == ["superedge_counts"]  # no budget charged
+    # no budget charged for the grouping (issue 12 adds degree sequences and the triangle count by default)
+    assert [c["name"] for c in r.manifest["components"]] == ["superedge_counts", "degree_sequences", "triangle_count"]
 
 
 @pytest.mark.parametrize("change, error, match", [

@@ -34,7 +34,9 @@ def test_minimal_policy(tmp_path):
     assert p.privacy.unit == "edge" and p.privacy.epsilon == 1.0
     assert p.grouping.attributes == ("age_band", "district")
     assert p.grouping.merge_order == ("district", "age_band")
-    assert epsilon_shares(p) == {"superedge_counts": 1.0}
+    # issue 12: under unit edge the plainest policy also releases degree sequences and the triangle count
+    assert epsilon_shares(p) == pytest.approx({"superedge_counts": 0.4, "degree_sequences": 0.4,
+                                               "triangle_count": 0.2})
 
 
 @pytest.mark.parametrize("text, key", [
@@ -127,7 +129,8 @@ def test_explicit_shares_must_add_up_to_one():
             "privacy": {"unit": "edge", "epsilon": 1.0},
             "grouping": {"attributes": ["a"], "min_size": 2},
             "components": {"superedge_counts": {"share": 0.5},
-                           "degree_histograms": {"enabled": True, "share": 0.3}},
+                           "degree_histograms": {"enabled": True, "share": 0.3},
+                           "degree_sequences": {"enabled": False}, "triangle_count": {"enabled": False}},
         })
 
 

@@ -220,8 +220,9 @@ def test_complete_example_parses_and_covers_every_section(tmp_path):
         if s.name:
             assert lookup(data, s.name.replace("<attribute>", "age_band")) is not None
     assert policy.ledger.path == tmp_path / "quennet-vale.ledger"
-    assert P.epsilon_shares(policy) == pytest.approx({"superedge_counts": 0.5, "degree_histograms": 0.3,
-                                                      "weight_totals": 0.2})
+    assert P.epsilon_shares(policy) == pytest.approx({"superedge_counts": 0.35, "degree_histograms": 0.1,
+                                                      "weight_totals": 0.1, "degree_sequences": 0.3,
+                                                      "triangle_count": 0.15})
 
 
 def test_rules_are_documented_and_each_can_fail(tmp_path):
@@ -239,8 +240,11 @@ def test_rules_are_documented_and_each_can_fail(tmp_path):
         {"components": {"degree_histograms": {"share": 0.5}}},
         {"privacy": {"unit": "person", "epsilon": 1.0, "max_contacts": 5},
          "components": {"supernode_sizes": {"enabled": False}}},
-        {"components": {"superedge_counts": {"share": 0.5}}},
+        {"components": {"superedge_counts": {"share": 0.5}, "degree_sequences": {"share": 0.3},
+                        "triangle_count": {"share": 0.1}}},
         {"gate": {"contact_matrix_attribute": "zone"}},
+        {"privacy": {"unit": "person", "epsilon": 1.0, "max_contacts": 5},
+         "components": {"triangle_count": {"enabled": True}}},
     ]
     assert len(breaking) == len(P.POLICY_RULES)
     for extra in breaking:

@@ -320,7 +320,8 @@ def test_auto_switches_at_sparse_above_cells():
     assert auto.manifest["superedges_sparse"] is True
     # default threshold rule: expected chance cells at most one per supernode
     t = auto.manifest["superedges_sparse_threshold"]
-    assert t == sparse.default_threshold(820, 40, -1.0)
+    eps = next(c["epsilon"] for c in auto.manifest["components"] if c["name"] == "superedge_counts")
+    assert t == sparse.default_threshold(820, 40, -eps)
 
 
 def test_check_flags_sparse_rows_below_the_threshold():

@@ -399,6 +399,7 @@ def render_html(audit: dict) -> str:
                              "(mean ± sd [5%, 95%])", "sampled from the release"], rows))
         parts.append(f'<p class="note">{html.escape(st["note"])}. Sampler: {html.escape(st["sampler"])}. '
                      "Assortativity by an attribute uses the attribute as the supernode labels state it.</p>")
+        parts += _fidelity_parts(st.get("fidelity"))
     else:
         parts.append(f"<p>Skipped: {html.escape(str(st.get('skipped', 'not run')))}.</p>")
 
@@ -490,3 +491,35 @@ def write_report(directory, audit: dict, *, overwrite: bool = False, bundle=None
 
     return write_folder(target, fill, overwrite=overwrite, what="report", own_files=(AUDIT_JSON, REPORT_HTML),
                         check=lambda: check_report_target(target, overwrite, bundle))
+
+
+#: The fidelity figures in the report's words (``aggpub.audit.fidelity.FIGURES``).
+_FIDELITY_LABELS = {
+    "contacts_ratio": "contacts (synthetic / true)",
+    "degree_ks": "degree distribution, KS distance (lower is better)",
+    "largest_degree_ratio": "largest degree (synthetic / true)",
+    "clustering_ratio": "average clustering (synthetic / true)",
+    "final_size_ratio": "epidemic final size (synthetic / true)",
+}
+
+
+def _fidelity_parts(fidelity) -> list:
+    """Section 4's table of fidelity figures: grouping alone against the release (CONFIDENTIAL figures)."""
+    if not fidelity:
+        return []
+    rows = []
+    for key, label in _FIDELITY_LABELS.items():
+        cells = []
+        for which in ("grouping_alone", "release"):
+            f = fidelity.get(which, {}).get(key, {})
+            cells.append(f"{_fmt(f.get('mean'))} ± {_fmt(f.get('sd'))}" if f else "")
+        rows.append([html.escape(label), *cells])
+    out = ["<h3>Can researchers simulate on the synthetic networks?</h3>",
+           _table(["figure", "grouping alone (true aggregate, no noise)", "the release"], rows)]
+    t = fidelity.get("true", {})
+    out.append(f'<p class="note">{html.escape(fidelity.get("note", ""))}. True network: '
+               f'{_fmt(t.get("contacts"))} contacts, largest degree {_fmt(t.get("largest_degree"))}, average '
+               f'clustering {_fmt(t.get("average_clustering"))}, final size {_fmt(t.get("final_size"))} at '
+               f'transmissibility {_fmt(t.get("transmissibility"))}.</p>')
+    return out
+

@@ -352,7 +352,7 @@ def _sweep_grid(network, policy, grid, draws, source, sanity_bound, notes, progr
         for k in grid["min_sizes"]:
             for eps in grid["epsilons"]:
                 pol = _policy_at(policy, unit, eps, k, D)
-                shares = epsilon_shares(pol)
+                shares = epsilon_shares(pol, network.n_people if unit == "edge" else None)
                 truth = cache.get((unit, k))
                 if truth is None:
                     t1 = time.perf_counter()

@@ -20,10 +20,16 @@ from ..errors import PrivacyError
 #: supernode sizes are the fine attribute cells' counts (the released supernode sizes are sums of
 #: them); the degree-histogram bound holds for any top-bin cap >= 1. ``grouping_degrees`` and
 #: ``grouping_profiles`` are the private structural grouping's noisy degree vector and
-#: person x supernode contact profiles (``docs/privacy-grouping.md``).
+#: person x supernode contact profiles (``docs/privacy-grouping.md``). ``degree_sequences`` is the
+#: vector of every supernode's sorted degrees. ``triangle_count`` has no useful bound of its own (one
+#: contact closes up to ``n - 2`` triangles): it is released by the ladder mechanism, and its entry is
+#: the sensitivity of that mechanism's rung score, 1 (``docs/privacy.md`` section 3.3;
+#: :mod:`aggpub.noise.ladder`). Neither has a bound under ``person``; the policy refuses them there.
 SENSITIVITY = {
     ("edge", "superedge_counts"): 1,
     ("edge", "degree_histograms"): 4,
+    ("edge", "degree_sequences"): 2,
+    ("edge", "triangle_count"): 1,
     ("edge", "supernode_sizes"): 0,
     ("edge", "weight_totals"): "w_max",
     ("edge", "grouping_degrees"): 2,
@@ -44,7 +50,8 @@ def sensitivity(unit: str, component: str, max_contacts=None, clip=None) -> floa
         ``"edge"`` or ``"person"``.
     component : str
         A key of :data:`SENSITIVITY` (``supernode_sizes``, ``superedge_counts``,
-        ``degree_histograms``, ``weight_totals``, ``grouping_degrees``, ``grouping_profiles``).
+        ``degree_histograms``, ``weight_totals``, ``degree_sequences``, ``triangle_count``,
+        ``grouping_degrees``, ``grouping_profiles``).
     max_contacts : int, optional
         ``D``, needed under ``person``.
     clip : int, optional

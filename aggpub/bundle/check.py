@@ -31,7 +31,11 @@ SCHEMAS = {
     "weight_totals": {"supernode_a": pa.int64(), "supernode_b": pa.int64(), "weight_total": pa.int64(),
                       "max_weight_total": pa.int64(), "noise_scale": pa.float64(),
                       "ci95_half_width": pa.int64()},
+    "degree_sequences": {"supernode": pa.int64(), "position": pa.int64(), "degree_noisy": pa.int64(),
+                         "degree_estimate": pa.float64(), "noise_scale": pa.float64(), "ci95_half_width": pa.int64()},
 }
+#: Columns a table may lack (bundles made before they existed) but whose type is checked when present.
+OPTIONAL_COLUMNS = {"superedges": {"edge_count_estimate": pa.float64(), "edge_count_unclamped": pa.int64()}}
 
 
 @dataclass
@@ -137,6 +141,10 @@ def check_bundle(path) -> CheckResult:
             elif table.schema.field(col).type != typ:
                 res.problems.append(f"{name}: column '{col}' has type {table.schema.field(col).type}, "
                                     f"expected {typ}")
+        for col, typ in OPTIONAL_COLUMNS.get(stem, {}).items():
+            if col in table.column_names and table.schema.field(col).type != typ:
+                res.problems.append(f"{name}: column '{col}' has type {table.schema.field(col).type}, "
+                                    f"expected {typ}")
         expected_rows = manifest["rows"].get(stem)
         if expected_rows is not None and expected_rows != table.num_rows:
             res.problems.append(f"{name}: {table.num_rows} rows, manifest says {expected_rows}")
@@ -217,8 +225,75 @@ def _check_invariants(manifest, tables, res):
             res.checked.append("sparse superedges: every listed cell at or above the threshold")
         else:
             res.checked.append("superedge counts: non-negative integers, a <= b, every cell once")
+        if "edge_count_estimate" in se.column_names:
+            est = se.column("edge_count_estimate").to_numpy()
+            if not np.isfinite(est).all() or (est < 0).any() or (est > cap + 1e-6).any():
+                res.problems.append("superedges.parquet: edge_count_estimate not within [0, possible_pairs]")
+            res.checked.append("superedge estimates: finite, within [0, possible_pairs]")
     _check_degree_histograms(manifest, tables.get("degree_histograms"), sizes, res)
     _check_weight_totals(tables.get("weight_totals"), n, res)
+    _check_degree_sequences(manifest, tables.get("degree_sequences"), sizes, res)
+    _check_triangle_count(manifest, res)
+
+
+def _spend(manifest, name):
+    return next((c for c in manifest.get("components", []) if isinstance(c, dict) and c.get("name") == name), None)
+
+
+def _check_degree_sequences(manifest, ds, sizes, res):
+    """Every member of every supernode once (positions ``0 .. size - 1``); estimates sorted, within ``[0, N - 1]``."""
+    if ds is None:
+        if _spend(manifest, "degree_sequences") is not None:
+            res.problems.append(f"{MANIFEST}: a 'degree_sequences' spend but no degree_sequences.parquet")
+        return
+    n = len(sizes)
+    s = ds.column("supernode").to_numpy()
+    pos = ds.column("position").to_numpy()
+    est = ds.column("degree_estimate").to_numpy()
+    people = int(np.asarray(sizes).sum())
+    if manifest.get("privacy_unit") != "edge":
+        res.problems.append("degree_sequences.parquet: degree sequences are released under unit 'edge' only")
+    if _spend(manifest, "degree_sequences") is None:
+        res.problems.append("degree_sequences.parquet: no 'degree_sequences' spend in the manifest")
+    if ((s < 0) | (s >= n)).any():
+        res.problems.append("degree_sequences.parquet: supernode ids out of range")
+        return
+    if len(s) != people or not np.array_equal(np.bincount(s, minlength=n), np.asarray(sizes)):
+        res.problems.append(f"degree_sequences.parquet: {len(s)} rows, expected one per member of every supernode "
+                            f"({people})")
+        return
+    order = np.lexsort((pos, s))
+    s, pos, est = s[order], pos[order], est[order]
+    starts = np.concatenate([[0], np.cumsum(sizes)[:-1]]).astype(np.int64)
+    if not np.array_equal(pos, np.arange(len(s)) - starts[s]):
+        res.problems.append("degree_sequences.parquet: positions are not 0 .. size - 1 once each in every supernode")
+        return
+    if not np.isfinite(est).all() or (est < 0).any() or (est > max(people - 1, 0) + 1e-9).any():
+        res.problems.append("degree_sequences.parquet: degree_estimate not within [0, people - 1]")
+    same = s[1:] == s[:-1]
+    if (np.diff(est)[same] < -1e-9 * max(1.0, float(np.abs(est).max()) if len(est) else 1.0)).any():
+        res.problems.append("degree_sequences.parquet: degree_estimate decreases within a supernode")
+    res.checked.append("degree sequences: every member once, estimates sorted within [0, people - 1]")
+
+
+def _check_triangle_count(manifest, res):
+    """A released triangle count is an integer with its ladder spend (and the other way round)."""
+    spend = _spend(manifest, "triangle_count")
+    has = "triangle_count" in manifest
+    if not has and spend is None:
+        return
+    value = manifest.get("triangle_count")
+    if not has:
+        res.problems.append(f"{MANIFEST}: a 'triangle_count' spend but no 'triangle_count' value")
+    elif not isinstance(value, int) or isinstance(value, bool):
+        res.problems.append(f"{MANIFEST}: 'triangle_count' is not an integer")
+    if has and spend is None:
+        res.problems.append(f"{MANIFEST}: 'triangle_count' released without its spend in 'components'")
+    elif spend is not None and spend.get("mechanism") != "ladder":
+        res.problems.append(f"{MANIFEST}: the 'triangle_count' spend is not the ladder mechanism")
+    if manifest.get("privacy_unit") != "edge":
+        res.problems.append(f"{MANIFEST}: the triangle count is released under unit 'edge' only")
+    res.checked.append("triangle count: an integer with its ladder spend")
 
 
 def _check_degree_histograms(manifest, dh, sizes, res):

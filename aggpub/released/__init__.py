@@ -10,7 +10,8 @@ from __future__ import annotations
 
 __all__ = ["SuperedgeTruth", "dense_truth", "superedge_sparse_threshold", "release_superedge_counts",
            "release_cell_counts", "released_sizes", "release_degree_histograms", "release_weight_totals",
-           "Statistic", "STATISTICS", "StatisticsRun", "release_statistics"]
+           "release_degree_sequences", "release_triangle_count", "Statistic", "STATISTICS", "StatisticsRun",
+           "release_statistics", "post_process"]
 
 from dataclasses import dataclass, field
 from typing import Callable
@@ -21,8 +22,10 @@ from ..budget import sensitivity
 from ..cells import n_cells
 from ..errors import PolicyError
 from .degree_histograms import release_degree_histograms
+from .degree_sequences import release_degree_sequences, sorted_sequences
 from .sizes import release_cell_counts, released_sizes
 from .superedges import SuperedgeTruth, dense_truth, release_superedge_counts, superedge_sparse_threshold
+from .triangles import release_triangle_count, triangle_truth
 from .weight_totals import release_weight_totals
 
 
@@ -44,7 +47,9 @@ class Statistic:
 
     ``count(ctx, option)`` returns the confidential truth (and extra manifest
     fields); ``release(ctx, truth, option, epsilon, sens)`` returns ``(table,
-    spend, mechanism)``; ``sens_args(policy, option)`` the keyword arguments of
+    spend, mechanism)``, where ``table`` is a dict of manifest fields for a
+    statistic released in the manifest itself (the triangle count);
+    ``sens_args(policy, option)`` the keyword arguments of
     :func:`aggpub.budget.sensitivity` beyond unit and name.
     """
 
@@ -103,6 +108,23 @@ def _release_weights(ctx, truth, option, eps, sens, extra):
     return release_weight_totals(truth, ctx.sizes, option.clip, eps, sens, ctx.source)
 
 
+def _count_sequences(ctx, option, eps, sens):
+    deg = ctx.network.engine.degrees(ctx.network.n_people)
+    return sorted_sequences(deg, ctx.grouping.assignment, ctx.grouping.n_supernodes), {}
+
+
+def _release_sequences(ctx, truth, option, eps, sens, extra):
+    return release_degree_sequences(truth, eps, sens, ctx.source)
+
+
+def _count_triangles(ctx, option, eps, sens):
+    return triangle_truth(ctx.network.engine, ctx.network.n_people), {}
+
+
+def _release_triangles(ctx, truth, option, eps, sens, extra):
+    return release_triangle_count(truth, eps, ctx.source)
+
+
 #: The statistics a release can hold, in the order they are counted and noised.
 STATISTICS = (
     Statistic("superedge_counts", "superedges", "counting superedges", _count_superedges, _release_superedges,
@@ -113,6 +135,13 @@ STATISTICS = (
     Statistic("weight_totals", "weight_totals", "summing clipped weights per superedge", _count_weights, _release_weights,
               lambda ctx, t, eps, sens, extra: f"adding noise to {len(t.count):,} weight totals "
                                                f"(epsilon {eps:g}, sensitivity {sens:g})"),
+    Statistic("degree_sequences", "degree_sequences", "sorting every supernode's numbers of contacts",
+              _count_sequences, _release_sequences,
+              lambda ctx, t, eps, sens, extra: f"adding noise to {len(t.values):,} sorted degrees "
+                                               f"(epsilon {eps:g}, sensitivity {sens:g})"),
+    Statistic("triangle_count", "triangle_count", "counting triangles", _count_triangles, _release_triangles,
+              lambda ctx, t, eps, sens, extra: f"releasing the number of triangles (ladder mechanism, "
+                                               f"epsilon {eps:g})"),
 )
 
 
@@ -147,13 +176,16 @@ def release_statistics(network, grouping, policy, sizes, epsilons: dict, source,
     -------
     StatisticsRun
     """
+    from ..policy import component_enabled
+
     ctx = _Context(network=network, grouping=grouping, policy=policy, sizes=sizes, source=source,
                    progress=progress)
     unit, D = policy.privacy.unit, policy.privacy.max_contacts
+    people = network.n_people if unit == "edge" else None  # public under edge only
     run = StatisticsRun()
     for stat in STATISTICS:
         option = getattr(policy.components, stat.name)
-        if not option.enabled:
+        if not component_enabled(policy, stat.name, people):
             continue
         eps = epsilons[stat.name]
         sens = sensitivity(unit, stat.name, D, option.clip if stat.name == "weight_totals" else None)
@@ -165,6 +197,71 @@ def release_statistics(network, grouping, policy, sizes, epsilons: dict, source,
         table, spend, mech = stat.release(ctx, truth, option, eps, sens, extra)
         budget.spend(spend)
         run.spends.append(spend)
-        run.tables[stat.table] = table
+        if isinstance(table, dict):  # released in the manifest itself
+            run.manifest.update(table)
+        else:
+            run.tables[stat.table] = table
         run.mechanisms[stat.name] = mech
+    if run.tables:
+        progress("estimating non-negative, consistent counts and degrees (post-processing)")
+        post_process(run, sizes, people=int(np.asarray(sizes).sum()))
     return run
+
+
+def post_process(run: StatisticsRun, sizes, *, people: int) -> None:
+    """Add the estimate columns every derived view uses (post-processing of released values only).
+
+    * ``superedges.edge_count_estimate`` (float64): non-negative cells, at most their
+      possible pairs, whose per-supernode degree totals and whole-table sum are the
+      best linear unbiased ones (:func:`aggpub.estimates.counts.consistent_counts`,
+      from ``edge_count_unclamped`` and, when released, the sums of the noisy degree
+      sequences). A sparse release keeps its clamped counts (its absent cells are not
+      known), and says so in the manifest.
+    * ``degree_sequences.degree_estimate`` (float64): the isotonic fit of the noisy
+      sorted degrees, rescaled to the consistent degree totals
+      (:mod:`aggpub.estimates.degrees`).
+
+    Reads only the released tables, the mechanisms' noise laws and the public or
+    released ``sizes``; ``people`` is their sum.
+    """
+    import pyarrow as pa
+
+    from ..cells import n_cells
+    from ..estimates import degrees as dest
+    from ..estimates.counts import consistent_counts
+
+    sizes = np.asarray(sizes, dtype=np.int64)
+    n = len(sizes)
+    se = run.tables.get("superedges")
+    seq = run.tables.get("degree_sequences")
+    z = v_z = v_d = None
+    if seq is not None:
+        group = np.asarray(seq.column("supernode").to_numpy(), dtype=np.int64)
+        noisy = np.asarray(seq.column("degree_noisy").to_numpy(), dtype=np.float64)
+        v_d = run.mechanisms["degree_sequences"].variance()
+        z = np.bincount(group, weights=noisy, minlength=n)
+        v_z = np.maximum(sizes, 1) * v_d
+    totals = None
+    if se is not None:
+        y = np.asarray(se.column("edge_count_unclamped").to_numpy(), dtype=np.float64)
+        cap = np.asarray(se.column("possible_pairs").to_numpy(), dtype=np.int64)
+        a = np.asarray(se.column("supernode_a").to_numpy(), dtype=np.int64)
+        b = np.asarray(se.column("supernode_b").to_numpy(), dtype=np.int64)
+        if run.manifest.get("superedges_sparse") or len(a) != n_cells(n):
+            est = np.asarray(se.column("edge_count").to_numpy(), dtype=np.float64)
+            run.manifest["superedge_estimates"] = "clamped noisy counts (sparse release: absent cells unknown)"
+        else:
+            res = consistent_counts(y, sizes, run.mechanisms["superedge_counts"].variance(), a, b,
+                                    z=z, v_z=v_z, cap=cap)
+            est, totals = res.x, res.totals
+            run.manifest["superedge_estimates"] = (
+                "least-squares non-negative cells with the best linear unbiased per-supernode degree totals"
+                + (" (superedge counts and degree sequences together)" if z is not None else ""))
+            run.manifest["superedge_estimates_max_total_gap"] = float(res.max_violation)
+        run.tables["superedges"] = se.add_column(2, "edge_count_estimate", pa.array(est, type=pa.float64()))
+    if seq is not None:
+        fit = dest.fit_sorted_degrees(noisy, group, people, v_d)
+        if totals is None:
+            totals = np.maximum(z, 0.0)
+        target = np.clip(dest.degree_targets(fit, group, sizes, totals), 0.0, max(people - 1, 0))
+        run.tables["degree_sequences"] = seq.add_column(3, "degree_estimate", pa.array(target, type=pa.float64()))
