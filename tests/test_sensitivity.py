@@ -33,6 +33,7 @@ from aggpub.engines._duckdb import DuckDBEngine
 from aggpub.errors import PrivacyError
 from aggpub.ingest import load_network
 from aggpub.policy import parse_policy
+from aggpub.released.degree_sequences import sorted_sequences
 
 CLIP = 3  # w_max of the weight totals in these tests
 N_NETWORKS = 30
@@ -106,8 +107,13 @@ def _union_counts(copies, group, n_groups, cap):
     se = scatter(*net.engine.superedge_counts(assignment))
     wt = scatter(*net.engine.weight_totals(assignment, CLIP))
     dh = net.engine.degree_histograms(assignment, K * G, cap).reshape(K, G * (cap + 1))
+    out = {"superedge_counts": se, "weight_totals": wt, "degree_histograms": dh}
+    if len({len(kept) for kept, _, _ in copies}) == 1:  # same people in every copy (unit edge)
+        # every supernode's sorted degrees, by the release's own code (copy k holds supernodes k*G .. k*G+G-1)
+        seq = sorted_sequences(net.engine.degrees(len(node)), assignment, K * G)
+        out["degree_sequences"] = seq.values.reshape(K, -1)
     net.engine.close()
-    return {"superedge_counts": se, "weight_totals": wt, "degree_histograms": dh}
+    return out
 
 
 def _edge_neighbours(n, e, w, rng):
@@ -166,7 +172,8 @@ def test_disjoint_union_matches_separate_runs():
 def edge_maxima():
     """Largest L1 change per component over N_NETWORKS random networks and all their edge neighbours."""
     rng = np.random.default_rng(20261201)
-    seen = {"superedge_counts": 0, "degree_histograms": 0, "weight_totals": 0, "supernode_sizes": 0}
+    seen = {"superedge_counts": 0, "degree_histograms": 0, "weight_totals": 0, "supernode_sizes": 0,
+            "degree_sequences": 0}
     per_network = []
     for _ in range(N_NETWORKS):
         n = int(rng.integers(6, 13))
@@ -192,7 +199,7 @@ def edge_maxima():
 
 
 @pytest.mark.parametrize("component", ["superedge_counts", "degree_histograms", "weight_totals",
-                                       "supernode_sizes"])
+                                       "supernode_sizes", "degree_sequences"])
 def test_edge_unit_bound_holds_and_is_attained(edge_maxima, component):
     seen, per_network = edge_maxima
     declared = _declared("edge", component)
@@ -200,6 +207,8 @@ def test_edge_unit_bound_holds_and_is_attained(edge_maxima, component):
         assert m[component] <= declared, (component, n, k, m)
     assert seen[component] == declared, f"{component}: largest change seen {seen[component]}, declared {declared}"
     assert sum(k for _, k, _ in per_network) > 1000  # thousands of neighbours were checked
+    if component == "degree_sequences":  # every contact moves two sorted positions by one: attained everywhere
+        assert all(m[component] == declared for _, _, m in per_network)
 
 
 # --------------------------------------------------------------------------- unit person

@@ -244,11 +244,14 @@ def _monte_carlo(truth, mech, monte_carlo, source, deg_mc):
     return mc
 
 
-def _workload_summary(w, tru, est, est_unclamped, mech, s_bound, mc) -> dict:
+def _workload_summary(w, tru, est, est_unclamped, mech, s_bound, mc, est_consistent=None) -> dict:
     summ = error_summary(tru, est, s_bound)
     if est_unclamped is not None:
         # what a researcher gets by summing edge_count_unclamped, as the reader's guide advises
         summ["from_unclamped_counts"] = error_summary(tru, est_unclamped, s_bound)
+    if est_consistent is not None:
+        # the consistent non-negative estimates (edge_count_estimate) every derived view reads
+        summ["from_estimates"] = error_summary(tru, est_consistent, s_bound)
     summ["grouping_loss_mean_absolute_error"] = 0.0
     summ["grouping_loss_note"] = "an exact sum of superedge cells: grouping alone loses nothing"
     if mech is not None:
@@ -272,6 +275,7 @@ def _query_section(release, truth, monte_carlo, source, deg_mc, plot, progress) 
     rel = released_cells(release, truth.n_groups)
     unclamped = None if truth.threshold is not None else released_cells(release, truth.n_groups,
                                                                         "edge_count_unclamped")
+    consistent = released_cells(release, truth.n_groups, "edge_count_estimate")
     mc = {w.name: {"mean_absolute_error": []} for w in truth.workloads}
     if monte_carlo and mech is not None:
         progress(f"audit: {int(monte_carlo)} fresh noise draws on the true table (Monte Carlo)")
@@ -281,7 +285,8 @@ def _query_section(release, truth, monte_carlo, source, deg_mc, plot, progress) 
         tru = truth.true_answers[w.name]
         est = w.answer(rel)
         est_u = None if unclamped is None else w.answer(unclamped.astype(np.float64))
-        out[w.name] = _workload_summary(w, tru, est, est_u, mech, truth.s_bound, mc)
+        est_c = None if consistent is None else w.answer(consistent.astype(np.float64))
+        out[w.name] = _workload_summary(w, tru, est, est_u, mech, truth.s_bound, mc, est_c)
         plot["rel_errors"][w.name] = np.abs(est - tru) / np.maximum(tru, truth.s_bound)
     # relative error with s = 1, for reading per-cell errors against small counts
     cells = out["superedge_cells"]

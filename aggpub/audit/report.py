@@ -366,11 +366,20 @@ def render_html(audit: dict) -> str:
                   _fmt(w["from_unclamped_counts"]["median_relative_error"]),
                   _fmt(w["from_unclamped_counts"]["p90_relative_error"])]
                  for name, w in q.items() if "from_unclamped_counts" in w]
+        erows = [[html.escape(name), _fmt(w["from_estimates"]["mean_absolute_error"]),
+                  _fmt(w["from_estimates"]["median_relative_error"]),
+                  _fmt(w["from_estimates"]["p90_relative_error"])]
+                 for name, w in q.items() if "from_estimates" in w]
         if urows:
             parts.append('<p class="note">The same workloads answered by summing <code>edge_count_unclamped</code> '
                          "(the noisy counts before clamping, also in the bundle, unbiased), as the researcher "
                          "data card advises for sums:</p>")
             parts.append(_table(["workload", "mean abs. error", "median rel. error", "p90 rel. error"], urows))
+        if erows:
+            parts.append('<p class="note">And by summing <code>edge_count_estimate</code> (the consistent '
+                         "non-negative estimates that the synthetic networks, the supergraph and the reader's guide "
+                         "use):</p>")
+            parts.append(_table(["workload", "mean abs. error", "median rel. error", "p90 rel. error"], erows))
         cells = q.get("superedge_cells", {})
         if "released_total_minus_true_total" in cells:
             diff = cells["released_total_minus_true_total"]

@@ -153,4 +153,6 @@ def released_cells(release, n_groups: int, column: str = "edge_count"):
     if column not in t.column_names:
         return None
     col = lambda name: np.asarray(t.column(name).to_numpy(zero_copy_only=False))  # noqa: E731
-    return scatter_cells(n_groups, col("supernode_a"), col("supernode_b"), col(column))
+    values = col(column)
+    return scatter_cells(n_groups, col("supernode_a"), col("supernode_b"), values,
+                         dtype=np.float64 if np.issubdtype(values.dtype, np.floating) else np.int64)

@@ -16,8 +16,9 @@ counts are released too, each supernode's consistent degree total ``r_A``
    the largest degrees when there are many small supernodes. The bias is estimated by a
    parametric bootstrap (fresh noise of the released law added to the fit, refitted,
    ``R`` times; Efron, Tibshirani, *An Introduction to the Bootstrap*, 1993, chapter 10)
-   and subtracted, then the sequence is refitted. ``R`` is 20, fewer on very large
-   releases (:func:`bootstrap_replicates`, from the public number of people).
+   and subtracted, then the sequence is refitted. ``R`` is 20 up to 100,000 people and
+   falls to 2 at a million (:func:`bootstrap_replicates`, from the public number of
+   people), so the step costs at most about 2 million fits of one value.
 3. **Shrinkage of the tops.** Each supernode's top pooled block (``h`` values, noise
    variance about ``v_d / h``) moves toward the median top by the factor
    ``1 - (v_d / h) / tau^2`` (at least 0), with ``tau^2`` the spread of the tops across
@@ -55,11 +56,11 @@ import numpy as np
 
 #: Bootstrap replicates on small releases, and the work (replicates x people) allowed on large ones.
 BOOTSTRAP_MAX = 20
-BOOTSTRAP_WORK = 4_000_000
+BOOTSTRAP_WORK = 2_000_000
 
 
 def bootstrap_replicates(n_people: int) -> int:
-    """Replicates of the bias correction: 20, fewer above 200,000 people, at least 2 (public input)."""
+    """Replicates of the bias correction: 20, fewer above 100,000 people, at least 2 (public input)."""
     return int(min(BOOTSTRAP_MAX, max(2, BOOTSTRAP_WORK // max(int(n_people), 1))))
 
 

@@ -15,14 +15,16 @@ def supergraph(release, *, include_zero: bool = False):
 
     Nodes are supernode ids with attributes ``size`` and every label column of
     the supernodes table; edges are the superedge cells with attributes
-    ``edge_count``, ``possible_pairs`` and ``noise_scale``. A cell on the
-    diagonal (contacts inside one supernode) is a self-loop.
+    ``edge_count_estimate`` (the consistent, non-negative estimate whose sums are
+    unbiased; the one to weight with), ``edge_count`` (clamped), ``possible_pairs``
+    and ``noise_scale``. A cell on the diagonal (contacts inside one supernode) is a
+    self-loop. Older bundles without estimates have no ``edge_count_estimate``.
 
     Parameters
     ----------
     release : Bundle or Release
     include_zero : bool, default False
-        Also add cells whose released count is 0.
+        Also add cells whose estimate (older bundles: released count) is 0.
 
     Returns
     -------
@@ -43,7 +45,12 @@ def supergraph(release, *, include_zero: bool = False):
         c = _col(superedges, "edge_count")
         cap = _col(superedges, "possible_pairs")
         sc = _col(superedges, "noise_scale", np.float64)
-        keep = np.flatnonzero(c > 0) if not include_zero else np.arange(len(c))
+        est = _col(superedges, "edge_count_estimate", np.float64) \
+            if "edge_count_estimate" in superedges.column_names else None
+        lead = c if est is None else est
+        keep = np.flatnonzero(lead > 0) if not include_zero else np.arange(len(c))
         g.add_edges_from((int(a[i]), int(b[i]), {"edge_count": int(c[i]), "possible_pairs": int(cap[i]),
-                                                 "noise_scale": float(sc[i])}) for i in keep)
+                                                 "noise_scale": float(sc[i]),
+                                                 **({} if est is None else {"edge_count_estimate": float(est[i])})})
+                         for i in keep)
     return g

@@ -83,8 +83,17 @@ def rungs_needed(max_width: int, epsilon: float) -> int:
     if max_width <= 0:
         return 1
     g = -math.expm1(-epsilon / 2.0)  # 1 - exp(-epsilon / 2)
-    bound = math.log(2.0 * max_width / g) + TAIL_BITS * math.log(2.0)
-    return max(1, int(math.ceil(2.0 * bound / epsilon)))
+    limit = -TAIL_BITS * math.log(2.0)
+
+    def log_tail(T):  # log of the bound on the mass beyond rung T
+        return math.log(2.0 * max_width / g) - epsilon * (T + 1) / 2.0
+
+    T = max(1, int(math.ceil(2.0 * (math.log(2.0 * max_width / g) - limit) / epsilon)) - 1)
+    while T > 1 and log_tail(T - 1) <= limit:  # the closed form, corrected for rounding either way
+        T -= 1
+    while log_tail(T) > limit:
+        T += 1
+    return T
 
 
 @dataclass(frozen=True)
