@@ -299,3 +299,43 @@ def test_uniform_inputs_for_a_release_without_degree_sequences():
     est = rel.superedges.column("edge_count_estimate").to_numpy()
     np.testing.assert_array_equal(inputs.cells, est)  # the estimates, not the clamped counts
     assert isinstance(inputs, SynthesisInputs)
+
+
+# --------------------------------------------------------------------------- the reader's guide
+
+
+def test_reader_guide_figures_are_the_committed_benchmark_results():
+    """The figures the reader's guide quotes are the release rows of benchmarks/results/fidelity-2026-12-02.json
+    (lowest and highest over the networks), not numbers typed by hand."""
+    from pathlib import Path
+
+    from aggpub.bundle.synthesis_guide import FIDELITY_REFERENCE
+
+    rows = json.loads((Path(__file__).resolve().parents[1] / "benchmarks" / "results"
+                       / "fidelity-2026-12-02.json").read_text())
+    kinds = {"before": "uniform_block", "sequences": "degree_corrected", "after": "degree_corrected_affinity"}
+    for method, kind in kinds.items():
+        for eps, figures in FIDELITY_REFERENCE[kind].items():
+            rs = [r for r in rows if r["method"] == method and r["epsilon"] == eps and r["kind"] == "release"]
+            assert len(rs) == 7
+            for name, (lo, hi, nlo, nhi) in figures.items():
+                values = sorted((round(r[name], 3), r["network"]) for r in rs)
+                assert (lo, nlo) == values[0] and (hi, nhi) == values[-1], (kind, eps, name)
+
+
+def test_reader_guide_follows_the_manifest():
+    from aggpub.bundle.datacard import render_datacard
+
+    g, rel = _release("karate")
+    text = render_datacard(rel.manifest)
+    assert "## Which column to use for what" in text and "edge_count_estimate" in text
+    assert "with the degree-corrected sampler with affinity blocks" in text
+    assert "local clustering, through blocks" in text
+    g, rel = _release("karate", triangle_count={"enabled": False})
+    text = render_datacard(rel.manifest)
+    assert "(no triangle count released, so no affinity blocks)" in text and "Loses:" in text
+    g, rel = _release("karate", degree_sequences={"enabled": False}, triangle_count={"enabled": False})
+    text = render_datacard(rel.manifest)
+    assert "uniform block sampler" in text and "degree heterogeneity" in text
+    old = {k: v for k, v in rel.manifest.items() if k != "superedge_estimates"}
+    assert "sum of the unbiased" not in render_datacard(old) and "uniform block sampler" in render_datacard(old)

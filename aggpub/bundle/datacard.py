@@ -7,6 +7,8 @@ from __future__ import annotations
 
 __all__ = ["render_datacard", "CAUTIONS"]
 
+from .synthesis_guide import columns_guide, synthesis_guide
+
 CAUTIONS = (
     "Group statistics can still disclose something about the people in a small or homogeneous "
     "supernode (for example, that everyone aged 80+ in one neighbourhood had few contacts). "
@@ -54,6 +56,9 @@ def render_datacard(manifest: dict) -> str:
         ("weight_totals", "`supernode_a`, `supernode_b`, `weight_total`: noisy totals of contact weights, "
          "each weight clipped to the policy's bound and rounded to an integer unit, clamped to "
          "`[0, max_weight_total]` (the bound times the possible pairs); every cell including zeros."),
+        ("degree_sequences", "`supernode`, `position`, `degree_noisy`, `degree_estimate`: one row per member of "
+         "every supernode, the members' numbers of contacts sorted within the supernode (position 0 has the "
+         "fewest), with noise (`degree_noisy`) and as estimated (`degree_estimate`, see below)."),
     ) if stem in rows)
     return f"""# Aggregated contact network release
 {seeded_text}
@@ -78,12 +83,16 @@ Made by aggpub {manifest['tool_version']} on {manifest['created_utc']} (bundle f
   `edge_count_unclamped` is the same noisy value before clamping (it can be negative):
   clamping lifts empty cells above zero, so **sum `edge_count_unclamped`, not `edge_count`,
   when you add up many cells** (its sums are unbiased);
+  `edge_count_estimate` (when present) is the consistent, non-negative estimate to use for
+  everything derived (see "Which column to use for what");
   `possible_pairs` is `size_a * size_b` (or `size * (size - 1) / 2` within one);
   `noise_scale` is the scale of the discrete Laplace noise; `ci95_half_width` is the
   half-width of a 95% interval for the noise on one cell.
 {extra_files}{sizes_text}- `manifest.json`: every parameter of the release and the SHA-256 of every file.
   Verify with `aggpub check <this folder>`.
 
+{columns_guide(manifest)}
+{synthesis_guide(manifest)}
 ## Reading the noise
 
 Each released count is the true count plus independent two-sided geometric

@@ -1,0 +1,206 @@
+"""The reader's guide on estimates and synthetic networks, written from a bundle's manifest only.
+
+Two parts of ``README.md`` (:func:`aggpub.bundle.datacard.render_datacard` places them):
+which count column to use for what (:func:`columns_guide`), and what a synthetic network
+drawn from this release keeps and loses (:func:`synthesis_guide`). Both read the
+manifest alone: which statistics were released, with which epsilon, and the sampler
+that follows from them. The measured figures are those of releases *of the same kind*
+on seven development networks (:data:`FIDELITY_REFERENCE`), never figures of this
+release's own true network, which are confidential (the board's report has them).
+"""
+
+from __future__ import annotations
+
+__all__ = ["FIDELITY_REFERENCE", "REFERENCE_SOURCE", "release_kind", "columns_guide", "synthesis_guide"]
+
+import math
+
+#: Release rows of ``benchmarks/results/fidelity-2026-12-02.md`` (3 releases x 2 synthetic networks per
+#: network and epsilon): for each kind of release and epsilon, ``figure -> (lowest, highest, network of the
+#: lowest, network of the highest)`` over the seven development networks. Ratios are synthetic / true; the
+#: degree figure is a Kolmogorov-Smirnov distance.
+FIDELITY_REFERENCE = {
+    "uniform_block": {
+        0.5: {"contacts_ratio": (0.998, 1.067, "email", "town"), "degree_ks": (0.051, 0.501, "town", "facebook"),
+              "largest_degree_ratio": (0.152, 1.241, "facebook", "town"),
+              "clustering_ratio": (0.025, 0.813, "facebook", "kenya"),
+              "final_size_ratio": (0.097, 1.109, "facebook", "town")},
+        1.0: {"contacts_ratio": (0.999, 1.027, "highschool", "town"), "degree_ks": (0.028, 0.502, "town", "facebook"),
+              "largest_degree_ratio": (0.154, 1.21, "facebook", "town"),
+              "clustering_ratio": (0.025, 0.812, "facebook", "kenya"),
+              "final_size_ratio": (0.098, 1.088, "facebook", "kenya")},
+        2.0: {"contacts_ratio": (1.0, 1.008, "email", "town"), "degree_ks": (0.023, 0.501, "town", "facebook"),
+              "largest_degree_ratio": (0.155, 1.204, "facebook", "town"),
+              "clustering_ratio": (0.025, 0.828, "facebook", "kenya"),
+              "final_size_ratio": (0.096, 1.022, "facebook", "kenya")},
+    },
+    "degree_corrected": {
+        0.5: {"contacts_ratio": (0.994, 1.007, "kenya", "hospital"), "degree_ks": (0.023, 0.136, "town", "hospital"),
+              "largest_degree_ratio": (0.716, 1.302, "highschool", "town"),
+              "clustering_ratio": (0.031, 0.964, "town", "hospital"),
+              "final_size_ratio": (0.941, 1.911, "email", "facebook")},
+        1.0: {"contacts_ratio": (0.996, 1.002, "kenya", "email"), "degree_ks": (0.013, 0.084, "town", "hospital"),
+              "largest_degree_ratio": (0.755, 1.074, "highschool", "town"),
+              "clustering_ratio": (0.031, 0.938, "town", "hospital"),
+              "final_size_ratio": (0.907, 1.969, "email", "facebook")},
+        2.0: {"contacts_ratio": (1.0, 1.002, "facebook", "hospital"), "degree_ks": (0.009, 0.089, "town", "kenya"),
+              "largest_degree_ratio": (0.755, 1.025, "highschool", "town"),
+              "clustering_ratio": (0.031, 0.926, "town", "hospital"),
+              "final_size_ratio": (0.877, 1.977, "email", "facebook")},
+    },
+    "degree_corrected_affinity": {
+        0.5: {"contacts_ratio": (0.961, 1.004, "kenya", "hospital"), "degree_ks": (0.03, 0.14, "town", "kenya"),
+              "largest_degree_ratio": (0.71, 1.796, "facebook", "town"),
+              "clustering_ratio": (0.707, 1.035, "facebook", "workplace"),
+              "final_size_ratio": (0.992, 1.977, "workplace", "facebook")},
+        1.0: {"contacts_ratio": (0.988, 1.003, "kenya", "hospital"), "degree_ks": (0.017, 0.122, "town", "kenya"),
+              "largest_degree_ratio": (0.701, 1.123, "facebook", "town"),
+              "clustering_ratio": (0.753, 1.049, "facebook", "workplace"),
+              "final_size_ratio": (0.972, 1.953, "workplace", "facebook")},
+        2.0: {"contacts_ratio": (0.999, 1.004, "hospital", "kenya"), "degree_ks": (0.009, 0.107, "town", "kenya"),
+              "largest_degree_ratio": (0.721, 1.031, "facebook", "town"),
+              "clustering_ratio": (0.75, 1.015, "facebook", "highschool"),
+              "final_size_ratio": (0.969, 1.948, "workplace", "facebook")},
+    },
+}
+REFERENCE_SOURCE = (
+    "`benchmarks/fidelity.py` of aggpub (results of 2026-12-02): seven development networks released with the "
+    "plainest policy (unit `edge`, attribute grouping, `min_size` 10 or 20) -- face-to-face contacts in a "
+    "hospital ward (Vanhems et al., PLoS ONE 2013), rural households in Kenya (Kiti et al., EPJ Data Science "
+    "2016), a workplace (Genois and Barrat, EPJ Data Science 2018) and a high school (Mastrandrea et al., PLoS ONE "
+    "2015), an e-mail network (Leskovec et al., ACM TKDD 2007), an online friendship network (McAuley and "
+    "Leskovec, NIPS 2012), and aggpub's invented demo town")
+
+_KIND_TEXT = {
+    "degree_corrected_affinity": "the degree-corrected sampler with affinity blocks",
+    "degree_corrected": "the degree-corrected sampler (no triangle count released, so no affinity blocks)",
+    "uniform_block": "the uniform block sampler",
+}
+
+
+def _spends(manifest) -> dict:
+    return {c.get("name"): c for c in manifest.get("components", []) if isinstance(c, dict)}
+
+
+def release_kind(manifest) -> str:
+    """How ``aggpub sample`` draws from this release: one of the keys of :data:`FIDELITY_REFERENCE`."""
+    spends = _spends(manifest)
+    rows = manifest.get("rows", {})
+    if "degree_sequences" in rows and "superedges" in rows and not manifest.get("superedges_sparse") \
+            and "superedge_estimates" in manifest:
+        return "degree_corrected_affinity" if "triangle_count" in spends else "degree_corrected"
+    return "uniform_block"
+
+
+def _nearest_epsilon(eps) -> float:
+    try:
+        e = float(eps)
+    except (TypeError, ValueError):
+        return 1.0
+    return min((0.5, 1.0, 2.0), key=lambda x: abs(math.log(max(e, 1e-9) / x)))
+
+
+def columns_guide(manifest) -> str:
+    """Which count column to use for what (Markdown), from the manifest."""
+    rows = manifest.get("rows", {})
+    if "superedges" not in rows:
+        return ""
+    has_estimate = "superedge_estimates" in manifest
+    lines = ["## Which column to use for what", ""]
+    if has_estimate:
+        lines += [
+            "- **`superedges.edge_count_estimate`** (the column to lead with): contact totals of a supernode or of "
+            "any group of supernodes, contact matrices, supergraph weights, synthetic networks. Non-negative, at "
+            "most `possible_pairs`, and made consistent: "
+            + ("every supernode's degree total (`2 x_AA + sum of x_AB`) and the whole table's total are the best "
+               "linear unbiased estimates from the noisy counts and the noisy degree sequences together."
+               if "degree_sequences" in rows else
+               "every supernode's degree total (`2 x_AA + sum of x_AB`) and the whole table's total are the sums "
+               "of the unbiased noisy counts.")
+            + (" (This release is sparse: its estimates are the clamped counts, biased upwards.)"
+               if manifest.get("superedges_sparse") else ""),
+            "- `superedges.edge_count_unclamped`: error bars. It is the mechanism's output itself (true count plus "
+            "noise of a known law, can be negative), so sums of it are unbiased and their intervals exact "
+            "(`aggpub.interval` uses it). Single cells are noisy; prefer the estimate for point values.",
+            "- `superedges.edge_count`: the noisy count clamped to `[0, possible_pairs]`, kept for older tools. "
+            "Do not add it up: clamping lifts every empty cell above zero.",
+        ]
+    else:
+        lines += ["- `superedges.edge_count_unclamped` for sums and error bars (unbiased); `edge_count` "
+                  "(clamped) for single cells only."]
+    if "degree_sequences" in rows:
+        lines += [
+            "- **`degree_sequences.degree_estimate`**: each supernode's members' numbers of contacts, sorted "
+            "(position 0 has the fewest): the degree distribution, per supernode or summed. Sorted, within "
+            "`[0, people - 1]`, and adding up per supernode to the degree totals of `edge_count_estimate`.",
+            "- `degree_sequences.degree_noisy`: the noisy sorted degrees as drawn (unbiased, can be negative); "
+            "`ci95_half_width` applies to each.",
+        ]
+    if "triangle_count" in _spends(manifest):
+        lines += ["- `triangle_count` in `manifest.json`: the noisy number of triangles of the whole network "
+                  "(ladder mechanism: its noise depends on the network and its scale is not published; it can be "
+                  "negative, clip it at 0). Synthetic networks are fitted to it."]
+    return "\n".join(lines) + "\n"
+
+
+def _range(fig, digits=2, pct=False):
+    lo, hi, nlo, nhi = fig
+    if pct:
+        return f"{(lo - 1) * 100:+.1f}% ({nlo}) to {(hi - 1) * 100:+.1f}% ({nhi})"
+    return f"{lo:.{digits}f} ({nlo}) to {hi:.{digits}f} ({nhi})"
+
+
+def synthesis_guide(manifest) -> str:
+    """What a synthetic network drawn from this release keeps and loses (Markdown), from the manifest."""
+    rows = manifest.get("rows", {})
+    if "superedges" not in rows:
+        return ("## Synthetic networks\n\nThis release has no superedge counts: `aggpub sample` cannot draw "
+                "synthetic networks from it.\n")
+    kind = release_kind(manifest)
+    eps = _nearest_epsilon(manifest.get("epsilon_total"))
+    ref = FIDELITY_REFERENCE[kind][eps]
+    keeps = ["the number of contacts in every superedge cell (its estimate, rounded without bias)"]
+    loses = ["who is in contact with whom: synthetic people are invented and their contacts drawn at random",
+             "any structure inside a supernode or between supernodes beyond what the released statistics carry "
+             "(communities that the grouping attributes do not follow, for example)"]
+    if kind.startswith("degree_corrected"):
+        keeps.append("every supernode's estimated degree sequence: heavy tails and hubs survive, up to the noise")
+        loses.append("which supernodes' members the hubs meet, beyond the cell totals")
+    else:
+        loses.append("degree heterogeneity: every member of a supernode gets the same expected number of "
+                     "contacts" + (" (this release is sparse)" if manifest.get("superedges_sparse") else
+                                   " (no degree sequences in this release)"))
+    if kind == "degree_corrected_affinity":
+        keeps.append("local clustering, through blocks of people of similar degree fitted to the released "
+                     "number of triangles")
+    else:
+        loses.append("local clustering: no triangle count in this release, so synthetic networks have little more "
+                     "clustering than random graphs")
+    text = [
+        "## What a synthetic network keeps and loses",
+        "",
+        f"`aggpub sample` draws synthetic networks from this release with {_KIND_TEXT[kind]}.",
+        "",
+        "Keeps: " + "; ".join(keeps) + ".",
+        "",
+        "Loses: " + "; ".join(loses) + ".",
+        "",
+        f"How well that works was measured on releases of the same kind at epsilon {eps:g} (the benchmark "
+        f"epsilon nearest this release's {manifest.get('epsilon_total')}), not on this release: its own true "
+        "figures are confidential. Over the seven development networks, synthetic against true "
+        "(lowest to highest, and on which network):",
+        "",
+        f"- contacts: {_range(ref['contacts_ratio'], pct=True)}",
+        f"- degree distribution, Kolmogorov-Smirnov distance: {_range(ref['degree_ks'], 3)}",
+        f"- largest degree: {_range(ref['largest_degree_ratio'])} times the true one",
+        f"- average clustering: {_range(ref['clustering_ratio'])} times the true one",
+        f"- final size of an epidemic (bond percolation at the transmissibility giving the true network R = 1.5; "
+        f"Newman, Phys. Rev. E 66, 2002): {_range(ref['final_size_ratio'])} times the true one",
+        "",
+        "Where a figure is far from 1 the network has structure the release does not carry (the online friendship "
+        "network's ego circles confine an epidemic that synthetic networks let spread). Simulate on several "
+        "synthetic networks and report their spread.",
+        "",
+        f"Source: {REFERENCE_SOURCE}.",
+    ]
+    return "\n".join(text) + "\n"
