@@ -712,7 +712,10 @@ def _render(people: Path, attributes, *, unit, max_contacts, node_column, epsilo
 
     lines += ["", f"# {'-' * 98}",
               f"# [components]: {_plain(next(s for s in POLICY_SECTIONS if s.name == 'components').meaning)}",
-              "# Components without a share split the budget equally."]
+              "# Components without a share split what the shares leave (the triangle count takes half the",
+              "# part of each other one)."]
+    if unit == "edge":
+        lines.append("# With nothing set: superedge counts 0.4, degree sequences 0.4, triangle count 0.2.")
     sizes_extra = (("Exact and free under unit \"edge\" (the person table is public).",) if unit == "edge" else
                    ("Noisy under unit \"person\" and paid from the budget; must stay enabled.",))
     lines += ["[components.supernode_sizes]"] + _key_lines("components.supernode_sizes.enabled", True,
@@ -721,7 +724,7 @@ def _render(people: Path, attributes, *, unit, max_contacts, node_column, epsilo
         lines += _key_lines("components.supernode_sizes.share", 0.2, active=False)
     lines += ["", "[components.superedge_counts]"]
     lines += _key_lines("components.superedge_counts.enabled", True)
-    lines += _key_lines("components.superedge_counts.share", 0.8 if unit == "person" else 1.0, active=False)
+    lines += _key_lines("components.superedge_counts.share", 0.8 if unit == "person" else 0.4, active=False)
     lines += _key_lines("components.superedge_counts.method", "auto", active=False)
     lines += ["", "[components.degree_histograms]"]
     lines += _key_lines("components.degree_histograms.enabled", False)
@@ -730,6 +733,15 @@ def _render(people: Path, attributes, *, unit, max_contacts, node_column, epsilo
     lines += _key_lines("components.weight_totals.enabled", False)
     lines += _key_lines("components.weight_totals.column", "minutes", active=False)
     lines += _key_lines("components.weight_totals.clip", 120, active=False)
+    if unit == "edge":  # under person neither has a derived sensitivity: the policy refuses them
+        lines += ["", "# Degree sequences and the triangle count make synthetic networks (aggpub sample) keep degree",
+                  "# heterogeneity and local clustering; both are on by default under unit \"edge\".",
+                  "[components.degree_sequences]"]
+        lines += _key_lines("components.degree_sequences.enabled", True, active=False)
+        lines += _key_lines("components.degree_sequences.share", 0.4, active=False)
+        lines += ["", "[components.triangle_count]"]
+        lines += _key_lines("components.triangle_count.enabled", True, active=False)
+        lines += _key_lines("components.triangle_count.share", 0.2, active=False)
 
     lines += _section_lines("ledger", active=False)
     lines += [
