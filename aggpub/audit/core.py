@@ -192,6 +192,13 @@ def _degree_section(release, truth, monte_carlo, source, plot, notes):
         dd["grouping_only"] = distribution_distances(truth.true_hist, group_pmf)
         dd["block_model_released"] = distribution_distances(truth.true_hist, block_pmf)
         dd["noise_only_block_model"] = distribution_distances(group_pmf, block_pmf)
+    if "degree_sequences" in release.tables:
+        # the degree distribution the released sequences give (their estimates, rounded), beside the main basis
+        est = release.tables["degree_sequences"].column("degree_estimate").to_numpy()
+        seq_hist = deg.true_degree_histogram(np.rint(est))
+        dd["from_degree_sequences"] = distribution_distances(truth.true_hist, seq_hist)
+        dd["from_degree_sequences"]["note"] = ("the released degree estimates (degree_sequences.degree_estimate, "
+                                               "rounded) against the true degrees; without noise they are exact")
     if "degree_histograms" in release.tables:
         _histogram_degrees(release, truth, monte_carlo, source, dd, plot)
     elif have_edges:

@@ -332,6 +332,10 @@ def render_html(audit: dict) -> str:
         if mc:
             rows.append(["fresh noise draws: mean &plusmn; sd [5%, 95%]", _spread_text(mc.get("ks")),
                          _spread_text(mc.get("wasserstein1")), _spread_text(mc.get("l1"))])
+        seq = dd.get("from_degree_sequences")
+        if seq:
+            rows.append(["released degree sequences (their estimates) against true network", _fmt(seq.get("ks")),
+                         _fmt(seq.get("wasserstein1")), _fmt(seq.get("l1"))])
         parts.append(_table(["", "KS distance", "Wasserstein-1", "L1"], rows))
         parts.append('<p class="note">KS: largest gap between the two cumulative distributions. Wasserstein-1: '
                      "area between them, in contacts per person. L1: sum of absolute differences of the shares. "
