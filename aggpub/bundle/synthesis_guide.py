@@ -24,7 +24,7 @@ FIDELITY_REFERENCE = {
         0.5: {"contacts_ratio": (0.998, 1.067, "email", "town"), "degree_ks": (0.051, 0.501, "town", "facebook"),
               "largest_degree_ratio": (0.152, 1.241, "facebook", "town"),
               "clustering_ratio": (0.025, 0.813, "facebook", "kenya"),
-              "final_size_ratio": (0.097, 1.109, "facebook", "town")},
+              "final_size_ratio": (0.097, 1.11, "facebook", "town")},
         1.0: {"contacts_ratio": (0.999, 1.027, "highschool", "town"), "degree_ks": (0.028, 0.502, "town", "facebook"),
               "largest_degree_ratio": (0.154, 1.21, "facebook", "town"),
               "clustering_ratio": (0.025, 0.812, "facebook", "kenya"),
