@@ -138,8 +138,9 @@ def columns_guide(manifest) -> str:
         ]
     if "triangle_count" in _spends(manifest):
         lines += ["- `triangle_count` in `manifest.json`: the noisy number of triangles of the whole network "
-                  "(ladder mechanism: its noise depends on the network and its scale is not published; it can be "
-                  "negative, clip it at 0). Synthetic networks are fitted to it."]
+                  "(ladder mechanism: the budget table's sensitivity 1 and scale `2 / epsilon` are those of its "
+                  "rung score; its noise in triangles depends on the network and is not published). It can be "
+                  "negative: clip it at 0. Synthetic networks are fitted to it."]
     return "\n".join(lines) + "\n"
 
 

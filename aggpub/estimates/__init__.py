@@ -1,6 +1,10 @@
 """Post-processing of released values (reads public tables only; costs no privacy budget).
 
 * :mod:`aggpub.estimates.consistency` -- clamping, isotonic regression and consistent histograms.
+* :mod:`aggpub.estimates.counts` -- non-negative superedge estimates with unbiased per-supernode and
+  whole-table sums (the bundle's ``edge_count_estimate``).
+* :mod:`aggpub.estimates.degrees` -- degree estimates from the noisy sorted degree sequences
+  (``degree_estimate``).
 * :mod:`aggpub.estimates.intervals` -- the exact law of sums of discrete Laplace noise, intervals
   for sums of cells, cut-query masks.
 * :mod:`aggpub.estimates.supergraph` -- the release as a networkx graph of supernodes.
