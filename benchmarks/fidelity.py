@@ -160,9 +160,15 @@ def load(name: str):
     return edges.select(["source", "target"]), people, policy
 
 
+SHARES = None  # --shares: explicit split (superedges, degree sequences, triangles) for method "after"
+
+
 def policy_for(policy: dict, eps: float, method: str) -> dict:
     """The plainest policy at ``eps``; ``before`` switches the new components off (superedges take all)."""
     p = json.loads(json.dumps(policy))
+    if method == "after" and SHARES is not None:
+        p["components"] = {name: {"share": float(s)} for name, s in
+                           zip(("superedge_counts", "degree_sequences", "triangle_count"), SHARES)}
     p.setdefault("privacy", {})["epsilon"] = float(eps)
     p["privacy"]["unit"] = "edge"
     if method == "before":
@@ -270,7 +276,11 @@ def main(argv=None):
     p.add_argument("--percolations", type=int, default=10, help="percolation draws per graph")
     p.add_argument("--seed", type=int, default=12, help="benchmark seed (the releases are seeded: not private)")
     p.add_argument("--json", help="write every row (with spreads) to this JSON file")
+    p.add_argument("--shares", nargs=3, type=float, metavar=("SUPEREDGES", "DEGREES", "TRIANGLES"),
+                   help="method 'after' with this explicit split of epsilon instead of the default")
     a = p.parse_args(argv)
+    global SHARES
+    SHARES = tuple(a.shares) if a.shares else None
     methods = list(METHODS) if a.method == "all" else [a.method]
     print(HEADER)
     run(a.networks, a.epsilons, methods, a.kinds, a.releases, a.samples, a.percolations, a.seed, a.json,
