@@ -167,21 +167,25 @@ def test_zero_cells_pass_independently():
 # ----------------------------------------------------------------------------- power: wrong variants are caught
 
 def _forget_zero_cells(monkeypatch):
-    monkeypatch.setattr(sparse, "_zero_cell_ranks", lambda n, p, src: np.empty(0, dtype=np.int64))
+    monkeypatch.setattr(sparse, "_zero_cell_ranks", lambda n, theta, rate, src: np.empty(0, dtype=np.int64))
 
 
-def _wrong_tail(monkeypatch):  # zero cells' values from a tail twice as steep
-    real = sparse._geometric_chunk
-    monkeypatch.setattr(sparse, "_geometric_chunk", lambda la, k, src: real(2 * la, k, src))
+def _wrong_tail(monkeypatch):  # zero cells' values from a tail twice as steep (rate s/2^k doubled)
+    real = sparse._zero_cell_values
+    monkeypatch.setattr(sparse, "_zero_cell_values",
+                        lambda theta, rate, n, src: real(theta, (2 * rate[0], rate[1]), n, src))
 
 
 def _tail_without_normaliser(monkeypatch):  # P(Z >= t) taken as a^t, forgetting 1/(1+a)
-    monkeypatch.setattr(sparse, "pass_probability", lambda t, la: math.exp(t * la))
+    def bounds(theta, s, k, bits):
+        return sparse._exp_neg_bounds(theta * sparse.Fraction(s, 1 << k), bits)
+
+    monkeypatch.setattr(sparse, "_pass_probability_bounds", bounds)
 
 
 def _threshold_off_by_one(monkeypatch):  # zero cells start at theta + 1
-    real = sparse._geometric_chunk
-    monkeypatch.setattr(sparse, "_geometric_chunk", lambda la, k, src: real(la, k, src) + 1)
+    real = sparse._zero_cell_values
+    monkeypatch.setattr(sparse, "_zero_cell_values", lambda theta, rate, n, src: real(theta, rate, n, src) + 1)
 
 
 @pytest.mark.parametrize("variant", [_forget_zero_cells, _wrong_tail, _tail_without_normaliser,
