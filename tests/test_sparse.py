@@ -167,7 +167,7 @@ def test_zero_cells_pass_independently():
 # ----------------------------------------------------------------------------- power: wrong variants are caught
 
 def _forget_zero_cells(monkeypatch):
-    monkeypatch.setattr(sparse, "_zero_cell_ranks", lambda n, theta, rate, src: np.empty(0, dtype=np.int64))
+    monkeypatch.setattr(sparse, "_zero_cell_ranks", lambda n, p, src: np.empty(0, dtype=np.int64))
 
 
 def _wrong_tail(monkeypatch):  # zero cells' values from a tail twice as steep (rate s/2^k doubled)

@@ -34,8 +34,8 @@ binary expansion of ``c / 2**k``, so one byte decides it with probability
 Their Algorithm 2 turns this into the discrete Laplace law: draw a geometric
 ``G`` with ``P(G >= g) = a**g`` (``a = exp(-s/t)``), a fair sign, reject the
 pair (negative sign, ``G = 0``), output the signed ``G``.  The geometric is
-drawn here as ``G = Q m + R`` with ``m = max(1, floor(t / s))`` (about the
-noise scale): ``R`` in ``[0, m)`` is a uniform integer accepted with
+drawn here as ``G = Q m + R`` with ``m`` the largest power of two not above
+``max(1, t / s)`` (between half the noise scale and the scale): ``R`` in ``[0, m)`` is a uniform integer accepted with
 probability ``exp(-s R / t)`` (a truncated geometric by rejection; the
 acceptance rate is about ``1 - 1/e`` or more) and ``Q`` counts the successes of
 Bernoulli(exp(-s m / t)) before the first failure.  ``Q`` and ``R`` are
@@ -404,9 +404,9 @@ class _ByteStream:
         return out
 
     def words(self, n: int, width: int) -> np.ndarray:
-        """``n`` uniform ``width``-bit words (width 8, 16, 32 or 64) as uint64."""
+        """``n`` uniform ``width``-bit words (width 8, 16, 32 or 64), as unsigned integers of that width."""
         raw = self.take(n * (width // 8))
-        return raw.view(f"<u{width // 8}").astype(np.uint64)
+        return raw.view(f"<u{width // 8}")
 
     def bits(self, n: int) -> np.ndarray:
         """``n`` fair bits as a bool array."""
@@ -427,33 +427,23 @@ def _below(stream: _ByteStream, m, n: int | None = None) -> np.ndarray:
     so at least half the words are accepted.  ``m`` is either a Python int
     (with ``n`` draws) or an array of per-draw bounds.
     """
-    if n is not None:  # one bound for all draws: limit computed once
+    if n is not None:  # one bound for all draws: limit computed once; results in the words' own dtype
         m = int(m)
         width = _width_for(m)
-        limit = ((1 << width) // m) * m
-        out = np.empty(n, dtype=np.uint64)
-        pending = np.arange(n)
-        first = True
-        while pending.size:
-            x = stream.words(pending.size, width)
-            if limit == 1 << width:
-                ok = None
-            else:
-                ok = x < np.uint64(limit)
-            if m & (m - 1) == 0:
-                vals = x & np.uint64(m - 1)
-            else:
-                vals = x % np.uint64(m)
-            if ok is None:
-                if first:
-                    return vals
-                out[pending] = vals
-                break
-            if first and bool(ok.all()):
-                return vals
-            out[pending[ok]] = vals[ok]
-            pending = pending[~ok]
-            first = False
+        dtype = np.dtype(f"u{width // 8}")
+        if m & (m - 1) == 0:  # a power of two: every word is kept, masked
+            return stream.words(n, width) & dtype.type(m - 1)
+        limit = dtype.type(((1 << width) // m) * m)
+        mod = dtype.type(m)
+        x = stream.words(n, width)
+        ok = x < limit
+        out = x % mod
+        bad = np.flatnonzero(~ok)
+        while bad.size:
+            y = stream.words(bad.size, width)
+            good = y < limit
+            out[bad[good]] = y[good] % mod
+            bad = bad[~good]
         return out
     m = np.asarray(m, dtype=np.uint64)
     out = np.zeros(m.size, dtype=np.uint64)
@@ -463,7 +453,7 @@ def _below(stream: _ByteStream, m, n: int | None = None) -> np.ndarray:
     pending = np.arange(m.size)
     mm = m
     while pending.size:
-        x = stream.words(pending.size, width)
+        x = stream.words(pending.size, width).astype(np.uint64)
         if width < 64:
             span = np.uint64(1 << width)
             ok = x < span - span % mm
@@ -528,38 +518,43 @@ def _bern_dyadic(stream: _ByteStream, c, k: int, n: int | None = None) -> np.nda
 
 
 def _words_below(stream: _ByteStream, limit: int, width: int, n: int) -> np.ndarray:
-    """``n`` uniform integers on ``[0, limit)`` by plain rejection of ``width``-bit words (uint64)."""
+    """``n`` uniform integers on ``[0, limit)``, ``limit < 2**width``, by plain rejection of ``width``-bit words."""
     x = stream.words(n, width)
-    bad = np.flatnonzero(x >= np.uint64(limit))
+    lim = x.dtype.type(limit)
+    bad = np.flatnonzero(x >= lim)
+    if bad.size:
+        x = x.copy()
     while bad.size:
         y = stream.words(bad.size, width)
         x[bad] = y
-        bad = bad[y >= np.uint64(limit)]
+        bad = bad[y >= lim]
     return x
 
 
-# First failure among the Bernoulli(1/K) coins, K = 1..10, from one 32-bit word:
-# x uniform on [0, C * 10!) (C = floor(2**32 / 10!) = 1183, so 99.95 % of the words are kept);
-# K1 > j iff x < C * 10! / j!, probability exactly 1 / j! (j! divides 10!).
-_FACT_J = 10
-_FACT_C = (1 << 32) // math.factorial(_FACT_J)
+# First failure among the Bernoulli(1/K) coins, K = 1..7, from one 16-bit word:
+# x uniform on [0, C * 7!) (C = floor(2**16 / 7!) = 13, so 99.98 % of the words are kept);
+# K1 > j iff x < C * 7! / j!, probability exactly 1 / j! (j! divides 7!).
+_FACT_J = 7
+_FACT_C = (1 << 16) // math.factorial(_FACT_J)
 _FACT_LIMIT = _FACT_C * math.factorial(_FACT_J)
 _FACT_THRESHOLDS = np.array([_FACT_C * (math.factorial(_FACT_J) // math.factorial(j))
-                             for j in range(_FACT_J, 0, -1)], dtype=np.uint64)
+                             for j in range(_FACT_J, 0, -1)], dtype=np.uint16)
+# K1 for every kept word: 1 + #{j <= 7 : x < C * 7!/j!} (a 256 KiB lookup table; words >= C * 7! never used)
+_FACT_TABLE = ((_FACT_THRESHOLDS.size + 1)
+               - np.searchsorted(_FACT_THRESHOLDS, np.arange(1 << 16), side="right")).astype(np.int32)
 
 
 def _first_factorial_failure(stream: _ByteStream, n: int) -> np.ndarray:
     """``n`` draws of ``K1``, the index of the first failure among independent coins
     ``Bernoulli(1/1), Bernoulli(1/2), Bernoulli(1/3), ...`` (so ``P(K1 > j) = 1/j!``, ``K1 >= 2``).
 
-    One uniform integer decides the first 10 coins at once: with ``x``
-    uniform on ``[0, C * 10!)``, ``K1 > j`` iff ``x < C * 10!/j!``, an event of
-    probability exactly ``1/j!``.  When ``K1 > 10`` (probability ``1/10!``) the
-    coins from 11 on are drawn one by one; they are independent of the first
-    10, so the law is unchanged.
+    One uniform integer decides the first 7 coins at once: with ``x``
+    uniform on ``[0, C * 7!)``, ``K1 > j`` iff ``x < C * 7!/j!``, an event of
+    probability exactly ``1/j!``.  When ``K1 > 7`` (probability ``1/7!``) the
+    coins from 8 on are drawn one by one; they are independent of the first
+    7, so the law is unchanged.
     """
-    x = _words_below(stream, _FACT_LIMIT, 32, n)
-    k1 = (_FACT_THRESHOLDS.size + 1) - np.searchsorted(_FACT_THRESHOLDS, x, side="right").astype(np.int64)
+    k1 = _FACT_TABLE[_words_below(stream, _FACT_LIMIT, 16, n)]
     far = np.flatnonzero(k1 > _FACT_J)
     j = _FACT_J + 1
     while far.size:
@@ -627,7 +622,8 @@ def _bern_exp(stream: _ByteStream, c: int, k: int, n: int) -> np.ndarray:
 def _geometric(stream: _ByteStream, s: int, k: int, n: int, cap: int | None = None) -> np.ndarray:
     """``n`` exact draws of ``G >= 0`` with ``P(G >= g) = exp(-g s / 2**k)`` (int64).
 
-    ``G = Q m + R`` with ``m = max(1, floor(2**k / s))``: ``R`` uniform on
+    ``G = Q m + R`` with ``m`` the largest power of two ``<= max(1, 2**k / s)``
+    (so ``1/2 < s m / 2**k <= 1`` when ``s <= 2**k``): ``R`` uniform on
     ``[0, m)`` accepted with probability ``exp(-s R / 2**k)`` (so
     ``P(R = r) ~ a**r`` on ``[0, m)``), ``Q`` the number of successes of
     Bernoulli(``a**m``) before the first failure, ``a = exp(-s / 2**k)``.
@@ -642,14 +638,14 @@ def _geometric(stream: _ByteStream, s: int, k: int, n: int, cap: int | None = No
     if not (1 <= s <= _TOP and 0 <= k <= _MAX_K):
         raise ValueError(f"rate s / 2**k needs 1 <= s <= 2**62 and 0 <= k <= 62, got s={s}, k={k}")
     t = 1 << k
-    m = max(1, t // s)
+    m = 1 << ((t // s).bit_length() - 1) if s <= t else 1  # largest power of two <= 2**k / s
     r_part = np.zeros(n, dtype=np.int64)
     if m > 1:
         pending = np.arange(n)
         while pending.size:
             r = _below(stream, m, pending.size)
-            ok = _bern_exp_unit(stream, r * np.uint64(s), k)  # s * r < s * m <= 2**k
-            r_part[pending[ok]] = r[ok].astype(np.int64)
+            ok = _bern_exp_unit(stream, r.astype(np.uint64) * np.uint64(s), k)  # s * r < s * m <= 2**k
+            r_part[pending[ok]] = r[ok]
             pending = pending[~ok]
     q_part = np.zeros(n, dtype=np.int64)
     idx = np.arange(n)
@@ -658,6 +654,8 @@ def _geometric(stream: _ByteStream, s: int, k: int, n: int, cap: int | None = No
         idx = idx[b]
         q_part[idx] += 1
     limit = _MAX_VALUE if cap is None else int(cap)
+    if n == 0 or int(q_part.max()) <= (limit - (m - 1)) // m:  # q m + r <= q m + m - 1 <= limit
+        return q_part * m + r_part
     too_big = q_part > (limit - r_part) // m
     if too_big.any():
         if cap is None:

@@ -197,11 +197,20 @@ def _candidate_rate(threshold: int, s: int, k: int, bounds_fn) -> tuple[int, int
     return lam_s, lam_k
 
 
-def _zero_cell_ranks(n_zero: int, threshold: int, rate: tuple[int, int], source: RandomSource) -> np.ndarray:
+@dataclass(frozen=True)
+class _ZeroCellLaw:
+    """What decides a zero cell's fate: the threshold and the sampled rate ``s / 2**k``."""
+
+    threshold: int
+    s: int
+    k: int
+
+
+def _zero_cell_ranks(n_zero: int, law: _ZeroCellLaw, source: RandomSource) -> np.ndarray:
     r"""Ranks (0-based, increasing) of the zero cells that pass: each independently with probability ``p``.
 
     ``p = P(Z >= threshold)`` for the discrete Laplace law with
-    :math:`a = e^{-s/2^k}`, ``rate = (s, k)``.  Exact, in two steps:
+    :math:`a = e^{-s/2^k}` (``law``).  Exact, in two steps:
 
     1. *Candidates*: each zero cell is a candidate independently with
        probability :math:`1 - e^{-\lambda}` for a dyadic :math:`\lambda` chosen
@@ -221,7 +230,7 @@ def _zero_cell_ranks(n_zero: int, threshold: int, rate: tuple[int, int], source:
     """
     if n_zero == 0:
         return np.empty(0, dtype=np.int64)
-    s, k = rate
+    threshold, s, k = law.threshold, law.s, law.k
     bounds_fn = _pass_probability_bounds
     p_bounds = lambda bits: bounds_fn(threshold, s, k, bits)  # noqa: E731
     lam_s, lam_k = _candidate_rate(threshold, s, k, bounds_fn)
@@ -320,7 +329,7 @@ def sparse_threshold_release(nz_flat, nz_count, n_cells: int, mechanism: Geometr
     n_zero = n_cells - len(nz_flat)
     rate = mechanism.rate
     rate_sk = (rate.numerator, rate.denominator.bit_length() - 1)
-    ranks = _zero_cell_ranks(n_zero, threshold, rate_sk, source)
+    ranks = _zero_cell_ranks(n_zero, _ZeroCellLaw(threshold, *rate_sk), source)
     k = len(ranks)
     if k:
         zeros_before = nz_flat - np.arange(len(nz_flat), dtype=np.int64)  # zero cells before each non-zero cell
