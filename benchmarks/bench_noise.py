@@ -34,7 +34,10 @@ import time
 
 import numpy as np
 
-from aggpub.noise.ledger import ChargeOnFirstDraw
+try:  # the ledger moves to aggpub.budget on main
+    from aggpub.budget.ledger import ChargeOnFirstDraw
+except ImportError:
+    from aggpub.noise.ledger import ChargeOnFirstDraw
 from aggpub.noise.mechanisms import GeometricMechanism
 from aggpub.noise.sampler import SystemRandomSource
 

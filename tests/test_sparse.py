@@ -246,6 +246,29 @@ def test_wrong_count_is_caught_at_scale(big_table, monkeypatch):
     assert z > 10
 
 
+def test_exact_selection_bounds_and_candidate_rate():
+    """The rigorous bounds on p = a^theta / (1 + a) [GRS09] bracket an independent high-precision value
+    (Python's decimal, whose exp is correctly rounded); the candidate probability 1 - exp(-lambda) of the
+    exact skip walk is at least p and only slightly above it (the thinning keeps almost every candidate)."""
+    from decimal import Decimal, localcontext
+
+    for eps, sens, theta in ((1.0, 1.0, 2), (0.1, 1.0, 40), (0.1, 100.0, 3000), (3.0, 1.0, 9), (1.0, 1.0, 400)):
+        rate = GeometricMechanism(eps, sens).rate
+        s, k = rate.numerator, rate.denominator.bit_length() - 1
+        lo, hi = sparse._pass_probability_bounds(theta, s, k, 100)
+        with localcontext() as ctx:
+            ctx.prec = 60
+            g = Decimal(s) / Decimal(2 ** k)
+            ref = (-theta * g).exp() / (1 + (-g).exp())
+            assert Decimal(lo.numerator) / Decimal(lo.denominator) <= ref * (1 + Decimal(10) ** -50)
+            assert Decimal(hi.numerator) / Decimal(hi.denominator) >= ref * (1 - Decimal(10) ** -50)
+        lam_s, lam_k = sparse._candidate_rate(theta, s, k, sparse._pass_probability_bounds)
+        q_lo, _ = sparse._one_minus_exp_neg_bounds(sparse.Fraction(lam_s, 2 ** lam_k), 100)
+        assert q_lo >= hi
+        if float(hi) > 1e-15:  # above the smallest candidate rate 2**-54
+            assert float(q_lo / hi) < 1 + 1e-6
+
+
 def test_flat_to_pair_inverts_cell_index():
     for n in (1, 2, 7, 50):
         a, b = comp.all_cells(n)

@@ -26,23 +26,25 @@ output 1 iff that failure happened at an odd ``K``; for ``x > 1`` multiply
 floor(x)))).  Here ``x`` is always a dyadic rational ``c / 2**k`` and
 ``Bernoulli(x / K)`` is drawn as the product ``Bernoulli(c / 2**k)`` times
 ``Bernoulli(1 / K)`` (independent, so the product has probability ``x / K``)
-which keeps every integer below ``2**62``.  ``Bernoulli(c / 2**k)`` is decided
-lazily: random bytes are compared, from the most significant one, with the
-binary expansion of ``c / 2**k``, so one byte decides it with probability
-255/256.  ``Bernoulli(1 / K)`` is "a uniform integer in ``[0, K)`` is 0".
+which keeps every integer at or below ``2**62``.  ``Bernoulli(c / 2**k)`` is
+decided lazily: random bytes are compared, from the most significant one, with
+the binary expansion of ``c / 2**k``, so one byte decides it with probability
+255/256.  The coins ``Bernoulli(1 / K)`` for ``K <= 7`` are decided together by
+one uniform integer below ``13 * 7!`` (the first failure is after ``j`` iff it
+is below ``13 * 7! / j!``); later ones are "a uniform integer in ``[0, K)`` is 0".
 
 Their Algorithm 2 turns this into the discrete Laplace law: draw a geometric
 ``G`` with ``P(G >= g) = a**g`` (``a = exp(-s/t)``), a fair sign, reject the
 pair (negative sign, ``G = 0``), output the signed ``G``.  The geometric is
 drawn here as ``G = Q m + R`` with ``m`` the largest power of two not above
-``max(1, t / s)`` (between half the noise scale and the scale): ``R`` in ``[0, m)`` is a uniform integer accepted with
-probability ``exp(-s R / t)`` (a truncated geometric by rejection; the
+``max(1, t / s)`` (between half the noise scale and the scale): ``R`` in
+``[0, m)`` is a uniform integer accepted with probability ``exp(-s R / t)`` (a truncated geometric by rejection; the
 acceptance rate is about ``1 - 1/e`` or more) and ``Q`` counts the successes of
 Bernoulli(exp(-s m / t)) before the first failure.  ``Q`` and ``R`` are
 independent and ``P(Q m + R = g) = (1 - a) a**g``; this is the block
 decomposition behind [1]_'s Algorithm 2 (which uses ``m = t`` and a division
 by ``s``), chosen so that ``R`` costs about ``log2(scale)`` random bits rather
-than ``log2(t)``.  Every step uses integers below ``2**62`` in int64/uint64.
+than ``log2(t)``.  Every step uses integers at most ``2**62`` in int64/uint64.
 
 The rate ``s / t`` and overflow
 -------------------------------
@@ -375,7 +377,7 @@ class _ByteStream:
 
     One stream serves one sampling call; bytes left over at its end are
     dropped, never reused.  Blocks start near ``hint`` bytes and double (up to
-    16 MiB) so that the many small requests of the rejection loops' tails do
+    4 MiB) so that the many small requests of the rejection loops' tails do
     not each cost a system call.
     """
 
@@ -393,7 +395,7 @@ class _ByteStream:
         if end > self._buf.size:
             rest = self._buf[self._pos:]
             fetch = max(n - rest.size, self._block)
-            self._block = min(2 * self._block, 1 << 24)
+            self._block = min(2 * self._block, 1 << 22)
             new = self._source.random_bytes(fetch)
             if not isinstance(new, np.ndarray) or new.shape != (fetch,):
                 raise RuntimeError(f"{type(self._source).__name__}.random_bytes({fetch}) returned a wrong shape")
@@ -914,7 +916,7 @@ def sample_discrete_laplace_exact(rate, size: int, source: RandomSource, *,
         :math:`-\log\alpha`, at least :data:`MIN_RATE`.  The law sampled has
         the rate ``s / 2**k`` of :func:`dyadic_rate`: equal to ``rate`` when
         ``rate`` is a dyadic rational with ``k <= 62`` (every float of
-        magnitude between ``2**-10`` and ``2**9`` is), otherwise the largest
+        magnitude between ``2**-10`` and ``2**62`` is), otherwise the largest
         such value below it (never less noise than asked for).
     size : int
         Number of values, ``>= 0``.
