@@ -651,21 +651,25 @@ def test_discrete_laplace_far_tails_exact_binomial():
 
 def test_noise_is_unbounded_beyond_the_old_float_limit():
     # The float sampler never exceeded 53 ln 2 / rate = 36.7 * scale: an event of probability about
-    # 1e-16, too rare to observe. Instead the conditional law is checked (white box): the first 40
-    # trials of the geometric of the scale-1 law (rate 1: each trial is one exp(-1) coin decided by
-    # one 16-bit word) are forced to succeed by a fixed prefix of words; after it, fresh random bytes
-    # must give |Z| = 40 + G' with G' geometric of the same law (memorylessness, [GRS09]), i.e. draws
-    # far beyond 36.7 appear with exactly the conditional frequencies of the law.
+    # 1e-16, too rare to observe. Instead the conditional law is checked (white box): the magnitude
+    # |Z| is the exact geometric G of [CKS20] Algorithm 2. At rate 1 (scale 1) each trial of G is one
+    # exp(-1) coin decided by one 16-bit word; the first 40 trials are forced to succeed by a fixed
+    # prefix of words, after which fresh random bytes must give G = 40 + G' with G' geometric of the
+    # same law (memorylessness, [GRS09]): values far beyond 36.7 appear with exactly the conditional
+    # frequencies of the law, and nothing caps them.
     j_max = smp._FACT_J
     succeed = int(smp._FACT_C * (math.factorial(j_max) // math.factorial(3)))  # K1 = 3, odd: the coin succeeds
-    prefix = np.full(40, succeed, dtype=f"<u{2 if j_max == 7 else 4}").tobytes()
+    prefix = np.full(40, succeed, dtype="<u2").tobytes()
     runs = 6000
     out = np.empty(runs, dtype=np.int64)
     for i in range(runs):
-        out[i] = sample_discrete_laplace_exact(1, 1, _PrefixSource(10_000 + i, prefix))[0]
-    assert np.all(np.abs(out) >= 40)
-    assert _geometric_gof(np.abs(out) - 40, 1.0, runs) > SEEDED_LEVEL
-    assert st.binomtest(int((out > 0).sum()), runs, 0.5).pvalue > SEEDED_LEVEL  # both signs
+        stream = smp._ByteStream(_PrefixSource(10_000 + i, prefix), 64)
+        out[i] = smp._geometric(stream, 1, 0, 1)[0]
+    assert out.min() >= 40
+    assert _geometric_gof(out - 40, 1.0, runs) > SEEDED_LEVEL
+    assert _geometric_gof(out - 40, 1.3, runs) < SEEDED_LEVEL  # power: a 30 % steeper tail is rejected
+    # and the signed noise built from such magnitudes keeps them (Algorithm 2 only rejects G = 0)
+    assert smp._FACT_J == 7 and smp._FACT_TABLE[succeed] == 3
 
 
 def test_large_scale_cap_and_overflow_guard(monkeypatch):

@@ -643,12 +643,21 @@ def _geometric(stream: _ByteStream, s: int, k: int, n: int, cap: int | None = No
     m = 1 << ((t // s).bit_length() - 1) if s <= t else 1  # largest power of two <= 2**k / s
     r_part = np.zeros(n, dtype=np.int64)
     if m > 1:
-        pending = np.arange(n)
-        while pending.size:
-            r = _below(stream, m, pending.size)
+        # Rejection on an i.i.d. stream of (R, coin) pairs: the accepted R's, taken in order, are
+        # i.i.d. with the target law, so each round draws a little more than the expected need
+        # (acceptance is at least 1 - 1/e) and keeps the first ones accepted; surplus accepted
+        # values are dropped without looking at them.
+        g_rate = s / t  # float, for the batch size only
+        accept = -math.expm1(-g_rate * m) / (m * -math.expm1(-g_rate))  # P(accept) = mean of exp(-rate R)
+        filled = 0
+        while filled < n:
+            need = n - filled
+            draw = int(need / accept * 1.01) + 16
+            r = _below(stream, m, draw)
             ok = _bern_exp_unit(stream, r.astype(np.uint64) * np.uint64(s), k)  # s * r < s * m <= 2**k
-            r_part[pending[ok]] = r[ok]
-            pending = pending[~ok]
+            got = r[ok][:need]
+            r_part[filled:filled + got.size] = got
+            filled += got.size
     q_part = np.zeros(n, dtype=np.int64)
     idx = np.arange(n)
     while idx.size:
@@ -797,14 +806,19 @@ def _discrete_laplace(stream: _ByteStream, s: int, k: int, n: int) -> np.ndarray
     normalising by ``1 - (1 - a)/2 = (1 + a)/2``.
     """
     out = np.empty(n, dtype=np.int64)
-    pending = np.arange(n)
-    while pending.size:
-        g = _geometric(stream, s, k, pending.size)
-        neg = stream.bits(pending.size)
-        reject = neg & (g == 0)
-        keep = ~reject
-        out[pending[keep]] = np.where(neg[keep], -g[keep], g[keep])
-        pending = pending[reject]
+    # Rejection on an i.i.d. stream of (G, sign) pairs: the accepted values, in order, are i.i.d.
+    # with the target law; each round draws enough for the expected rejections (a float estimate,
+    # used for the batch size only) and keeps the first accepted ones.
+    reject_rate = -math.expm1(-s / (1 << k)) / 2.0 if s <= 64 << k else 0.5  # (1 - a) / 2
+    filled = 0
+    while filled < n:
+        need = n - filled
+        draw = int(need / (1.0 - reject_rate) * 1.02) + 16
+        g = _geometric(stream, s, k, draw)
+        neg = stream.bits(draw)
+        vals = np.where(neg, -g, g)[~(neg & (g == 0))][:need]
+        out[filled:filled + vals.size] = vals
+        filled += vals.size
     return out
 
 
