@@ -34,10 +34,7 @@ import time
 
 import numpy as np
 
-try:  # the ledger moves to aggpub.budget on main
-    from aggpub.budget.ledger import ChargeOnFirstDraw
-except ImportError:
-    from aggpub.noise.ledger import ChargeOnFirstDraw
+from aggpub.budget.ledger import ChargeOnFirstDraw
 from aggpub.noise.mechanisms import GeometricMechanism
 from aggpub.noise.sampler import SystemRandomSource
 

@@ -466,12 +466,9 @@ def test_default_random_bytes_come_from_uniform_and_are_uniform():
 
 
 def test_charge_on_first_draw_runs_before_exact_noise():
-    # The release pipeline wraps its source in ChargeOnFirstDraw, which only forwards uniform():
-    # the exact sampler must still go through it, after the charge.
-    try:  # the ledger moves to aggpub.budget on main
-        from aggpub.budget.ledger import ChargeOnFirstDraw
-    except ImportError:
-        from aggpub.noise.ledger import ChargeOnFirstDraw
+    # The release pipeline wraps its source in ChargeOnFirstDraw, which forwards uniform() and
+    # random_bytes(): the exact sampler must go through it, after the charge.
+    from aggpub.budget.ledger import ChargeOnFirstDraw
 
     events = []
 
@@ -479,6 +476,10 @@ def test_charge_on_first_draw_runs_before_exact_noise():
         def uniform(self, n):
             events.append("draw")
             return super().uniform(n)
+
+        def random_bytes(self, n):
+            events.append("draw")
+            return super().random_bytes(n)
 
     guarded = ChargeOnFirstDraw(Src(3), lambda: events.append("charge"))
     x = GeometricMechanism(1.0, 1.0).noise(50_000, guarded)

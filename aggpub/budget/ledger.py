@@ -454,7 +454,7 @@ class _Closing:
 
 
 class ChargeOnFirstDraw(RandomSource):
-    """A random source that runs ``before_noise()`` once, before handing out its first uniform.
+    """A random source that runs ``before_noise()`` once, before handing out its first random value.
 
     The release pipeline wraps its source in this, so the ledger is charged
     before any random number exists, wherever in the pipeline (grouping,
@@ -481,11 +481,19 @@ class ChargeOnFirstDraw(RandomSource):
     def description(self) -> str:
         return self._source.description
 
-    def uniform(self, n: int):
+    def _charge_once(self) -> None:
         if not self._done:
             self._before_noise()
             self._done = True
+
+    def uniform(self, n: int):
+        self._charge_once()
         return self._source.uniform(n)
+
+    def random_bytes(self, n: int):
+        """The wrapped source's own bytes (the exact sampler's input), after the charge."""
+        self._charge_once()
+        return self._source.random_bytes(n)
 
     def __repr__(self) -> str:
         return f"ChargeOnFirstDraw({self._source!r})"
