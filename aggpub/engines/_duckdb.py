@@ -9,6 +9,8 @@ are :mod:`aggpub.ingest`'s; this module only reads and counts.
 
 from __future__ import annotations
 
+__all__ = ["DuckDBEngine", "default_memory_limit", "fetch_arrow", "quote_ident", "quote_literal"]
+
 import os
 import re
 import warnings
@@ -118,9 +120,12 @@ def _column_type(name: str) -> ColumnType:
 
 
 def _missing_id_sql(expr: str, spellings) -> str:
-    """SQL true when an id (as text) is null, or empty or one of ``spellings`` after trimming spaces, any case."""
+    """SQL true when an id (as text) is null, or empty or one of ``spellings`` after trimming spaces, any case.
+
+    Only U+0020 is trimmed (DuckDB's one-argument trim() also takes other Unicode spaces).
+    """
     listed = ", ".join(quote_literal(x) for x in spellings)
-    return f"({expr} IS NULL OR lower(trim({expr})) IN ({listed}))"
+    return f"({expr} IS NULL OR lower(trim({expr}, ' ')) IN ({listed}))"
 
 
 def _unreadable(source: Source, exc: Exception) -> InputError:

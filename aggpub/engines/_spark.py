@@ -124,9 +124,9 @@ def _lit(text: str) -> str:
 
 
 def _missing_id_sql(expr: str, spellings) -> str:
-    """True when an id (as text) is null, or empty or one of ``spellings`` after trimming spaces, any case."""
+    """True when an id (as text) is null, or empty or one of ``spellings`` after trimming spaces (U+0020), any case."""
     listed = ", ".join(_lit(x) for x in spellings)
-    return f"({expr} IS NULL OR lower(trim({expr})) IN ({listed}))"
+    return f"({expr} IS NULL OR lower(trim(BOTH ' ' FROM {expr})) IN ({listed}))"
 
 
 def _resource_error(exc: Exception):

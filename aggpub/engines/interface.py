@@ -140,7 +140,8 @@ class EdgeColumns:
         As :meth:`Engine.describe` reported them (``weight_type`` None without a weight).
     missing_spellings : tuple of str
         Id spellings that mean "missing", compared with the id text after
-        trimming spaces, case-insensitively; an empty or null id is missing too.
+        trimming spaces (U+0020 only), case-insensitively; an empty or null id
+        is missing too.
     """
 
     source: str

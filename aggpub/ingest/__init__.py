@@ -24,6 +24,16 @@ naming the file and the row, line or column, never a value from the file):
   nested types are refused. An empty id, or one spelling a missing value
   (:data:`MISSING_ID_SPELLINGS`), is refused.
 * Weights must be finite and non-negative numbers; text weights are parsed.
+* A missing column names the columns found when they are column names (a
+  Parquet or Arrow schema, a CSV first line that reads as a header); a CSV first
+  line that may be data (a file without a header) is never quoted.
+
+Where the rules live: ``_files`` (file checks, format, CSV header, the missing-id
+spellings, the engine's :class:`~aggpub.engines.interface.Source`), ``_columns``
+(missing columns, id and weight types), ``_people`` (person checks and the dense
+ids, in Python over Arrow), ``_edges`` (edge checks and counts). The engine
+(:class:`aggpub.engines.Engine`) only reads, maps and counts in its own SQL: this
+package hands it plain values and words every message, the same for every engine.
 """
 
 from __future__ import annotations
@@ -33,6 +43,8 @@ __all__ = ["Network", "IngestReport", "load_network", "load_policy_inputs", "pol
 
 import pyarrow as pa
 
+from ..engines import make_engine
+from ..errors import PolicyError
 from ..network import IngestReport, Network
 from ._edges import read_edges
 from ._files import MISSING_ID_SPELLINGS, check_input_path, csv_header, file_format, input_source
@@ -65,29 +77,25 @@ def load_network(edges, people, *, source="source", target="target", node="node"
     -------
     Network
     """
-    from ..engines import make_engine
-
     edges = edges if isinstance(edges, pa.Table) else check_input_path(edges, "edge")
     people = people if isinstance(people, pa.Table) else check_input_path(people, "person")
     if engine is None:
         engine = make_engine("duckdb")
     people_src = input_source(people, "person", debug)
-    folk = read_people(engine, people_src, node, attributes)
+    persons = read_people(engine, people_src, node, attributes)
     counts = read_edges(engine, input_source(edges, "edge", debug), source_col=source, target_col=target,
-                        weight=weight, ids=folk.id_table, drop_unknown=drop_unknown, people_label=people_src.label)
-    n_people = len(folk.ids)
+                        weight=weight, ids=persons.id_table, drop_unknown=drop_unknown, people_label=people_src.label)
+    n_people = len(persons.ids)
     report = IngestReport(edge_rows=counts.rows, edges=counts.edges, self_loops_dropped=counts.self_loops,
                           duplicate_rows_collapsed=counts.duplicates,
-                          unknown_person_rows_dropped=counts.unknown_person, person_rows=folk.rows,
-                          people=n_people, duplicate_person_rows_collapsed=folk.rows - n_people)
-    return Network(people=folk.attributes, n_people=n_people, n_edges=counts.edges, engine=engine, report=report,
-                   weighted=bool(weight), ids=folk.ids)
+                          unknown_person_rows_dropped=counts.unknown_person, person_rows=persons.rows,
+                          people=n_people, duplicate_person_rows_collapsed=persons.rows - n_people)
+    return Network(people=persons.attributes, n_people=n_people, n_edges=counts.edges, engine=engine, report=report,
+                   weighted=bool(weight), ids=persons.ids)
 
 
 def policy_weight_column(policy, given=None):
     """The edge weight column to read: ``components.weight_totals.column`` when weight totals are on."""
-    from ..errors import PolicyError
-
     wt = policy.components.weight_totals
     if not wt.enabled:
         return given

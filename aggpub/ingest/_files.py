@@ -13,7 +13,7 @@ from ..engines.interface import Source
 from ..errors import InputError
 
 #: id spellings treated as a missing id (what spreadsheet and dataframe exports write for an empty cell);
-#: compared after trimming spaces, case-insensitively
+#: compared after trimming spaces (U+0020 only, in every engine), case-insensitively
 MISSING_ID_SPELLINGS = ("", "nan", "na", "n/a", "null", "none")
 
 
