@@ -95,7 +95,8 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser("ledger", help="list the spends of a lifetime ledger and the budget left",
                        description="Verify a lifetime ledger (integrity and hash chain) and list every spend "
-                       "with the epsilon left per dataset. Read only.")
+                       "with the epsilon left per dataset. Read only.", epilog=EXIT_CODES_HELP,
+                       formatter_class=argparse.RawDescriptionHelpFormatter)
     p.add_argument("file", type=Path, help="ledger file (SQLite)")
     p.add_argument("--dataset", help="only this dataset id")
     _add_common(p)
@@ -104,7 +105,8 @@ def build_parser() -> argparse.ArgumentParser:
                        description="Verify a bundle, then draw a synthetic contact network in which every "
                        "superedge cell holds exactly its released number of distinct contacts, uniformly "
                        "placed among the cell's possible pairs. The people are invented and numbered per "
-                       "supernode. Post-processing of public data: costs no privacy budget.")
+                       "supernode. Post-processing of public data: costs no privacy budget.", epilog=EXIT_CODES_HELP,
+                       formatter_class=argparse.RawDescriptionHelpFormatter)
     p.add_argument("bundle", type=Path, help="bundle folder")
     p.add_argument("--out", required=True, type=Path, help="Parquet file to write (columns source, target)")
     p.add_argument("--people", type=Path, help="also write the person -> supernode table (Parquet)")
@@ -112,12 +114,30 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--overwrite", action="store_true", help="replace existing output files")
     _add_common(p)
 
+    p = sub.add_parser("plan", help="free pre-flight: the supernodes, the noise and the gate, before any noise",
+                       description="Predict what a release would form and how its gate is expected to judge it, "
+                       "for the policy's setting or a grid of epsilon x min_size. Draws no noise, charges "
+                       "nothing, writes nothing, and reads nothing private: under unit 'edge' the person file "
+                       "(public there), under unit 'person' only the policy and its [assumptions]. The contacts "
+                       "are never read. Exit 6 when no setting is expected to pass the gate.",
+                       epilog=EXIT_CODES_HELP, formatter_class=argparse.RawDescriptionHelpFormatter)
+    p.add_argument("--policy", required=True, type=Path, help="release policy (TOML)")
+    p.add_argument("--nodes", type=Path, help="person attributes (unit 'edge' only: public there)")
+    p.add_argument("--edges", type=Path, help="accepted for symmetry with 'release' and never read")
+    p.add_argument("--node-column", help="person id column (default: policy or 'node')")
+    p.add_argument("--epsilons", help="comma-separated total epsilons to try (default: the policy's)")
+    p.add_argument("--min-sizes", help="comma-separated minimum supernode sizes to try (default: the policy's)")
+    p.add_argument("--json", action="store_true", help="print the plan as JSON instead of a table")
+    _add_common(p)
+
     p = sub.add_parser("sweep", help="INTERNAL planning aid: errors over a grid of epsilon x min_size",
                        description="Internal planning aid (confidential, writes nothing public): expected and "
                        "observed errors of a release over a grid of epsilon x min_size (x privacy unit), the "
                        "true statistics computed once per grouping, and the cheapest setting meeting the "
                        "policy's [gate]. Choosing parameters from the private data is itself a data-dependent "
-                       "step, and the final release draws fresh noise.")
+                       "step outside the guarantee (use 'aggpub plan', which reads nothing private, to choose), "
+                       "and the final release draws fresh noise.", epilog=EXIT_CODES_HELP,
+                       formatter_class=argparse.RawDescriptionHelpFormatter)
     _add_input_options(p)
     p.add_argument("--epsilons", required=True, help="comma-separated total epsilons, e.g. 0.5,1,2")
     p.add_argument("--min-sizes", required=True, help="comma-separated minimum supernode sizes, e.g. 10,20")
@@ -299,6 +319,56 @@ def cmd_sample(args):
     return 0
 
 
+def cmd_plan(args):
+    import json
+
+    from .audit.sweep import parse_grid
+    from .plan import run_plan
+    from .progress import Progress
+
+    epsilons = parse_grid(args.epsilons, float, "--epsilons") if args.epsilons else None
+    min_sizes = parse_grid(args.min_sizes, int, "--min-sizes") if args.min_sizes else None
+    result = run_plan(args.policy, args.nodes, epsilons=epsilons, min_sizes=min_sizes, node=args.node_column,
+                      progress=Progress(args.quiet), debug=args.debug)
+    if args.json:
+        print(json.dumps(result.as_dict(), indent=1, default=str))
+    else:
+        _print_plan(result)
+    return 0 if result.any_expected_to_pass else 6
+
+
+def _print_plan(result):
+    print(f"pre-flight plan (unit {result.unit}): no noise drawn, nothing charged, nothing private read")
+    keys = [k for k in result.rows[0].gate["checked"]] if result.rows else []
+    head = f"{'epsilon':>8} {'min_size':>8} {'supernodes':>10} {'sizes':>13}  " + \
+        "".join(f"{_short(k):>12}" for k in keys) + "  gate"
+    print(head)
+    for r in result.rows:
+        sn = r.supernodes
+        sizes = f"{sn['size_min']}-{sn['size_max']}" if sn.get("count") else "-"
+        count = "private" if sn.get("count") is None and "error" not in sn else f"{sn.get('count') or 0:,}"
+        figs = "".join(f"{_fmt_metric(r.gate[k]):>12}" for k in keys)
+        print(f"{r.epsilon:>8g} {r.min_size:>8} {count:>10} {sizes:>13}  {figs}  {r.verdict}")
+    if result.rows:
+        print("noise per component at the first setting: " + "; ".join(
+            f"{c['name']} scale {c['scale']:.4g} (sensitivity {c['sensitivity']:g}, epsilon {c['epsilon']:.4g})"
+            for c in result.rows[0].noise))
+    for k in keys:
+        print(f"  {_short(k)} = {k} <= {result.rows[0].gate[k]['allowed']:g}")
+    for n in result.notes:
+        print(f"note: {n}")
+
+
+def _short(key):
+    return {"max_degree_ks": "degree KS", "max_degree_wasserstein": "degree W1",
+            "max_contact_matrix_median_relative_error": "matrix err", "max_superedge_median_relative_error":
+            "cell err"}.get(key, key)
+
+
+def _fmt_metric(entry):
+    return "n/p" if entry.get("value") is None else f"{entry['value']:.3g}"
+
+
 def cmd_sweep(args):
     from .progress import Progress
     from .audit.sweep import PLANNING_NOTE, parse_grid, run_sweep, write_sweep
@@ -355,7 +425,7 @@ def cmd_draft_policy(args):
 
 
 COMMANDS = {"release": cmd_release, "check": cmd_check, "demo": cmd_demo, "ledger": cmd_ledger,
-            "sample": cmd_sample, "sweep": cmd_sweep, "draft-policy": cmd_draft_policy}
+            "sample": cmd_sample, "plan": cmd_plan, "sweep": cmd_sweep, "draft-policy": cmd_draft_policy}
 
 
 def main(argv=None) -> int:

@@ -38,8 +38,8 @@ package hands it plain values and words every message, the same for every engine
 
 from __future__ import annotations
 
-__all__ = ["Network", "IngestReport", "load_network", "load_policy_inputs", "policy_attributes", "policy_weight_column",
-           "file_format", "csv_header", "MISSING_ID_SPELLINGS"]
+__all__ = ["Network", "IngestReport", "load_network", "load_people", "load_policy_inputs", "policy_attributes",
+           "policy_weight_column", "file_format", "csv_header", "MISSING_ID_SPELLINGS"]
 
 import pyarrow as pa
 
@@ -92,6 +92,22 @@ def load_network(edges, people, *, source="source", target="target", node="node"
                           people=n_people, duplicate_person_rows_collapsed=persons.rows - n_people)
     return Network(people=persons.attributes, n_people=n_people, n_edges=counts.edges, engine=engine, report=report,
                    weighted=bool(weight), ids=persons.ids)
+
+
+def load_people(people, *, node="node", attributes=None, engine=None, debug=False) -> pa.Table:
+    """Read the person table alone (no edge is read): one row per person, attribute columns as text.
+
+    For the pre-flight under unit ``edge``, where the person table is public. The
+    same rules as :func:`load_network` (ids, repeated rows, conflicts).
+    """
+    people = people if isinstance(people, pa.Table) else check_input_path(people, "person")
+    own = engine is None
+    engine = engine or make_engine("duckdb")
+    try:
+        return read_people(engine, input_source(people, "person", debug), node, attributes).attributes
+    finally:
+        if own:
+            engine.close()
 
 
 def policy_weight_column(policy, given=None):
