@@ -64,8 +64,6 @@ def build_parser() -> argparse.ArgumentParser:
     _add_input_options(p)
     p.add_argument("--out", required=True, type=Path, help="bundle folder to create")
     p.add_argument("--overwrite", action="store_true", help="replace an existing bundle at --out")
-    p.add_argument("--allow-inside-input", action="store_true",
-                   help="allow --out inside the folder of the edge or person file (refused by default)")
     p.add_argument("--seed", type=int, help="TESTS ONLY: fixed noise seed; the bundle is marked non-private")
     p.add_argument("--report", type=Path, metavar="DIR",
                    help="folder for the CONFIDENTIAL audit report (report.html, audit.json; true statistics, never for researchers); default: <out>.report beside the bundle")
@@ -214,10 +212,10 @@ def cmd_release(args):
     from .pipeline import run_release
     from .progress import Progress
 
-    if not args.allow_inside_input:  # outputs never land beside the private inputs unless asked
-        check_outside_inputs(args.out, (args.edges, args.nodes))
-        if args.report is not None:
-            check_outside_inputs(args.report, (args.edges, args.nodes))
+    inputs = (args.edges, args.nodes, args.policy)
+    check_outside_inputs(args.out, inputs, "bundle")  # an output folder never swallows an input
+    if args.report is not None:
+        check_outside_inputs(args.report, inputs, "report")
     run = run_release(args.policy, args.edges, args.nodes, args.out, seed=args.seed,
                       overwrite=args.overwrite, source=args.source_column, target=args.target_column,
                       node=args.node_column, weight=args.weight_column, drop_unknown=args.drop_unknown,
