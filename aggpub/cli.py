@@ -235,14 +235,15 @@ def cmd_check(args):
     res = check_bundle(args.bundle)
     for w in res.warnings:
         print(f"warning: {w}", file=sys.stderr)
+    print(f"bundle {args.bundle}")
+    for c in res.checked:
+        print(f"  holds: {c}")
+    for p in res.problems:
+        print(f"  does not hold: {p}")
     if not res.ok:
-        for p in res.problems:
-            print(f"FAIL {p}")
         print(f"{args.bundle}: check failed ({len(res.problems)} problem(s))")
         return 1
-    for c in res.checked:
-        print(f"ok   {c}")
-    print(f"{args.bundle}: bundle verified")
+    print(f"{args.bundle}: bundle verified ({len(res.checked)} statements hold)")
     return 0
 
 
