@@ -52,7 +52,7 @@ from ._people import read_people
 
 
 def load_network(edges, people, *, source="source", target="target", node="node", weight=None,
-                 drop_unknown=False, attributes=None, engine=None, debug=False) -> Network:
+                 drop_unknown=False, attributes=None, engine=None, debug=False, show_counts=True) -> Network:
     """Read edges and person attributes into a :class:`Network`.
 
     Parameters
@@ -72,6 +72,9 @@ def load_network(edges, people, *, source="source", target="target", node="node"
         contacts; an earlier load's are replaced.
     debug : bool
         Allow private values (ids) in error messages.
+    show_counts : bool
+        Count the offending rows in refusals (off under unit ``person``, where the
+        number of people or contacts in any condition is a private figure).
 
     Returns
     -------
@@ -82,9 +85,10 @@ def load_network(edges, people, *, source="source", target="target", node="node"
     if engine is None:
         engine = make_engine("duckdb")
     people_src = input_source(people, "person", debug)
-    persons = read_people(engine, people_src, node, attributes)
+    persons = read_people(engine, people_src, node, attributes, show_counts)
     counts = read_edges(engine, input_source(edges, "edge", debug), source_col=source, target_col=target,
-                        weight=weight, ids=persons.id_table, drop_unknown=drop_unknown, people_label=people_src.label)
+                        weight=weight, ids=persons.id_table, drop_unknown=drop_unknown, people_label=people_src.label,
+                        show_counts=show_counts)
     n_people = len(persons.ids)
     report = IngestReport(edge_rows=counts.rows, edges=counts.edges, self_loops_dropped=counts.self_loops,
                           duplicate_rows_collapsed=counts.duplicates,
@@ -146,4 +150,5 @@ def load_policy_inputs(policy, edges, people, *, source=None, target=None, node=
     return load_network(edges, people, source=source or inp.source, target=target or inp.target,
                         node=node or inp.node, weight=policy_weight_column(policy, weight or inp.weight),
                         drop_unknown=inp.drop_unknown if drop_unknown is None else drop_unknown,
-                        attributes=policy_attributes(policy), engine=engine, debug=debug)
+                        attributes=policy_attributes(policy), engine=engine, debug=debug,
+                        show_counts=debug or policy.privacy.unit != "person")

@@ -13,7 +13,7 @@ from ._files import MISSING_ID_SPELLINGS
 
 
 def read_edges(engine, source: Source, *, source_col: str, target_col: str, weight: str | None, ids: pa.Table,
-               drop_unknown: bool, people_label: str) -> EdgeCounts:
+               drop_unknown: bool, people_label: str, show_counts: bool = True) -> EdgeCounts:
     """Check the edge input's columns, have ``engine`` map and collapse the edges, refuse bad rows, keep the rest.
 
     Parameters
@@ -56,7 +56,8 @@ def read_edges(engine, source: Source, *, source_col: str, target_col: str, weig
                        missing_spellings=MISSING_ID_SPELLINGS)
     counts = engine.stage_edges(source, spec, ids)
     try:
-        refuse_bad_edges(engine, source.label, spec, counts, drop_unknown=drop_unknown, people_label=people_label)
+        refuse_bad_edges(engine, source.label, spec, counts, drop_unknown=drop_unknown, people_label=people_label,
+                         show_counts=show_counts)
     except InputError:
         engine.discard_staged_edges()
         raise
@@ -65,12 +66,16 @@ def read_edges(engine, source: Source, *, source_col: str, target_col: str, weig
 
 
 def refuse_bad_edges(engine, label: str, spec: EdgeColumns, counts: EdgeCounts, *, drop_unknown: bool,
-                     people_label: str) -> None:
+                     people_label: str, show_counts: bool = True) -> None:
     """Refuse an edge input without rows, with missing ids, unknown people, bad weights, or no contact left.
 
-    Each message counts the rows and names the first one (asked of the engine
-    only on this error path), never a value.
+    Each message names the first offending row (asked of the engine only on this
+    error path), never a value, and counts the rows unless ``show_counts`` is off
+    (unit ``person``, where such a count is a private figure).
     """
+    def many(n):
+        return f"{n:,} " if show_counts else "some "
+
     def first(condition):
         row = engine.first_staged_row(condition)
         return f" (first at data row {row})" if row else ""
@@ -78,14 +83,14 @@ def refuse_bad_edges(engine, label: str, spec: EdgeColumns, counts: EdgeCounts, 
     if counts.rows == 0:
         raise InputError(f"{label}: the edge table has no rows")
     if counts.missing_id:
-        raise InputError(f"{label}: {counts.missing_id:,} edge row(s) have an empty '{spec.source}' or "
+        raise InputError(f"{label}: {many(counts.missing_id)}edge row(s) have an empty '{spec.source}' or "
                          f"'{spec.target}' (or an id spelling a missing value: NaN, NA, null)"
                          f"{first(RowCondition.MISSING_ID)}")
     if counts.unknown_person and not drop_unknown:
-        raise InputError(f"{label}: {counts.unknown_person:,} edge row(s) name people missing from {people_label}"
+        raise InputError(f"{label}: {many(counts.unknown_person)}edge row(s) name people missing from {people_label}"
                          f"{first(RowCondition.UNKNOWN_PERSON)} (use --drop-unknown to drop them)")
     if spec.weight and counts.bad_weight:
-        raise InputError(f"{label}: {counts.bad_weight:,} edge row(s) have an empty, unparseable, NaN, infinite "
+        raise InputError(f"{label}: {many(counts.bad_weight)}edge row(s) have an empty, unparseable, NaN, infinite "
                          f"or negative '{spec.weight}'{first(RowCondition.BAD_WEIGHT)}")
     if counts.edges == 0:
         raise InputError(f"{label}: no contacts left after dropping self-loops"

@@ -38,7 +38,7 @@ class People:
     rows: int
 
 
-def read_people(engine, source: Source, node: str, attributes) -> People:
+def read_people(engine, source: Source, node: str, attributes, show_counts: bool = True) -> People:
     """Check the person input's columns, read them through ``engine`` and number the people.
 
     Parameters
@@ -65,7 +65,7 @@ def read_people(engine, source: Source, node: str, attributes) -> People:
     for a in attr_cols:
         if a not in columns:
             raise missing_column_error(source, a, columns, expected, "attribute column")
-    return dense_people(source.label, node, engine.read_people(source, node, attr_cols))
+    return dense_people(source.label, node, engine.read_people(source, node, attr_cols), show_counts)
 
 
 def missing_id_mask(ids) -> np.ndarray:
@@ -81,7 +81,7 @@ def _rows(table: pa.Table, rows: np.ndarray, n_rows: int) -> pa.Table:
     return table.take(pa.array(rows))
 
 
-def dense_people(label: str, node: str, read: PeopleColumns) -> People:
+def dense_people(label: str, node: str, read: PeopleColumns, show_counts: bool = True) -> People:
     """Refuse missing ids, empty attributes and conflicting repeated ids; number the people.
 
     Person ``i`` is the ``i``-th distinct id in order of first appearance; a
@@ -109,7 +109,8 @@ def dense_people(label: str, node: str, read: PeopleColumns) -> People:
         raise InputError(f"{label}: the person table has no rows")
     missing = missing_id_mask(ids)
     if missing.any():
-        raise InputError(f"{label}: {int(missing.sum()):,} row(s) have an empty or missing id (NaN, NA, null) "
+        raise InputError(f"{label}: {f'{int(missing.sum()):,} ' if show_counts else 'some '}row(s) have an empty "
+                         "or missing id (NaN, NA, null) "
                          f"in column '{node}' (first at data row {int(np.argmax(missing)) + 1})")
     for name, column in zip(attrs.column_names, attrs.columns):
         empty = np.asarray(column.is_null(), dtype=bool)
@@ -119,7 +120,7 @@ def dense_people(label: str, node: str, read: PeopleColumns) -> People:
     _, first = np.unique(codes, return_index=True)  # first[k]: the first row of id k
     native = read.native_ids
     if len(first) < n_rows:  # a repeated id: it must repeat its attributes; keep its first row
-        _refuse_conflicts(label, attrs, codes, first)
+        _refuse_conflicts(label, attrs, codes, first, show_counts)
         keep = np.sort(first)
         ids, attrs = ids.take(pa.array(keep)), _rows(attrs, keep, len(keep))
         native = native.take(pa.array(keep)) if native is not None else None
@@ -130,7 +131,8 @@ def dense_people(label: str, node: str, read: PeopleColumns) -> People:
     return People(ids=ids, attributes=attrs, id_table=id_table, rows=n_rows)
 
 
-def _refuse_conflicts(label: str, attrs: pa.Table, codes: np.ndarray, first: np.ndarray) -> None:
+def _refuse_conflicts(label: str, attrs: pa.Table, codes: np.ndarray, first: np.ndarray,
+                      show_counts: bool = True) -> None:
     """Refuse ids repeated with other attributes, naming the first such id's first row and first other row."""
     ref = pa.array(first[codes])  # every row's id's first row
     differ = np.zeros(len(codes), dtype=bool)
@@ -142,6 +144,7 @@ def _refuse_conflicts(label: str, attrs: pa.Table, codes: np.ndarray, first: np.
     conflicted = keyed.group_by(keyed.column_names).aggregate([]).num_rows - len(first)
     k = codes[differ][np.argmin(first[codes[differ]])]  # of the conflicted ids, the first to appear
     other = int(np.flatnonzero(differ & (codes == k))[0])
-    raise InputError(f"{label}: {conflicted} person id(s) appear more than once with conflicting attributes "
+    raise InputError(f"{label}: {conflicted if show_counts else 'some'} person id(s) appear more than once with "
+                     "conflicting attributes "
                      f"(first at data row {int(first[k]) + 1}, again with other attributes at data row "
                      f"{other + 1})")
