@@ -12,7 +12,7 @@ confidential audit and report, the gate and the atomic bundle write.
 from __future__ import annotations
 
 __all__ = ["Release", "ReleaseRun", "build_release", "release_tables", "run_release", "publish", "Progress",
-           "preflight_gate", "release_gate"]
+           "preflight_gate", "release_gate", "applied_policy"]
 
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -209,8 +209,9 @@ def run_release(policy, edges, people, out, *, seed=None, overwrite=False, sourc
     progress("reading edges and people")
     eng = make_engine(engine, memory_limit=memory_limit, spill_parent=out.parent, progress=progress)
     try:
-        network = load_policy_inputs(policy, edges, people, source=source, target=target, node=node,
-                                     weight=weight, drop_unknown=drop_unknown, debug=debug, engine=eng)
+        policy = applied_policy(policy, source=source, target=target, node=node, weight=weight,
+                                drop_unknown=drop_unknown)  # the manifest records what was applied
+        network = load_policy_inputs(policy, edges, people, debug=debug, engine=eng)
         for line in network.report.lines(private_counts=policy.privacy.unit != "person"):
             progress(line)
         preflight = preflight_gate(policy, network, progress)
@@ -244,6 +245,21 @@ def run_release(policy, edges, people, out, *, seed=None, overwrite=False, sourc
     if ledger is not None:
         ledger.finish(ok=True)
     return ReleaseRun(release, path, findings, report_path)
+
+
+def applied_policy(policy: ReleasePolicy, *, source=None, target=None, node=None, weight=None,
+                   drop_unknown=None) -> ReleasePolicy:
+    """The policy with the command line's input options in its ``[input]`` section (they override it)."""
+    import dataclasses
+
+    from .ingest import policy_weight_column
+
+    inp = policy.input
+    applied = dataclasses.replace(inp, source=source or inp.source, target=target or inp.target,
+                                  node=node or inp.node,
+                                  weight=policy_weight_column(policy, weight or inp.weight),
+                                  drop_unknown=inp.drop_unknown if drop_unknown is None else drop_unknown)
+    return policy if applied == inp else policy.replace(input=applied)
 
 
 def preflight_gate(policy: ReleasePolicy, network: Network, progress=None) -> dict:

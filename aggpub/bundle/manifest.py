@@ -6,12 +6,31 @@ grouping's public description and the row counts of the released tables.
 
 from __future__ import annotations
 
-__all__ = ["build_manifest"]
+__all__ = ["build_manifest", "public_policy"]
 
 from datetime import datetime, timezone
 
 from .._version import BUNDLE_FORMAT, __version__
 from .datacard import CAUTIONS
+
+
+def public_policy(policy) -> dict:
+    """The policy as applied, as the manifest records it: no internal file path.
+
+    The ledger appears as its dataset id and lifetime cap (its file stays with the
+    steward); a given person -> supernode map as its file name only; the policy
+    file's own location not at all.
+    """
+    from pathlib import Path
+
+    from ..policy import policy_to_dict
+
+    d = policy_to_dict(policy)
+    if d.get("ledger"):
+        d["ledger"] = {"dataset": d["ledger"]["dataset"], "lifetime_epsilon": d["ledger"]["lifetime_epsilon"]}
+    if d.get("grouping", {}).get("map_path"):
+        d["grouping"]["map_path"] = Path(d["grouping"]["map_path"]).name
+    return d
 
 
 def build_manifest(policy, grouping, budget, source, tables: dict, *, sizes_exact: bool, extra: dict,
@@ -35,15 +54,13 @@ def build_manifest(policy, grouping, budget, source, tables: dict, *, sizes_exac
     ledger_charge : Charge, optional
         The lifetime ledger's charge of this release.
     """
-    from ..policy import policy_to_dict
-
     unit = policy.privacy.unit
     manifest = {
         "format": BUNDLE_FORMAT,
         "tool_version": __version__,
         "created_utc": datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ"),
         "title": policy.title,
-        "policy": policy_to_dict(policy),
+        "policy": public_policy(policy),
         "privacy_unit": unit,
         "max_contacts": policy.privacy.max_contacts,
         "epsilon_total": policy.privacy.epsilon,
