@@ -425,7 +425,7 @@ class _PrefixSource(SeededRandomSource):
 
 
 def _stream(seed: int, hint: int = 1 << 16):
-    return smp._ByteStream(SeededRandomSource(seed), hint)
+    return smp.ByteStream(SeededRandomSource(seed), hint)
 
 
 def test_random_bytes_are_uniform_on_both_sources():
@@ -590,7 +590,7 @@ def test_bernoulli_dyadic_and_first_factorial_failure():
     for j in (2, 3, 4, 5):
         assert st.binomtest(int((k1 > j).sum()), n, 1 / math.factorial(j)).pvalue > SEEDED_LEVEL
     # The rare K1 > 7 branch (a first word of 0): the coins from 8 on are drawn one by one.
-    forced = smp._ByteStream(_PrefixSource(4, bytes(2)), 64)
+    forced = smp.ByteStream(_PrefixSource(4, bytes(2)), 64)
     assert smp._first_factorial_failure(forced, 1)[0] >= 8
 
 
@@ -624,7 +624,7 @@ def test_exact_geometric_law(s, k):
     # P(G >= g) = exp(-g s / 2**k): scale 1 (m = 1), 10 (m = 10), 4 (power of two), rate 2.5 (> 1),
     # about 350,000 (m = 349525, per-value uniforms of 32 bits) and 32.
     n = 200_000
-    g = smp._geometric(_stream(s % 991 + k), s, k, n)
+    g = smp.geometric_exact(_stream(s % 991 + k), s, k, n)
     assert g.dtype == np.int64 and g.min() >= 0
     rate = s / 2 ** k
     assert _geometric_gof(g, rate, n) > SEEDED_LEVEL
@@ -664,8 +664,8 @@ def test_noise_is_unbounded_beyond_the_old_float_limit():
     runs = 6000
     out = np.empty(runs, dtype=np.int64)
     for i in range(runs):
-        stream = smp._ByteStream(_PrefixSource(10_000 + i, prefix), 64)
-        out[i] = smp._geometric(stream, 1, 0, 1)[0]
+        stream = smp.ByteStream(_PrefixSource(10_000 + i, prefix), 64)
+        out[i] = smp.geometric_exact(stream, 1, 0, 1)[0]
     assert out.min() >= 40
     assert _geometric_gof(out - 40, 1.0, runs) > SEEDED_LEVEL
     assert _geometric_gof(out - 40, 1.3, runs) < SEEDED_LEVEL  # power: a 30 % steeper tail is rejected
@@ -679,14 +679,14 @@ def test_large_scale_cap_and_overflow_guard(monkeypatch):
     assert x.dtype == np.int64
     assert 0.9 < float(np.std(x.astype(np.float64))) / (math.sqrt(2) * 2 ** 40) < 1.1
     # cap (skip walks): values >= cap come back as cap, with probability P(G >= cap) = a**cap
-    g = smp._geometric(_stream(5), 1, 3, 100_000, cap=20)          # rate 1/8
+    g = smp.geometric_exact(_stream(5), 1, 3, 100_000, cap=20)          # rate 1/8
     assert g.max() == 20
     assert st.binomtest(int((g == 20).sum()), g.size, math.exp(-20 / 8)).pvalue > SEEDED_LEVEL
     # without a cap a value past the int64 guard raises instead of wrapping (guard lowered to 10 here;
     # the real one is 2**62 - 1, reached with probability below exp(-256) at the accepted scales)
     monkeypatch.setattr(smp, "_MAX_VALUE", 10)
     with pytest.raises(OverflowError):
-        smp._geometric(_stream(6), 1, 3, 1000)
+        smp.geometric_exact(_stream(6), 1, 3, 1000)
 
 
 # --------------------------------------------------- rigorous bounds and constant coins
@@ -695,7 +695,7 @@ def test_large_scale_cap_and_overflow_guard(monkeypatch):
 def test_exp_bounds_bracket_the_decimal_value(x):
     from decimal import Decimal, localcontext
 
-    lo, hi = smp._exp_neg_bounds(x, 120)
+    lo, hi = smp.exp_neg_bounds(x, 120)
     with localcontext() as ctx:
         ctx.prec = 80
         ref = (-(Decimal(x.numerator) / Decimal(x.denominator))).exp()  # [DEC] correctly rounded
@@ -704,7 +704,7 @@ def test_exp_bounds_bracket_the_decimal_value(x):
         assert Decimal(hi.numerator) / Decimal(hi.denominator) >= ref - tol
     assert lo <= hi and (x == 0 or (hi - lo) / lo < Fraction(1, 2 ** 110))
     if 0 < x <= 1:
-        qlo, qhi = smp._one_minus_exp_neg_bounds(x, 120)
+        qlo, qhi = smp.one_minus_exp_neg_bounds(x, 120)
         with localcontext() as ctx:
             ctx.prec = 80
             ref1 = 1 - ref
@@ -722,7 +722,7 @@ def test_bernoulli_from_bounds_including_the_slow_path(rho):
         return max(Fraction(0), rho - w), min(Fraction(1), rho + w)
 
     n = 200_000
-    x = smp._bern_bounded(_stream(int(rho * 97)), bounds, n)
+    x = smp.bernoulli_bounded(_stream(int(rho * 97)), bounds, n)
     if rho in (0, 1):
         assert x.all() if rho == 1 else not x.any()
     else:

@@ -179,7 +179,7 @@ def _wrong_tail(monkeypatch):  # zero cells' values from a tail twice as steep (
 
 def _tail_without_normaliser(monkeypatch):  # P(Z >= t) taken as a^t, forgetting 1/(1+a)
     def bounds(theta, s, k, bits):
-        return sparse._exp_neg_bounds(theta * sparse.Fraction(s, 1 << k), bits)
+        return sparse.exp_neg_bounds(theta * sparse.Fraction(s, 1 << k), bits)
 
     monkeypatch.setattr(sparse, "_pass_probability_bounds", bounds)
 
@@ -264,7 +264,7 @@ def test_exact_selection_bounds_and_candidate_rate():
             assert Decimal(lo.numerator) / Decimal(lo.denominator) <= ref * (1 + Decimal(10) ** -50)
             assert Decimal(hi.numerator) / Decimal(hi.denominator) >= ref * (1 - Decimal(10) ** -50)
         lam_s, lam_k = sparse._candidate_rate(theta, s, k, sparse._pass_probability_bounds)
-        q_lo, _ = sparse._one_minus_exp_neg_bounds(sparse.Fraction(lam_s, 2 ** lam_k), 100)
+        q_lo, _ = sparse.one_minus_exp_neg_bounds(sparse.Fraction(lam_s, 2 ** lam_k), 100)
         assert q_lo >= hi
         if float(hi) > 1e-15:  # above the smallest candidate rate 2**-54
             assert float(q_lo / hi) < 1 + 1e-6

@@ -66,6 +66,26 @@ def check_bundle(path) -> CheckResult:
     Returns
     -------
     CheckResult
+
+    Examples
+    --------
+    >>> import networkx as nx, pyarrow as pa
+    >>> import aggpub
+    >>> G = nx.karate_club_graph()  # Zachary's karate club, as networkx ships it
+    >>> edges = pa.table({"source": [str(u) for u, v in G.edges()], "target": [str(v) for u, v in G.edges()]})
+    >>> people = pa.table({"node": [str(n) for n in G], "club": [G.nodes[n]["club"] for n in G]})
+    >>> policy = {"privacy": {"unit": "edge", "epsilon": 1.0},
+    ...           "grouping": {"method": "attributes", "attributes": ["club"], "min_size": 5}}
+    >>> import pathlib, tempfile
+    >>> path = aggpub.publish(aggpub.release_tables(edges, people, policy, seed=1),
+    ...                       pathlib.Path(tempfile.mkdtemp()) / "bundle")
+    >>> result = aggpub.check_bundle(path)
+    >>> result.ok, result.problems
+    (True, [])
+    >>> (path / "superedges.parquet").write_bytes(b"edited")  # a changed file is found
+    6
+    >>> aggpub.check_bundle(path).ok
+    False
     """
     path = Path(path)
     res = CheckResult(path=path)

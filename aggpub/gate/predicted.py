@@ -61,13 +61,13 @@ class StandIn:
 
 def _stand_in_people(policy, assumptions: Assumptions):
     """Person unit: ``assumptions.people`` persons spread evenly over the declared domains (public)."""
-    from ..grouping.noisy_cells import _domain_rows, declared_domains
+    from ..grouping.noisy_cells import domain_rows, declared_domains
 
     if assumptions.people is None:
         raise PolicyError("the pre-flight under unit 'person' needs 'assumptions.people' (a public figure for "
                           "the population size, e.g. from a census); the person file is private and is not read")
     g = policy.grouping
-    cells = _domain_rows(g.attributes, declared_domains(policy))
+    cells = domain_rows(g.attributes, declared_domains(policy))
     reps = np.full(cells.num_rows, assumptions.people // max(cells.num_rows, 1), dtype=np.int64)
     reps[: assumptions.people - int(reps.sum())] += 1
     return cells.take(pa.array(np.repeat(np.arange(cells.num_rows), reps)))

@@ -21,7 +21,7 @@ import numpy as np
 from aggpub.noise.sampler import (
     DEFAULT_CHUNK_SIZE,
     RandomSource,
-    _sample_dyadic,
+    sample_dyadic,
     dyadic_rate,
 )
 
@@ -310,7 +310,7 @@ class GeometricMechanism:
         if not isinstance(source, RandomSource):
             raise TypeError(f"'source' must be a RandomSource, got {type(source).__name__}")
         s, k = self._rate_sk
-        out = _sample_dyadic(s, k, count, source, chunk_size=chunk_size)
+        out = sample_dyadic(s, k, count, source, chunk_size=chunk_size)
         return out.reshape(shape) if shape is not None else out
 
     def randomise(self, values, source: RandomSource, *, chunk_size: int = DEFAULT_CHUNK_SIZE) -> np.ndarray:

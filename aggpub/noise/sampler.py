@@ -261,7 +261,7 @@ class RandomSource(abc.ABC):
             if arr.size and (int(arr.min()) < 1 or int(arr.max()) > 1 << 63):
                 raise ValueError("every 'upper' must be between 1 and 2**63")
             m = arr.astype(np.uint64).reshape(-1)
-        out = _below(_ByteStream(self, 8 * m.size), m)  # per-draw bounds
+        out = _below(ByteStream(self, 8 * m.size), m)  # per-draw bounds
         if m.size and int(m.max()) > np.iinfo(np.int64).max:
             return out
         return out.astype(np.int64)
@@ -372,7 +372,7 @@ def make_random_source(seed: int | None) -> RandomSource:
 
 
 # --------------------------------------------------------------------------- random bytes, buffered
-class _ByteStream:
+class ByteStream:
     """Hands out random bytes from a :class:`RandomSource`, fetched in blocks.
 
     One stream serves one sampling call; bytes left over at its end are
@@ -419,7 +419,7 @@ def _width_for(top: int) -> int:
     return 8 if top <= 1 << 8 else 16 if top <= 1 << 16 else 32 if top <= 1 << 32 else 64
 
 
-def _below(stream: _ByteStream, m, n: int | None = None) -> np.ndarray:
+def _below(stream: ByteStream, m, n: int | None = None) -> np.ndarray:
     """Uniform integers ``x_i`` in ``[0, m_i)`` (uint64), exactly, for bounds ``1 <= m_i <= 2**63``.
 
     Rejection sampling: a ``w``-bit word is accepted when it falls below the
@@ -467,7 +467,7 @@ def _below(stream: _ByteStream, m, n: int | None = None) -> np.ndarray:
     return out
 
 
-def _bern_dyadic(stream: _ByteStream, c, k: int, n: int | None = None) -> np.ndarray:
+def _bern_dyadic(stream: ByteStream, c, k: int, n: int | None = None) -> np.ndarray:
     """Independent Bernoulli(``c_i / 2**k``), ``0 <= c_i <= 2**k``, ``k <= 62``, exactly.
 
     Decides ``V < c / 2**k`` for a uniform ``V`` in ``[0, 1)`` revealed one byte
@@ -519,7 +519,7 @@ def _bern_dyadic(stream: _ByteStream, c, k: int, n: int | None = None) -> np.nda
     return out
 
 
-def _words_below(stream: _ByteStream, limit: int, width: int, n: int) -> np.ndarray:
+def _words_below(stream: ByteStream, limit: int, width: int, n: int) -> np.ndarray:
     """``n`` uniform integers on ``[0, limit)``, ``limit < 2**width``, by plain rejection of ``width``-bit words."""
     x = stream.words(n, width)
     lim = x.dtype.type(limit)
@@ -546,7 +546,7 @@ _FACT_TABLE = ((_FACT_THRESHOLDS.size + 1)
                - np.searchsorted(_FACT_THRESHOLDS, np.arange(1 << 16), side="right")).astype(np.int32)
 
 
-def _first_factorial_failure(stream: _ByteStream, n: int) -> np.ndarray:
+def _first_factorial_failure(stream: ByteStream, n: int) -> np.ndarray:
     """``n`` draws of ``K1``, the index of the first failure among independent coins
     ``Bernoulli(1/1), Bernoulli(1/2), Bernoulli(1/3), ...`` (so ``P(K1 > j) = 1/j!``, ``K1 >= 2``).
 
@@ -567,7 +567,7 @@ def _first_factorial_failure(stream: _ByteStream, n: int) -> np.ndarray:
     return k1
 
 
-def _bern_exp_unit(stream: _ByteStream, c, k: int, n: int | None = None) -> np.ndarray:
+def _bern_exp_unit(stream: ByteStream, c, k: int, n: int | None = None) -> np.ndarray:
     """Bernoulli(exp(-c_i / 2**k)) for ``0 <= c_i <= 2**k`` (Algorithm 1 of [CKS20] for ``x <= 1``).
 
     With ``x = c / 2**k``, [CKS20] draws ``A_K ~ Bernoulli(x / K)`` for ``K = 1, 2, ...``
@@ -601,7 +601,7 @@ def _bern_exp_unit(stream: _ByteStream, c, k: int, n: int | None = None) -> np.n
     return (kk & 1) == 1
 
 
-def _bern_exp(stream: _ByteStream, c: int, k: int, n: int) -> np.ndarray:
+def _bern_exp(stream: ByteStream, c: int, k: int, n: int) -> np.ndarray:
     """``n`` Bernoulli(exp(-c / 2**k)) for one integer ``0 <= c <= 2**62`` (any size of ``c / 2**k``).
 
     ``exp(-x) = exp(-1)**floor(x) * exp(-(x - floor(x)))``: ``floor(x)``
@@ -621,7 +621,7 @@ def _bern_exp(stream: _ByteStream, c: int, k: int, n: int) -> np.ndarray:
     return out
 
 
-def _geometric(stream: _ByteStream, s: int, k: int, n: int, cap: int | None = None) -> np.ndarray:
+def geometric_exact(stream: ByteStream, s: int, k: int, n: int, cap: int | None = None) -> np.ndarray:
     """``n`` exact draws of ``G >= 0`` with ``P(G >= g) = exp(-g s / 2**k)`` (int64).
 
     ``G = Q m + R`` with ``m`` the largest power of two ``<= max(1, 2**k / s)``
@@ -709,7 +709,7 @@ def _alternating_bounds(terms, first: Fraction, tol: Fraction) -> tuple[Fraction
 
 
 @functools.lru_cache(maxsize=256)
-def _exp_neg_bounds(x: Fraction, bits: int) -> tuple[Fraction, Fraction]:
+def exp_neg_bounds(x: Fraction, bits: int) -> tuple[Fraction, Fraction]:
     """Rationals ``lo <= exp(-x) <= hi`` for rational ``x >= 0``, ``hi / lo - 1`` about ``2**-bits``.
 
     ``exp(-f)`` for ``0 <= f < 1`` and ``exp(-1)`` come from the alternating
@@ -743,7 +743,7 @@ def _exp_neg_bounds(x: Fraction, bits: int) -> tuple[Fraction, Fraction]:
 
 
 @functools.lru_cache(maxsize=256)
-def _one_minus_exp_neg_bounds(x: Fraction, bits: int) -> tuple[Fraction, Fraction]:
+def one_minus_exp_neg_bounds(x: Fraction, bits: int) -> tuple[Fraction, Fraction]:
     """Rationals ``lo <= 1 - exp(-x) <= hi`` for rational ``0 < x <= 1``, relative width about ``2**-bits``.
 
     Alternating series ``x - x**2/2! + x**3/3! - ...`` (no cancellation for small ``x``).
@@ -756,7 +756,7 @@ def _one_minus_exp_neg_bounds(x: Fraction, bits: int) -> tuple[Fraction, Fractio
     return _round_rel(lo, bits + 8, False), _round_rel(hi, bits + 8, True)
 
 
-def _bern_bounded(stream: _ByteStream, bounds, n: int, fast_bits: int = 128) -> np.ndarray:
+def bernoulli_bounded(stream: ByteStream, bounds, n: int, fast_bits: int = 128) -> np.ndarray:
     """``n`` Bernoulli(``rho``), exactly, for a constant ``0 <= rho <= 1`` known through rigorous bounds.
 
     ``bounds(bits)`` returns rationals ``lo <= rho <= hi`` that tighten as
@@ -797,7 +797,7 @@ def _bern_bounded(stream: _ByteStream, bounds, n: int, fast_bits: int = 128) -> 
     return out
 
 
-def _discrete_laplace(stream: _ByteStream, s: int, k: int, n: int) -> np.ndarray:
+def _discrete_laplace(stream: ByteStream, s: int, k: int, n: int) -> np.ndarray:
     """``n`` exact discrete Laplace draws, ``P(Z = z) = (1 - a)/(1 + a) a**|z|``, ``a = exp(-s/2**k)``.
 
     [CKS20] Algorithm 2: a geometric ``G``, a fair sign, reject (negative,
@@ -814,7 +814,7 @@ def _discrete_laplace(stream: _ByteStream, s: int, k: int, n: int) -> np.ndarray
     while filled < n:
         need = n - filled
         draw = int(need / (1.0 - reject_rate) * 1.02) + 16
-        g = _geometric(stream, s, k, draw)
+        g = geometric_exact(stream, s, k, draw)
         neg = stream.bits(draw)
         vals = np.where(neg, -g, g)[~(neg & (g == 0))][:need]
         out[filled:filled + vals.size] = vals
@@ -895,14 +895,14 @@ def _check_alpha(alpha) -> float:
     return alpha
 
 
-def _sample_dyadic(s: int, k: int, size: int, source: RandomSource,
+def sample_dyadic(s: int, k: int, size: int, source: RandomSource,
                    chunk_size: int = DEFAULT_CHUNK_SIZE) -> np.ndarray:
     """Exact discrete Laplace draws with ``a = exp(-s / 2**k)``, ``chunk_size`` values at a time."""
     size = _check_count(size, "size")
     chunk_size = _check_count(chunk_size, "chunk_size")
     if chunk_size == 0:
         raise ValueError("'chunk_size' must be positive, got 0")
-    stream = _ByteStream(source, 24 * min(size, chunk_size))
+    stream = ByteStream(source, 24 * min(size, chunk_size))
     out = np.empty(size, dtype=np.int64)
     for start in range(0, size, chunk_size):
         m = min(chunk_size, size - start)
@@ -953,7 +953,7 @@ def sample_discrete_laplace_exact(rate, size: int, source: RandomSource, *,
     s, k = dyadic_rate(rate)
     if not isinstance(source, RandomSource):
         raise TypeError(f"'source' must be a RandomSource, got {type(source).__name__}")
-    return _sample_dyadic(s, k, size, source, chunk_size=chunk_size)
+    return sample_dyadic(s, k, size, source, chunk_size=chunk_size)
 
 
 def sample_discrete_laplace(alpha: float, size: int, source: RandomSource, *,

@@ -86,11 +86,11 @@ from .mechanisms import GeometricMechanism
 from .sampler import (
     MIN_RATE,
     RandomSource,
-    _bern_bounded,
-    _ByteStream,
-    _exp_neg_bounds,
-    _geometric,
-    _one_minus_exp_neg_bounds,
+    bernoulli_bounded,
+    ByteStream,
+    exp_neg_bounds,
+    geometric_exact,
+    one_minus_exp_neg_bounds,
     dyadic_rate,
 )
 
@@ -173,8 +173,8 @@ def _pass_probability_bounds(threshold: int, s: int, k: int, bits: int) -> tuple
     so that zero and non-zero cells see the same noise law.
     """
     rate = Fraction(s, 1 << k)
-    top_lo, top_hi = _exp_neg_bounds(threshold * rate, bits + 4)
-    a_lo, a_hi = _exp_neg_bounds(rate, bits + 4)
+    top_lo, top_hi = exp_neg_bounds(threshold * rate, bits + 4)
+    a_lo, a_hi = exp_neg_bounds(rate, bits + 4)
     return top_lo / (1 + a_hi), top_hi / (1 + a_lo)
 
 
@@ -192,7 +192,7 @@ def _candidate_rate(threshold: int, s: int, k: int, bounds_fn) -> tuple[int, int
     _, p_hi = bounds_fn(threshold, s, k, 64)
     guess = -math.log1p(-min(float(p_hi), 0.75)) * (1.0 + 2.0 ** -30)
     lam_s, lam_k = dyadic_rate(max(Fraction(guess), MIN_RATE))
-    while _one_minus_exp_neg_bounds(Fraction(lam_s, 1 << lam_k), 64)[0] < p_hi:
+    while one_minus_exp_neg_bounds(Fraction(lam_s, 1 << lam_k), 64)[0] < p_hi:
         lam_s += 1
     return lam_s, lam_k
 
@@ -217,12 +217,12 @@ def _zero_cell_ranks(n_zero: int, law: _ZeroCellLaw, source: RandomSource) -> np
        with :math:`1 - e^{-\lambda} \ge p` (:func:`_candidate_rate`).  The gap
        before the next candidate is then geometric with
        :math:`P(\mathrm{gap} \ge g) = e^{-\lambda g}`, a rate of the form the exact
-       sampler draws (:func:`aggpub.noise.sampler._geometric`), so the
+       sampler draws (:func:`aggpub.noise.sampler.geometric_exact`), so the
        candidates are walked with exact skips.
     2. *Thinning*: each candidate is kept with probability
        :math:`\rho = p / (1 - e^{-\lambda}) \le 1`, by an exact Bernoulli
        against rigorous rational bounds on :math:`\rho`
-       (:func:`aggpub.noise.sampler._bern_bounded`).
+       (:func:`aggpub.noise.sampler.bernoulli_bounded`).
 
     A cell passes with probability :math:`(1 - e^{-\lambda})\rho = p`,
     independently of the others (independent thinning of independent
@@ -235,7 +235,7 @@ def _zero_cell_ranks(n_zero: int, law: _ZeroCellLaw, source: RandomSource) -> np
     p_bounds = lambda bits: bounds_fn(threshold, s, k, bits)  # noqa: E731
     lam_s, lam_k = _candidate_rate(threshold, s, k, bounds_fn)
     lam = Fraction(lam_s, 1 << lam_k)
-    q_bounds = lambda bits: _one_minus_exp_neg_bounds(lam, bits)  # noqa: E731
+    q_bounds = lambda bits: one_minus_exp_neg_bounds(lam, bits)  # noqa: E731
 
     def rho_bounds(bits):
         p_lo, p_hi = p_bounds(bits + 8)
@@ -243,14 +243,14 @@ def _zero_cell_ranks(n_zero: int, law: _ZeroCellLaw, source: RandomSource) -> np
         return p_lo / q_hi, min(Fraction(1), p_hi / q_lo)
 
     p_candidate = -math.expm1(-float(lam))
-    stream = _ByteStream(source, 4096)
+    stream = ByteStream(source, 4096)
     out = []
     pos = -1  # rank of the last candidate found so far
     while True:
         expected_left = (n_zero - 1 - pos) * p_candidate
         m = int(min(max(_MIN_BATCH, 1.1 * expected_left + 6.0 * math.sqrt(expected_left + 1.0)), 1 << 22,
                     n_zero - pos))  # never more gaps than the cells left, plus one to leave the table
-        steps = _geometric(stream, lam_s, lam_k, m, cap=n_zero) + 1  # any gap >= n_zero ends the walk
+        steps = geometric_exact(stream, lam_s, lam_k, m, cap=n_zero) + 1  # any gap >= n_zero ends the walk
         # Exact int64 cumulative sums on a prefix that provably stays far from overflow: cut at the
         # first step where the (float, relative error < 2**-30) running sum passes 2 * n_zero + 2.
         cut = int(np.searchsorted(np.cumsum(steps, dtype=np.float64), 2.0 * n_zero + 2.0, side="left"))
@@ -263,14 +263,14 @@ def _zero_cell_ranks(n_zero: int, law: _ZeroCellLaw, source: RandomSource) -> np
             break
         pos = int(ranks[-1])
     candidates = np.concatenate(out) if len(out) > 1 else out[0]
-    keep = _bern_bounded(stream, rho_bounds, candidates.size)
+    keep = bernoulli_bounded(stream, rho_bounds, candidates.size)
     return candidates[keep]
 
 
 def _zero_cell_values(threshold: int, rate: tuple[int, int], count: int, source: RandomSource) -> np.ndarray:
     """Values of passing zero cells: ``threshold + G``, ``G`` exactly geometric, ``P(G >= j) = a**j``."""
     s, k = rate
-    return threshold + _geometric(_ByteStream(source, 64 * max(count, 1)), s, k, count)
+    return threshold + geometric_exact(ByteStream(source, 64 * max(count, 1)), s, k, count)
 
 
 def sparse_threshold_release(nz_flat, nz_count, n_cells: int, mechanism: GeometricMechanism, threshold: int,
