@@ -339,6 +339,8 @@ def release_gate(release: Release) -> dict:
     from .gate import evaluate_gate
     from .gate.released import released_metrics
 
+    if not any(getattr(release.policy.gate, key) is not None for key in GATE_METRICS):
+        return {"passed": True, "failed": [], "checked": [], "unknown": [], "basis": "no thresholds set"}
     metrics = released_metrics(release.tables, release.manifest, release.policy)
     gate = evaluate_gate(release.policy, metrics, basis="estimated from the released values and the law of "
                                                         "their noise")
