@@ -276,14 +276,25 @@ def cmd_ledger(args):
     if args.dataset is not None and args.dataset not in totals:
         print(f"{args.file}: no spends for dataset '{args.dataset}'")
         return 0
-    print(f"{'id':>4}  {'time (UTC)':<20} {'dataset':<24} {'epsilon':>9}  {'status':<9} bundle")
+    # unit: the policy's privacy unit; new: declared a new dataset about people charged under another id
+    # ('-': a row written by ledger schema version 1, which recorded neither). The input fingerprint is
+    # never shown.
+    print(f"{'id':>4}  {'time (UTC)':<20} {'dataset':<24} {'epsilon':>9}  {'unit':<6} {'new':<3}  {'status':<9} "
+          "bundle")
     for s in spends:
-        print(f"{s.id:>4}  {s.created_utc[:19]:<20} {s.dataset:<24} {s.epsilon:>9.4g}  {s.status:<9} "
-              f"{s.bundle_path}")
+        unit = s.privacy_unit if s.row_version >= 2 and s.privacy_unit else "-"
+        new = ("yes" if s.declared_new else "no") if s.row_version >= 2 else "-"
+        print(f"{s.id:>4}  {s.created_utc[:19]:<20} {s.dataset:<24} {s.epsilon:>9.4g}  {unit:<6} {new:<3}  "
+              f"{s.status:<9} {s.bundle_path}")
     for name, (spent, cap) in sorted(totals.items()):
         if args.dataset is None or name == args.dataset:
             print(f"dataset '{name}': spent {spent:.6g} of lifetime epsilon {cap:.6g}, "
                   f"{max(0.0, cap - spent):.6g} left")
+    if any(s.row_version < 2 for s in spends):
+        print("'-' in unit and new: written by ledger schema version 1, which recorded neither")
+    if ledger.schema_version == "1":
+        print(f"{args.file}: ledger schema version 1; upgraded in place to version 2 (privacy unit, input "
+              "fingerprint, declared new dataset) by the next charge")
     print(f"{args.file}: ledger verified ({len(ledger.spends())} spend(s), hash chain intact)")
     return 0
 
