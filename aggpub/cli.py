@@ -65,6 +65,10 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--out", required=True, type=Path, help="bundle folder to create")
     p.add_argument("--overwrite", action="store_true", help="replace an existing bundle at --out")
     p.add_argument("--seed", type=int, help="TESTS ONLY: fixed noise seed; the bundle is marked non-private")
+    p.add_argument("--new-dataset", action="store_true",
+                   help="these people were charged before under another [ledger] dataset id, and this really is "
+                        "a new dataset about them (e.g. a new survey wave); renaming a dataset does not reset "
+                        "its budget")
     p.add_argument("--report", type=Path, metavar="DIR",
                    help="folder for the CONFIDENTIAL audit report (report.html, audit.json; true statistics, never for researchers); default: <out>.report beside the bundle")
     p.add_argument("--audit-draws", type=int, default=None, metavar="N",
@@ -222,7 +226,7 @@ def cmd_release(args):
                       engine=args.engine, progress=Progress(args.quiet), debug=args.debug,
                       memory_limit=args.memory_limit, report=args.report,
                       monte_carlo=None if args.audit_draws is None
-                      else _non_negative(args.audit_draws, "--audit-draws"))
+                      else _non_negative(args.audit_draws, "--audit-draws"), new_dataset=args.new_dataset)
     _print_release(run)
     if run.release.network.engine.name == "duckdb":  # run_release closed the engine and its spill folder
         _FINISHED_CLEANLY.append("release")

@@ -84,7 +84,7 @@ class ReleaseRun(tuple):
 
 
 def build_release(network: Network, policy: ReleasePolicy, *, seed: int | None = None, progress=None,
-                  ledger: ReleaseLedger | None = None) -> Release:
+                  ledger: ReleaseLedger | None = None, uncharged: str | None = None) -> Release:
     """Build a release from an ingested network (no file is written).
 
     Parameters
@@ -99,6 +99,9 @@ def build_release(network: Network, policy: ReleasePolicy, *, seed: int | None =
     ledger : ReleaseLedger, optional
         Charged once, before the first random number is drawn; if the charge is
         refused, no noise is drawn. The charge is recorded in the manifest.
+    uncharged : str, optional
+        Why no ledger is charged (required when ``ledger`` is ``None``, so that every
+        bundle says how it was accounted); recorded in the manifest's ``accounting``.
 
     Returns
     -------
@@ -132,13 +135,15 @@ def build_release(network: Network, policy: ReleasePolicy, *, seed: int | None =
               **stats.tables}
     charge = ledger.charge() if ledger is not None else None  # no-op when the first draw charged it
     manifest = build_manifest(policy, grouping, budget, source, tables, sizes_exact=sizes_exact,
-                              extra=stats.manifest, ledger_charge=charge)
+                              extra=stats.manifest, ledger_charge=charge,
+                              uncharged=uncharged or "no lifetime ledger was given to the release")
     return Release(tables=tables, manifest=manifest, grouping=grouping, network=network, policy=policy,
                    truth={"sizes": grouping.sizes(), **stats.truth}, mechanisms=stats.mechanisms)
 
 
 def release_tables(edges: pa.Table, people: pa.Table, policy: ReleasePolicy | dict, *, seed=None,
-                   source="source", target="target", node="node", weight=None, drop_unknown=False) -> Release:
+                   source="source", target="target", node="node", weight=None, drop_unknown=False,
+                   charge_ledger: bool = True, new_dataset: bool = False) -> Release:
     """Build a release in process from Arrow tables and a policy (no CLI, no files).
 
     Parameters
@@ -149,6 +154,13 @@ def release_tables(edges: pa.Table, people: pa.Table, policy: ReleasePolicy | di
         A policy, or a decoded TOML mapping.
     seed : int, optional
         Tests only (non-private).
+    charge_ledger : bool, default True
+        Charge the policy's ``[ledger]`` (as ``aggpub release`` does) before the first
+        noise draw. ``False`` is an explicit choice not to: the manifest then says the
+        release was not charged, and ``aggpub check`` prints it.
+    new_dataset : bool, default False
+        The people were charged before under another dataset id and this really is a
+        new dataset about them (see :meth:`aggpub.budget.ledger.Ledger.charge`).
 
     Returns
     -------
@@ -178,7 +190,17 @@ def release_tables(edges: pa.Table, people: pa.Table, policy: ReleasePolicy | di
         policy = parse_policy(policy)
     network = load_policy_inputs(policy, edges, people, source=source, target=target, node=node, weight=weight,
                                  drop_unknown=drop_unknown)
-    return build_release(network, policy, seed=seed)
+    ledger, why = None, "the policy has no [ledger] section"
+    if policy.ledger is not None:
+        if charge_ledger:
+            ledger = ReleaseLedger(policy, "(in-process release)", new_dataset=new_dataset)
+            ledger.attach_input(network.ids)
+        else:
+            why = "the caller chose not to charge the policy's ledger (charge_ledger=False)"
+    release = build_release(network, policy, seed=seed, ledger=ledger, uncharged=why)
+    if ledger is not None:
+        ledger.finish(ok=True)  # charged: the noisy tables exist, whatever happens to them next
+    return release
 
 
 def publish(release: Release, out, *, overwrite: bool = False, _fault=None) -> Path:
@@ -207,7 +229,7 @@ def publish(release: Release, out, *, overwrite: bool = False, _fault=None) -> P
 
 def run_release(policy, edges, people, out, *, seed=None, overwrite=False, source=None, target=None,
                 node=None, weight=None, drop_unknown=None, engine="duckdb", progress=None, debug=False,
-                memory_limit=None, report=None, monte_carlo=None) -> ReleaseRun:
+                memory_limit=None, report=None, monte_carlo=None, new_dataset=False) -> ReleaseRun:
     """The whole release from files: read, build, audit, gate, publish.
 
     The audit (:func:`aggpub.audit.audit_release`) compares the release with the
@@ -240,7 +262,7 @@ def run_release(policy, edges, people, out, *, seed=None, overwrite=False, sourc
     report_dir = Path(report).absolute() if report is not None else report_mod.default_report_path(out)
     report_mod.check_report_target(report_dir, overwrite, bundle=out)
     # Lifetime ledger: verified and checked now (read only), charged before the first noise draw.
-    ledger = ReleaseLedger(policy, out) if policy.ledger is not None else None
+    ledger = ReleaseLedger(policy, out, new_dataset=new_dataset) if policy.ledger is not None else None
     progress("reading edges and people")
     eng = make_engine(engine, memory_limit=memory_limit, spill_parent=out.parent, progress=progress)
     try:
@@ -250,7 +272,10 @@ def run_release(policy, edges, people, out, *, seed=None, overwrite=False, sourc
         for line in network.report.lines(private_counts=policy.privacy.unit != "person"):
             progress(line)
         preflight = preflight_gate(policy, network, progress)
-        release = build_release(network, policy, seed=seed, progress=progress, ledger=ledger)
+        if ledger is not None:
+            ledger.attach_input(network.ids)  # the people's keyed fingerprint, kept in the ledger only
+        release = build_release(network, policy, seed=seed, progress=progress, ledger=ledger,
+                                uncharged="the policy has no [ledger] section")
         if ledger is not None:
             charge = ledger.charged
             progress(f"ledger: charged epsilon {charge.epsilon:g} to '{charge.dataset}', "

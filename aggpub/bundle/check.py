@@ -171,7 +171,21 @@ def check_bundle(path) -> CheckResult:
     if manifest.get("seeded"):
         res.warnings.append("seeded bundle: the noise came from a fixed seed, so this release is NOT private "
                             "(for tests only; never give it to researchers)")
+    _note_accounting(manifest, res)
     return res
+
+
+def _note_accounting(manifest, res) -> None:
+    """Say how the release was accounted: charged to a lifetime ledger, or not (and why)."""
+    acc = manifest.get("accounting")
+    if acc is None:  # bundles written before the manifest said it
+        acc = ({"charged": True, "dataset": manifest["ledger"].get("dataset")} if manifest.get("ledger")
+               else {"charged": False, "why": "this bundle's manifest does not say"})
+    if acc.get("charged"):
+        res.checked.append(f"charged to the lifetime ledger of dataset '{acc.get('dataset')}'")
+    else:
+        res.warnings.append(f"not charged to a lifetime ledger ({acc.get('why')}): releases of the same people "
+                            "add up, and nothing here keeps count of this one")
 
 
 def _check_invariants(manifest, tables, res):

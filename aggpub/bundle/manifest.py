@@ -34,7 +34,7 @@ def public_policy(policy) -> dict:
 
 
 def build_manifest(policy, grouping, budget, source, tables: dict, *, sizes_exact: bool, extra: dict,
-                   ledger_charge=None) -> dict:
+                   ledger_charge=None, uncharged: str = "") -> dict:
     """The manifest dict of a release (without ``files`` and ``manifest_sha256``, added when written).
 
     Parameters
@@ -53,6 +53,8 @@ def build_manifest(policy, grouping, budget, source, tables: dict, *, sizes_exac
         Fields added by a statistic (the sparse release's threshold).
     ledger_charge : Charge, optional
         The lifetime ledger's charge of this release.
+    uncharged : str
+        Why no ledger was charged (when ``ledger_charge`` is ``None``).
     """
     unit = policy.privacy.unit
     manifest = {
@@ -83,4 +85,7 @@ def build_manifest(policy, grouping, budget, source, tables: dict, *, sizes_exac
         manifest["warning"] = "seeded: reproducible noise, NOT private; for tests only"
     if ledger_charge is not None:
         manifest["ledger"] = ledger_charge.as_dict()
+        manifest["accounting"] = {"charged": True, "dataset": ledger_charge.dataset}
+    else:
+        manifest["accounting"] = {"charged": False, "why": uncharged}
     return manifest
