@@ -170,6 +170,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--max-contacts", type=int, metavar="N",
                    help="promised cap on contacts per person; required with --unit person")
     p.add_argument("--node-column", default="node", help="person id column (default 'node')")
+    p.add_argument("--edges", type=Path, metavar="FILE",
+                   help="edge file: only its header is read (column names are not private), to name the "
+                        "edge id columns in [input]")
     p.add_argument("--epsilon", type=float, default=1.0, help="total epsilon to write (default 1.0)")
     p.add_argument("--min-size", type=int, default=20, help="smallest supernode to write (default 20)")
     p.add_argument("--out", required=True, type=Path, help="policy file to write (TOML)")
@@ -428,13 +431,14 @@ def cmd_draft_policy(args):
 
     draft = draft_policy(args.nodes, args.attributes.split(","), unit=args.unit, codebook=args.codebook,
                          max_contacts=args.max_contacts, node_column=args.node_column, epsilon=args.epsilon,
-                         min_size=args.min_size)
-    path = write_draft_policy(args.out, draft, overwrite=args.overwrite, inputs=(args.nodes, args.codebook))
+                         min_size=args.min_size, edges=args.edges)
+    path = write_draft_policy(args.out, draft, overwrite=args.overwrite,
+                              inputs=(args.nodes, args.codebook, args.edges))
     print(f"wrote a starting policy to {path} (unit {draft.unit}, attributes {', '.join(draft.attributes)})")
     for note in draft.notes:
         print(f"  {note}")
     print(f"next: review {path} (every key is commented; docs/policy.md explains each), then")
-    print(f"  aggpub release --policy {path} --edges EDGES --nodes {args.nodes} --out BUNDLE")
+    print(f"  aggpub release --policy {path} --edges {args.edges or 'EDGES'} --nodes {args.nodes} --out BUNDLE")
     return 0
 
 

@@ -211,6 +211,11 @@ def _person_columns(path: Path) -> tuple[str, list[str]]:
 
 
 def _check_columns(path: Path, columns, wanted, node_column):
+    if len(columns) == 1 and any(d in columns[0] for d in ";|\t"):
+        delim = next(d for d in ";|\t" if d in columns[0])
+        raise InputError(f"{path}: the header is a single field containing {delim!r}: the file looks {delim!r}-"
+                         "delimited; .csv files must be comma-separated and .tsv files tab-separated (save it "
+                         "again as comma-separated CSV, UTF-8)")
     for a in wanted:
         if a not in columns:
             raise InputError(f"{path}: no column '{a}' in the person file{closest_name(a, columns)}; "
@@ -484,7 +489,7 @@ def _small_cells(values: pa.Table, attributes, min_size: int):
 
 def draft_policy(people, attributes, *, unit: str = "edge", codebook=None, max_contacts=None,
                  node_column: str = "node", epsilon: float = 1.0, min_size: int = 20,
-                 title: str | None = None) -> DraftPolicy:
+                 title: str | None = None, edges=None) -> DraftPolicy:
     """Write a commented starting policy for a person file and grouping attributes.
 
     Parameters
@@ -508,6 +513,9 @@ def draft_policy(people, attributes, *, unit: str = "edge", codebook=None, max_c
         Smallest supernode written (default 20).
     title : str, optional
         The policy's title.
+    edges : str or Path, optional
+        The edge file: only its header (or Parquet schema) is read, to name the
+        edge id columns in ``[input]`` (column names are not private).
 
     Returns
     -------
@@ -550,9 +558,15 @@ def draft_policy(people, attributes, *, unit: str = "edge", codebook=None, max_c
                       f"people); unless broader groups are given they join the residual supernode")
         notes.append(small_note)
 
+    edge_columns = None
+    if edges is not None:
+        edges = _check_file(edges, "edge")
+        edge_columns = _person_columns(edges)[1]
+        if len(edge_columns) < 2:
+            raise InputError(f"{edges}: the edge file's header has fewer than two columns")
     text = _render(people, attributes, unit=unit, max_contacts=max_contacts, node_column=node_column,
                    epsilon=float(epsilon), min_size=int(min_size), title=title, hierarchies=hierarchy_blocks,
-                   small_note=small_note, codebook=codebook)
+                   small_note=small_note, codebook=codebook, edge_columns=edge_columns)
     try:  # the starting policy must parse strictly, as it is written
         parse_policy(tomllib.loads(text))
     except (tomllib.TOMLDecodeError, PolicyError) as exc:  # pragma: no cover - a bug in this module
@@ -644,14 +658,14 @@ def _hierarchy_block(a, people, unit, codebook, found, notes):
 
 
 def _render(people: Path, attributes, *, unit, max_contacts, node_column, epsilon, min_size, title, hierarchies,
-            small_note, codebook) -> str:
+            small_note, codebook, edge_columns=None) -> str:
     dataset = re.sub(r"[^A-Za-z0-9._-]+", "-", people.stem).strip("-") or "dataset"
     lines = _header_lines(people, attributes, unit, codebook, title, dataset)
     lines += _privacy_lines(unit, epsilon, max_contacts, codebook, hierarchies)
     lines += _grouping_lines(people, attributes, min_size, small_note, hierarchies)
     lines += _component_lines(unit)
     lines += _ledger_and_gate_lines(dataset, attributes)
-    lines += _input_lines(people, node_column)
+    lines += _input_lines(people, node_column, edge_columns)
     return "\n".join(lines) + "\n"
 
 
@@ -791,11 +805,21 @@ def _ledger_and_gate_lines(dataset, attributes) -> list:
     return lines
 
 
-def _input_lines(people, node_column) -> list:
+def _input_lines(people, node_column, edge_columns=None) -> list:
     lines = _section_lines("input")
     lines += _key_lines("input.node", node_column, extra=(f"A column of {people.name}.",))
-    lines += _key_lines("input.source", "source", extra=("Edge-file columns: draft-policy did not read the edge file.",))
-    lines += _key_lines("input.target", "target")
+    if edge_columns is None:
+        source, target = "source", "target"
+        note = ("Edge-file columns: draft-policy did not read the edge file (give --edges FILE to read its header).",)
+    elif "source" in edge_columns and "target" in edge_columns:
+        source, target = "source", "target"
+        note = (f"The edge file's columns: {', '.join(edge_columns)}.",)
+    else:
+        source, target = edge_columns[0], edge_columns[1]
+        note = (f"The edge file's columns: {', '.join(edge_columns)}; its first two are taken as the two people",
+                "of each contact: check them.")
+    lines += _key_lines("input.source", source, extra=note)
+    lines += _key_lines("input.target", target)
     lines += _key_lines("input.weight", "minutes", active=False)
     lines += _key_lines("input.drop_unknown", False, active=False)
     return lines

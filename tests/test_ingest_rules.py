@@ -44,20 +44,22 @@ def _error(edges, people, **kw) -> str:
 def test_a_real_header_is_named_when_a_column_is_missing(tmp_path):
     edges = _write(tmp_path, "e.csv", "source,dest,minutes\np17,p42,3\n")
     msg = _error(edges, _write(tmp_path, "p.csv", PEOPLE_CSV))
-    assert msg == f"{edges}: no column 'target' (columns found: 'source', 'dest', 'minutes')"
+    assert msg == (f"{edges}: no column 'target' (columns found: 'source', 'dest', 'minutes'); "
+                   "name the right one with --target-column or [input] target")
 
 
 def test_a_near_miss_header_is_named_with_the_suggestion(tmp_path):
     edges = _write(tmp_path, "e.csv", "sourc,targt\np17,p42\n")
     msg = _error(edges, _write(tmp_path, "p.csv", PEOPLE_CSV))
-    assert msg == f"{edges}: no column 'source' (did you mean 'sourc'?) (columns found: 'sourc', 'targt')"
+    assert msg == (f"{edges}: no column 'source' (did you mean 'sourc'?) (columns found: 'sourc', 'targt'); "
+                   "name the right one with --source-column or [input] source")
 
 
 def test_a_headerless_file_keeps_its_first_line_private(tmp_path):
     edges = _write(tmp_path, "e.csv", "p17,p42\np42,p99\n")
     msg = _error(edges, _write(tmp_path, "p.csv", PEOPLE_CSV))
     assert msg == (f"{edges}: no column 'source' (none of the 2 header fields is an expected column: "
-                   "is the first line a header?)")
+                   "is the first line a header?); name the right one with --source-column or [input] source")
     assert "p17" not in msg and "p42" not in msg
     # a near miss of the asked name holding digits reads as an id, not as a column name
     edges = _write(tmp_path, "f.csv", "source1,p42\np42,p99\n")
@@ -74,7 +76,7 @@ def test_a_headerless_person_file_keeps_its_first_line_private(tmp_path):
     people = _write(tmp_path, "p.csv", "p17,a\np42,b\n")
     msg = _error(_write(tmp_path, "e.csv", "source,target\np17,p42\n"), people)
     assert msg == (f"{people}: no id column 'node' (none of the 2 header fields is an expected column: "
-                   "is the first line a header?)")
+                   "is the first line a header?); name the right one with --node-column or [input] node")
 
 
 def test_a_missing_attribute_names_the_person_header(tmp_path):
@@ -88,16 +90,18 @@ def test_parquet_and_arrow_column_names_are_always_named(tmp_path):
     table = pa.table({"from": ["p17"], "to": ["p42"]})
     pq.write_table(table, tmp_path / "e.parquet")
     people = _write(tmp_path, "p.csv", PEOPLE_CSV)
+    hint = "; name the right one with --source-column or [input] source"
     assert _error(tmp_path / "e.parquet", people) == \
-        f"{tmp_path / 'e.parquet'}: no column 'source' (columns found: 'from', 'to')"
-    assert _error(table, people) == "edge table: no column 'source' (columns found: 'from', 'to')"
+        f"{tmp_path / 'e.parquet'}: no column 'source' (columns found: 'from', 'to')" + hint
+    assert _error(table, people) == "edge table: no column 'source' (columns found: 'from', 'to')" + hint
 
 
 def test_a_long_header_is_cut_after_twenty_names(tmp_path):
     names = [f"col{i}" for i in range(25)] + ["source"]
     edges = _write(tmp_path, "e.csv", ",".join(names) + "\n" + ",".join("x" * len(names)) + "\n")
     msg = _error(edges, _write(tmp_path, "p.csv", PEOPLE_CSV))
-    assert msg.endswith("'col18', 'col19' and 6 more)") and "'col20'" not in msg
+    assert msg.endswith("'col18', 'col19' and 6 more); name the right one with --target-column or [input] target")
+    assert "'col20'" not in msg
 
 
 def test_the_delimiter_hint_is_kept_for_a_single_field_first_line(tmp_path):

@@ -36,7 +36,7 @@ def _listed(found) -> str:
     return ", ".join(names[:_LISTED_NAMES]) + (f" and {more} more" if more > 0 else "")
 
 
-def missing_column_error(source: Source, asked: str, found, expected, what: str) -> InputError:
+def missing_column_error(source: Source, asked: str, found, expected, what: str, option: str = "") -> InputError:
     """The error for a column ``asked`` that ``source`` lacks.
 
     Parquet and Arrow column names, and a CSV first line that
@@ -57,17 +57,20 @@ def missing_column_error(source: Source, asked: str, found, expected, what: str)
         Every column this read asks for.
     what : str
         ``"column"``, ``"id column"`` or ``"attribute column"``.
+    option : str
+        How to name another column (e.g. ``"--source-column or [input] source"``), said at the end.
     """
     found = list(found)
     prefix = f"{source.label}: no {what} '{asked}'"
+    how = f"; name the right one with {option}" if option else ""
     if source.debug or source.format != "csv" or looks_like_header(asked, found, expected):
-        return InputError(f"{prefix}{closest_name(asked, found)} (columns found: {_listed(found)})")
+        return InputError(f"{prefix}{closest_name(asked, found)} (columns found: {_listed(found)}){how}")
     if len(found) == 1 and any(d in found[0] for d in _OTHER_DELIMITERS):
         delim = next(d for d in _OTHER_DELIMITERS if d in found[0])
         return InputError(f"{prefix} (the header is a single field containing {delim!r}: the file looks "
                           f"{delim!r}-delimited; .csv files must be comma-separated and .tsv files tab-separated)")
     return InputError(f"{prefix} (none of the {len(found)} header fields is an expected column: "
-                      "is the first line a header?)")
+                      f"is the first line a header?){how}")
 
 
 def require_id_type(source: Source, column: str, ctype: ColumnType) -> None:

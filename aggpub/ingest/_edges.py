@@ -44,9 +44,11 @@ def read_edges(engine, source: Source, *, source_col: str, target_col: str, weig
     """
     columns = engine.describe(source)
     expected = [source_col, target_col] + ([weight] if weight else [])
+    options = {source_col: "--source-column or [input] source", target_col: "--target-column or [input] target",
+               weight: "--weight-column or [input] weight"}
     for c in expected:
         if c not in columns:
-            raise missing_column_error(source, c, columns, expected, "column")
+            raise missing_column_error(source, c, columns, expected, "column", options.get(c, ""))
     for c in (source_col, target_col):
         require_id_type(source, c, columns[c])
     if weight:

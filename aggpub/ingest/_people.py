@@ -59,7 +59,7 @@ def read_people(engine, source: Source, node: str, attributes, show_counts: bool
     columns = engine.describe(source)
     expected = [node] + list(attributes or ())
     if node not in columns:
-        raise missing_column_error(source, node, columns, expected, "id column")
+        raise missing_column_error(source, node, columns, expected, "id column", "--node-column or [input] node")
     require_id_type(source, node, columns[node])
     attr_cols = [c for c in columns if c != node] if attributes is None else list(attributes)
     for a in attr_cols:
