@@ -64,9 +64,11 @@ def build_parser() -> argparse.ArgumentParser:
     _add_input_options(p)
     p.add_argument("--out", required=True, type=Path, help="bundle folder to create")
     p.add_argument("--overwrite", action="store_true", help="replace an existing bundle at --out")
-    p.add_argument("--allow-inside-input", action="store_true",
-                   help="allow --out inside the folder of the edge or person file (refused by default)")
     p.add_argument("--seed", type=int, help="TESTS ONLY: fixed noise seed; the bundle is marked non-private")
+    p.add_argument("--new-dataset", action="store_true",
+                   help="these people were charged before under another [ledger] dataset id, and this really is "
+                        "a new dataset about them (e.g. a new survey wave); renaming a dataset does not reset "
+                        "its budget")
     p.add_argument("--report", type=Path, metavar="DIR",
                    help="folder for the CONFIDENTIAL audit report (report.html, audit.json; true statistics, never for researchers); default: <out>.report beside the bundle")
     p.add_argument("--audit-draws", type=int, default=None, metavar="N",
@@ -95,7 +97,8 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser("ledger", help="list the spends of a lifetime ledger and the budget left",
                        description="Verify a lifetime ledger (integrity and hash chain) and list every spend "
-                       "with the epsilon left per dataset. Read only.")
+                       "with the epsilon left per dataset. Read only.", epilog=EXIT_CODES_HELP,
+                       formatter_class=argparse.RawDescriptionHelpFormatter)
     p.add_argument("file", type=Path, help="ledger file (SQLite)")
     p.add_argument("--dataset", help="only this dataset id")
     _add_common(p)
@@ -104,7 +107,8 @@ def build_parser() -> argparse.ArgumentParser:
                        description="Verify a bundle, then draw a synthetic contact network in which every "
                        "superedge cell holds exactly its released number of distinct contacts, uniformly "
                        "placed among the cell's possible pairs. The people are invented and numbered per "
-                       "supernode. Post-processing of public data: costs no privacy budget.")
+                       "supernode. Post-processing of public data: costs no privacy budget.", epilog=EXIT_CODES_HELP,
+                       formatter_class=argparse.RawDescriptionHelpFormatter)
     p.add_argument("bundle", type=Path, help="bundle folder")
     p.add_argument("--out", required=True, type=Path, help="Parquet file to write (columns source, target)")
     p.add_argument("--people", type=Path, help="also write the person -> supernode table (Parquet)")
@@ -112,12 +116,30 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--overwrite", action="store_true", help="replace existing output files")
     _add_common(p)
 
+    p = sub.add_parser("plan", help="free pre-flight: the supernodes, the noise and the gate, before any noise",
+                       description="Predict what a release would form and how its gate is expected to judge it, "
+                       "for the policy's setting or a grid of epsilon x min_size. Draws no noise, charges "
+                       "nothing, writes nothing, and reads nothing private: under unit 'edge' the person file "
+                       "(public there), under unit 'person' only the policy and its [assumptions]. The contacts "
+                       "are never read. Exit 6 when no setting is expected to pass the gate.",
+                       epilog=EXIT_CODES_HELP, formatter_class=argparse.RawDescriptionHelpFormatter)
+    p.add_argument("--policy", required=True, type=Path, help="release policy (TOML)")
+    p.add_argument("--nodes", type=Path, help="person attributes (unit 'edge' only: public there)")
+    p.add_argument("--edges", type=Path, help="accepted for symmetry with 'release' and never read")
+    p.add_argument("--node-column", help="person id column (default: policy or 'node')")
+    p.add_argument("--epsilons", help="comma-separated total epsilons to try (default: the policy's)")
+    p.add_argument("--min-sizes", help="comma-separated minimum supernode sizes to try (default: the policy's)")
+    p.add_argument("--json", action="store_true", help="print the plan as JSON instead of a table")
+    _add_common(p)
+
     p = sub.add_parser("sweep", help="INTERNAL planning aid: errors over a grid of epsilon x min_size",
                        description="Internal planning aid (confidential, writes nothing public): expected and "
                        "observed errors of a release over a grid of epsilon x min_size (x privacy unit), the "
                        "true statistics computed once per grouping, and the cheapest setting meeting the "
                        "policy's [gate]. Choosing parameters from the private data is itself a data-dependent "
-                       "step, and the final release draws fresh noise.")
+                       "step outside the guarantee (use 'aggpub plan', which reads nothing private, to choose), "
+                       "and the final release draws fresh noise.", epilog=EXIT_CODES_HELP,
+                       formatter_class=argparse.RawDescriptionHelpFormatter)
     _add_input_options(p)
     p.add_argument("--epsilons", required=True, help="comma-separated total epsilons, e.g. 0.5,1,2")
     p.add_argument("--min-sizes", required=True, help="comma-separated minimum supernode sizes, e.g. 10,20")
@@ -148,6 +170,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--max-contacts", type=int, metavar="N",
                    help="promised cap on contacts per person; required with --unit person")
     p.add_argument("--node-column", default="node", help="person id column (default 'node')")
+    p.add_argument("--edges", type=Path, metavar="FILE",
+                   help="edge file: only its header is read (column names are not private), to name the "
+                        "edge id columns in [input]")
     p.add_argument("--epsilon", type=float, default=1.0, help="total epsilon to write (default 1.0)")
     p.add_argument("--min-size", type=int, default=20, help="smallest supernode to write (default 20)")
     p.add_argument("--out", required=True, type=Path, help="policy file to write (TOML)")
@@ -194,17 +219,17 @@ def cmd_release(args):
     from .pipeline import run_release
     from .progress import Progress
 
-    if not args.allow_inside_input:  # outputs never land beside the private inputs unless asked
-        check_outside_inputs(args.out, (args.edges, args.nodes))
-        if args.report is not None:
-            check_outside_inputs(args.report, (args.edges, args.nodes))
+    inputs = (args.edges, args.nodes, args.policy)
+    check_outside_inputs(args.out, inputs, "bundle")  # an output folder never swallows an input
+    if args.report is not None:
+        check_outside_inputs(args.report, inputs, "report")
     run = run_release(args.policy, args.edges, args.nodes, args.out, seed=args.seed,
                       overwrite=args.overwrite, source=args.source_column, target=args.target_column,
                       node=args.node_column, weight=args.weight_column, drop_unknown=args.drop_unknown,
                       engine=args.engine, progress=Progress(args.quiet), debug=args.debug,
                       memory_limit=args.memory_limit, report=args.report,
                       monte_carlo=None if args.audit_draws is None
-                      else _non_negative(args.audit_draws, "--audit-draws"))
+                      else _non_negative(args.audit_draws, "--audit-draws"), new_dataset=args.new_dataset)
     _print_release(run)
     if run.release.network.engine.name == "duckdb":  # run_release closed the engine and its spill folder
         _FINISHED_CLEANLY.append("release")
@@ -217,14 +242,15 @@ def cmd_check(args):
     res = check_bundle(args.bundle)
     for w in res.warnings:
         print(f"warning: {w}", file=sys.stderr)
+    print(f"bundle {args.bundle}")
+    for c in res.checked:
+        print(f"  holds: {c}")
+    for p in res.problems:
+        print(f"  does not hold: {p}")
     if not res.ok:
-        for p in res.problems:
-            print(f"FAIL {p}")
         print(f"{args.bundle}: check failed ({len(res.problems)} problem(s))")
         return 1
-    for c in res.checked:
-        print(f"ok   {c}")
-    print(f"{args.bundle}: bundle verified")
+    print(f"{args.bundle}: bundle verified ({len(res.checked)} statements hold)")
     return 0
 
 
@@ -257,14 +283,25 @@ def cmd_ledger(args):
     if args.dataset is not None and args.dataset not in totals:
         print(f"{args.file}: no spends for dataset '{args.dataset}'")
         return 0
-    print(f"{'id':>4}  {'time (UTC)':<20} {'dataset':<24} {'epsilon':>9}  {'status':<9} bundle")
+    # unit: the policy's privacy unit; new: declared a new dataset about people charged under another id
+    # ('-': a row written by ledger schema version 1, which recorded neither). The input fingerprint is
+    # never shown.
+    print(f"{'id':>4}  {'time (UTC)':<20} {'dataset':<24} {'epsilon':>9}  {'unit':<6} {'new':<3}  {'status':<9} "
+          "bundle")
     for s in spends:
-        print(f"{s.id:>4}  {s.created_utc[:19]:<20} {s.dataset:<24} {s.epsilon:>9.4g}  {s.status:<9} "
-              f"{s.bundle_path}")
+        unit = s.privacy_unit if s.row_version >= 2 and s.privacy_unit else "-"
+        new = ("yes" if s.declared_new else "no") if s.row_version >= 2 else "-"
+        print(f"{s.id:>4}  {s.created_utc[:19]:<20} {s.dataset:<24} {s.epsilon:>9.4g}  {unit:<6} {new:<3}  "
+              f"{s.status:<9} {s.bundle_path}")
     for name, (spent, cap) in sorted(totals.items()):
         if args.dataset is None or name == args.dataset:
             print(f"dataset '{name}': spent {spent:.6g} of lifetime epsilon {cap:.6g}, "
                   f"{max(0.0, cap - spent):.6g} left")
+    if any(s.row_version < 2 for s in spends):
+        print("'-' in unit and new: written by ledger schema version 1, which recorded neither")
+    if ledger.schema_version == "1":
+        print(f"{args.file}: ledger schema version 1; upgraded in place to version 2 (privacy unit, input "
+              "fingerprint, declared new dataset) by the next charge")
     print(f"{args.file}: ledger verified ({len(ledger.spends())} spend(s), hash chain intact)")
     return 0
 
@@ -297,6 +334,56 @@ def cmd_sample(args):
         people = write_sample(synthetic_people(bundle), args.people, overwrite=args.overwrite)
         print(f"wrote the person -> supernode table to {people}")
     return 0
+
+
+def cmd_plan(args):
+    import json
+
+    from .audit.sweep import parse_grid
+    from .plan import run_plan
+    from .progress import Progress
+
+    epsilons = parse_grid(args.epsilons, float, "--epsilons") if args.epsilons else None
+    min_sizes = parse_grid(args.min_sizes, int, "--min-sizes") if args.min_sizes else None
+    result = run_plan(args.policy, args.nodes, epsilons=epsilons, min_sizes=min_sizes, node=args.node_column,
+                      progress=Progress(args.quiet), debug=args.debug)
+    if args.json:
+        print(json.dumps(result.as_dict(), indent=1, default=str))
+    else:
+        _print_plan(result)
+    return 0 if result.any_expected_to_pass else 6
+
+
+def _print_plan(result):
+    print(f"pre-flight plan (unit {result.unit}): no noise drawn, nothing charged, nothing private read")
+    keys = [k for k in result.rows[0].gate["checked"]] if result.rows else []
+    head = f"{'epsilon':>8} {'min_size':>8} {'supernodes':>10} {'sizes':>13}  " + \
+        "".join(f"{_short(k):>12}" for k in keys) + "  gate"
+    print(head)
+    for r in result.rows:
+        sn = r.supernodes
+        sizes = f"{sn['size_min']}-{sn['size_max']}" if sn.get("count") else "-"
+        count = "private" if sn.get("count") is None and "error" not in sn else f"{sn.get('count') or 0:,}"
+        figs = "".join(f"{_fmt_metric(r.gate[k]):>12}" for k in keys)
+        print(f"{r.epsilon:>8g} {r.min_size:>8} {count:>10} {sizes:>13}  {figs}  {r.verdict}")
+    if result.rows:
+        print("noise per component at the first setting: " + "; ".join(
+            f"{c['name']} scale {c['scale']:.4g} (sensitivity {c['sensitivity']:g}, epsilon {c['epsilon']:.4g})"
+            for c in result.rows[0].noise))
+    for k in keys:
+        print(f"  {_short(k)} = {k} <= {result.rows[0].gate[k]['allowed']:g}")
+    for n in result.notes:
+        print(f"note: {n}")
+
+
+def _short(key):
+    return {"max_degree_ks": "degree KS", "max_degree_wasserstein": "degree W1",
+            "max_contact_matrix_median_relative_error": "matrix err", "max_superedge_median_relative_error":
+            "cell err"}.get(key, key)
+
+
+def _fmt_metric(entry):
+    return "n/p" if entry.get("value") is None else f"{entry['value']:.3g}"
 
 
 def cmd_sweep(args):
@@ -344,18 +431,19 @@ def cmd_draft_policy(args):
 
     draft = draft_policy(args.nodes, args.attributes.split(","), unit=args.unit, codebook=args.codebook,
                          max_contacts=args.max_contacts, node_column=args.node_column, epsilon=args.epsilon,
-                         min_size=args.min_size)
-    path = write_draft_policy(args.out, draft, overwrite=args.overwrite, inputs=(args.nodes, args.codebook))
+                         min_size=args.min_size, edges=args.edges)
+    path = write_draft_policy(args.out, draft, overwrite=args.overwrite,
+                              inputs=(args.nodes, args.codebook, args.edges))
     print(f"wrote a starting policy to {path} (unit {draft.unit}, attributes {', '.join(draft.attributes)})")
     for note in draft.notes:
         print(f"  {note}")
     print(f"next: review {path} (every key is commented; docs/policy.md explains each), then")
-    print(f"  aggpub release --policy {path} --edges EDGES --nodes {args.nodes} --out BUNDLE")
+    print(f"  aggpub release --policy {path} --edges {args.edges or 'EDGES'} --nodes {args.nodes} --out BUNDLE")
     return 0
 
 
 COMMANDS = {"release": cmd_release, "check": cmd_check, "demo": cmd_demo, "ledger": cmd_ledger,
-            "sample": cmd_sample, "sweep": cmd_sweep, "draft-policy": cmd_draft_policy}
+            "sample": cmd_sample, "plan": cmd_plan, "sweep": cmd_sweep, "draft-policy": cmd_draft_policy}
 
 
 def main(argv=None) -> int:

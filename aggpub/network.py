@@ -57,8 +57,8 @@ class Network:
         One row per person (row ``i`` is person ``i``), attribute columns as strings.
     n_people, n_edges : int
         Number of people and of distinct undirected contacts.
-    engine : object
-        The counting engine holding the ``edges`` table (``u < v``, dense ids).
+    engine : aggpub.engines.Engine
+        The counting engine holding the contacts (``u < v``, dense ids).
     report : IngestReport
         Counts of what was read and dropped.
     weighted : bool

@@ -12,7 +12,7 @@ confidential audit and report, the gate and the atomic bundle write.
 from __future__ import annotations
 
 __all__ = ["Release", "ReleaseRun", "build_release", "release_tables", "run_release", "publish", "Progress",
-           "preflight_gate", "release_gate"]
+           "preflight_gate", "release_gate", "applied_policy"]
 
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -84,7 +84,7 @@ class ReleaseRun(tuple):
 
 
 def build_release(network: Network, policy: ReleasePolicy, *, seed: int | None = None, progress=None,
-                  ledger: ReleaseLedger | None = None) -> Release:
+                  ledger: ReleaseLedger | None = None, uncharged: str | None = None) -> Release:
     """Build a release from an ingested network (no file is written).
 
     Parameters
@@ -99,6 +99,9 @@ def build_release(network: Network, policy: ReleasePolicy, *, seed: int | None =
     ledger : ReleaseLedger, optional
         Charged once, before the first random number is drawn; if the charge is
         refused, no noise is drawn. The charge is recorded in the manifest.
+    uncharged : str, optional
+        Why no ledger is charged (required when ``ledger`` is ``None``, so that every
+        bundle says how it was accounted); recorded in the manifest's ``accounting``.
 
     Returns
     -------
@@ -135,13 +138,15 @@ def build_release(network: Network, policy: ReleasePolicy, *, seed: int | None =
               **stats.tables}
     charge = ledger.charge() if ledger is not None else None  # no-op when the first draw charged it
     manifest = build_manifest(policy, grouping, budget, source, tables, sizes_exact=sizes_exact,
-                              extra=stats.manifest, ledger_charge=charge)
+                              extra=stats.manifest, ledger_charge=charge,
+                              uncharged=uncharged or "no lifetime ledger was given to the release")
     return Release(tables=tables, manifest=manifest, grouping=grouping, network=network, policy=policy,
                    truth={"sizes": grouping.sizes(), **stats.truth}, mechanisms=stats.mechanisms)
 
 
 def release_tables(edges: pa.Table, people: pa.Table, policy: ReleasePolicy | dict, *, seed=None,
-                   source="source", target="target", node="node", weight=None, drop_unknown=False) -> Release:
+                   source="source", target="target", node="node", weight=None, drop_unknown=False,
+                   charge_ledger: bool = True, new_dataset: bool = False) -> Release:
     """Build a release in process from Arrow tables and a policy (no CLI, no files).
 
     Parameters
@@ -152,11 +157,35 @@ def release_tables(edges: pa.Table, people: pa.Table, policy: ReleasePolicy | di
         A policy, or a decoded TOML mapping.
     seed : int, optional
         Tests only (non-private).
+    charge_ledger : bool, default True
+        Charge the policy's ``[ledger]`` (as ``aggpub release`` does) before the first
+        noise draw. ``False`` is an explicit choice not to: the manifest then says the
+        release was not charged, and ``aggpub check`` prints it.
+    new_dataset : bool, default False
+        The people were charged before under another dataset id and this really is a
+        new dataset about them (see :meth:`aggpub.budget.ledger.Ledger.charge`).
 
     Returns
     -------
     Release
         Its network's engine stays open with it (the audit reads the true network).
+
+    Examples
+    --------
+    >>> import networkx as nx, pyarrow as pa
+    >>> import aggpub
+    >>> G = nx.karate_club_graph()  # Zachary's karate club, as networkx ships it
+    >>> edges = pa.table({"source": [str(u) for u, v in G.edges()], "target": [str(v) for u, v in G.edges()]})
+    >>> people = pa.table({"node": [str(n) for n in G], "club": [G.nodes[n]["club"] for n in G]})
+    >>> policy = {"privacy": {"unit": "edge", "epsilon": 1.0},
+    ...           "grouping": {"method": "attributes", "attributes": ["club"], "min_size": 5}}
+    >>> release = aggpub.release_tables(edges, people, policy, seed=1)  # a seed: tests only, NOT private
+    >>> release.supernodes.column("size").to_pylist()
+    [17, 17]
+    >>> release.superedges.num_rows  # every pair of supernodes, the diagonal included, zeros included
+    3
+    >>> [c["name"] for c in release.manifest["components"]]
+    ['superedge_counts', 'degree_sequences', 'triangle_count']
     """
     from .policy import parse_policy
 
@@ -164,18 +193,46 @@ def release_tables(edges: pa.Table, people: pa.Table, policy: ReleasePolicy | di
         policy = parse_policy(policy)
     network = load_policy_inputs(policy, edges, people, source=source, target=target, node=node, weight=weight,
                                  drop_unknown=drop_unknown)
-    return build_release(network, policy, seed=seed)
+    ledger, why = None, "the policy has no [ledger] section"
+    if policy.ledger is not None:
+        if charge_ledger:
+            ledger = ReleaseLedger(policy, "(in-process release)", new_dataset=new_dataset)
+            ledger.attach_input(network.ids)
+        else:
+            why = "the caller chose not to charge the policy's ledger (charge_ledger=False)"
+    release = build_release(network, policy, seed=seed, ledger=ledger, uncharged=why)
+    if ledger is not None:
+        ledger.finish(ok=True)  # charged: the noisy tables exist, whatever happens to them next
+    return release
 
 
 def publish(release: Release, out, *, overwrite: bool = False, _fault=None) -> Path:
-    """Write a release as a bundle folder (atomic)."""
+    """Write a release as a bundle folder (atomic).
+
+    Examples
+    --------
+    >>> import networkx as nx, pyarrow as pa
+    >>> import aggpub
+    >>> G = nx.karate_club_graph()  # Zachary's karate club, as networkx ships it
+    >>> edges = pa.table({"source": [str(u) for u, v in G.edges()], "target": [str(v) for u, v in G.edges()]})
+    >>> people = pa.table({"node": [str(n) for n in G], "club": [G.nodes[n]["club"] for n in G]})
+    >>> policy = {"privacy": {"unit": "edge", "epsilon": 1.0},
+    ...           "grouping": {"method": "attributes", "attributes": ["club"], "min_size": 5}}
+    >>> import pathlib, tempfile
+    >>> release = aggpub.release_tables(edges, people, policy, seed=1)
+    >>> path = aggpub.publish(release, pathlib.Path(tempfile.mkdtemp()) / "karate-bundle")
+    >>> aggpub.check_bundle(path).ok
+    True
+    >>> sorted(p.name for p in path.iterdir())
+    ['README.md', 'degree_sequences.parquet', 'manifest.json', 'superedges.parquet', 'supernodes.parquet']
+    """
     return write_bundle(out, release.tables, release.manifest, render_datacard(release.manifest),
                         overwrite=overwrite, _fault=_fault)
 
 
 def run_release(policy, edges, people, out, *, seed=None, overwrite=False, source=None, target=None,
                 node=None, weight=None, drop_unknown=None, engine="duckdb", progress=None, debug=False,
-                memory_limit=None, report=None, monte_carlo=None) -> ReleaseRun:
+                memory_limit=None, report=None, monte_carlo=None, new_dataset=False) -> ReleaseRun:
     """The whole release from files: read, build, audit, gate, publish.
 
     The audit (:func:`aggpub.audit.audit_release`) compares the release with the
@@ -208,16 +265,20 @@ def run_release(policy, edges, people, out, *, seed=None, overwrite=False, sourc
     report_dir = Path(report).absolute() if report is not None else report_mod.default_report_path(out)
     report_mod.check_report_target(report_dir, overwrite, bundle=out)
     # Lifetime ledger: verified and checked now (read only), charged before the first noise draw.
-    ledger = ReleaseLedger(policy, out) if policy.ledger is not None else None
+    ledger = ReleaseLedger(policy, out, new_dataset=new_dataset) if policy.ledger is not None else None
     progress("reading edges and people")
     eng = make_engine(engine, memory_limit=memory_limit, spill_parent=out.parent, progress=progress)
     try:
-        network = load_policy_inputs(policy, edges, people, source=source, target=target, node=node,
-                                     weight=weight, drop_unknown=drop_unknown, debug=debug, engine=eng)
+        policy = applied_policy(policy, source=source, target=target, node=node, weight=weight,
+                                drop_unknown=drop_unknown)  # the manifest records what was applied
+        network = load_policy_inputs(policy, edges, people, debug=debug, engine=eng)
         for line in network.report.lines(private_counts=policy.privacy.unit != "person"):
             progress(line)
         preflight = preflight_gate(policy, network, progress)
-        release = build_release(network, policy, seed=seed, progress=progress, ledger=ledger)
+        if ledger is not None:
+            ledger.attach_input(network.ids)  # the people's keyed fingerprint, kept in the ledger only
+        release = build_release(network, policy, seed=seed, progress=progress, ledger=ledger,
+                                uncharged="the policy has no [ledger] section")
         if ledger is not None:
             charge = ledger.charged
             progress(f"ledger: charged epsilon {charge.epsilon:g} to '{charge.dataset}', "
@@ -247,6 +308,21 @@ def run_release(policy, edges, people, out, *, seed=None, overwrite=False, sourc
     if ledger is not None:
         ledger.finish(ok=True)
     return ReleaseRun(release, path, findings, report_path)
+
+
+def applied_policy(policy: ReleasePolicy, *, source=None, target=None, node=None, weight=None,
+                   drop_unknown=None) -> ReleasePolicy:
+    """The policy with the command line's input options in its ``[input]`` section (they override it)."""
+    import dataclasses
+
+    from .ingest import policy_weight_column
+
+    inp = policy.input
+    applied = dataclasses.replace(inp, source=source or inp.source, target=target or inp.target,
+                                  node=node or inp.node,
+                                  weight=policy_weight_column(policy, weight or inp.weight),
+                                  drop_unknown=inp.drop_unknown if drop_unknown is None else drop_unknown)
+    return policy if applied == inp else policy.replace(input=applied)
 
 
 def preflight_gate(policy: ReleasePolicy, network: Network, progress=None) -> dict:
@@ -291,6 +367,8 @@ def release_gate(release: Release) -> dict:
     from .gate import evaluate_gate
     from .gate.released import released_metrics
 
+    if not any(getattr(release.policy.gate, key) is not None for key in GATE_METRICS):
+        return {"passed": True, "failed": [], "checked": [], "unknown": [], "basis": "no thresholds set"}
     metrics = released_metrics(release.tables, release.manifest, release.policy)
     gate = evaluate_gate(release.policy, metrics, basis="estimated from the released values and the law of "
                                                         "their noise")

@@ -1244,6 +1244,19 @@ def parse_policy(data: Mapping[str, Any], base_dir=None, source_path=None) -> Re
     refused with the closest known key suggested, missing required keys are
     named); types, ranges and rules are checked by the dataclasses as they are
     built.
+
+    Examples
+    --------
+    >>> from aggpub import parse_policy
+    >>> policy = parse_policy({"privacy": {"unit": "edge", "epsilon": 1.0},
+    ...                        "grouping": {"method": "attributes", "attributes": ["age_band"], "min_size": 20}})
+    >>> policy.privacy.epsilon, policy.grouping.min_size
+    (1.0, 20)
+    >>> parse_policy({"privacy": {"unit": "edge", "epsilom": 1.0},
+    ...               "grouping": {"method": "attributes", "attributes": ["age_band"], "min_size": 20}})
+    Traceback (most recent call last):
+    ...
+    aggpub.errors.PolicyError: unknown key 'privacy.epsilom' (did you mean 'epsilon'?)
     """
     base_dir = Path(base_dir) if base_dir is not None else Path.cwd()
     top = _Section(data, "")

@@ -21,7 +21,11 @@ import time
 
 
 class Progress:
-    """Stage messages on stderr (silent when ``quiet``)."""
+    """Stage messages on stderr (silent when ``quiet``): ``progress: <message> (<seconds> s in)``.
+
+    The time since the command started comes last, after the message, so the
+    message reads first; every command prints progress the same way.
+    """
 
     def __init__(self, quiet: bool = False, stream=None):
         self.quiet = quiet
@@ -30,7 +34,7 @@ class Progress:
 
     def __call__(self, message: str) -> None:
         if not self.quiet:
-            print(f"[{time.perf_counter() - self.t0:7.1f}s] {message}", file=self.stream, flush=True)
+            print(f"progress: {message} ({time.perf_counter() - self.t0:.1f} s in)", file=self.stream, flush=True)
 
 
 def silent(message: str) -> None:

@@ -211,6 +211,11 @@ def _person_columns(path: Path) -> tuple[str, list[str]]:
 
 
 def _check_columns(path: Path, columns, wanted, node_column):
+    if len(columns) == 1 and any(d in columns[0] for d in ";|\t"):
+        delim = next(d for d in ";|\t" if d in columns[0])
+        raise InputError(f"{path}: the header is a single field containing {delim!r}: the file looks {delim!r}-"
+                         "delimited; .csv files must be comma-separated and .tsv files tab-separated (save it "
+                         "again as comma-separated CSV, UTF-8)")
     for a in wanted:
         if a not in columns:
             raise InputError(f"{path}: no column '{a}' in the person file{closest_name(a, columns)}; "
@@ -484,7 +489,7 @@ def _small_cells(values: pa.Table, attributes, min_size: int):
 
 def draft_policy(people, attributes, *, unit: str = "edge", codebook=None, max_contacts=None,
                  node_column: str = "node", epsilon: float = 1.0, min_size: int = 20,
-                 title: str | None = None) -> DraftPolicy:
+                 title: str | None = None, edges=None) -> DraftPolicy:
     """Write a commented starting policy for a person file and grouping attributes.
 
     Parameters
@@ -508,6 +513,9 @@ def draft_policy(people, attributes, *, unit: str = "edge", codebook=None, max_c
         Smallest supernode written (default 20).
     title : str, optional
         The policy's title.
+    edges : str or Path, optional
+        The edge file: only its header (or Parquet schema) is read, to name the
+        edge id columns in ``[input]`` (column names are not private).
 
     Returns
     -------
@@ -520,6 +528,54 @@ def draft_policy(people, attributes, *, unit: str = "edge", codebook=None, max_c
     InputError
         A file is missing, unreadable or not UTF-8, or an attribute is not a column.
     """
+    attributes = _check_draft_arguments(attributes, unit, codebook, max_contacts, node_column, epsilon, min_size)
+
+    people = _check_file(people, "person")
+    fmt, columns = _person_columns(people)
+    _check_columns(people, columns, attributes, node_column)
+    if codebook is not None and not isinstance(codebook, Codebook):
+        codebook = read_codebook(codebook)
+
+    notes = []
+    hierarchy_blocks = []
+    found = None
+    if unit == "edge":
+        found = _read_person_values(people, fmt, attributes)
+    else:
+        notes.append(f"unit person: the attribute values were taken from the codebook {codebook.path}, not from "
+                     f"{people.name}: under this unit the values present in the person file are private (one person "
+                     "can be the only one with a value); only its header was read")
+        missing = [a for a in attributes if a not in codebook.levels]
+        if missing:
+            raise InputError(f"{codebook.path}: the codebook lists no values of attribute '{missing[0]}'; under unit "
+                             "'person' every grouping attribute needs its declared domain")
+    small_note = None
+    for a in attributes:
+        hierarchy_blocks.append(_hierarchy_block(a, people, unit, codebook, found, notes))
+    if found is not None:
+        cells, small, small_people = _small_cells(found, attributes, min_size)
+        small_note = (f"{small:,} of {cells:,} attribute cells have fewer than {min_size} people ({small_people:,} "
+                      f"people); unless broader groups are given they join the residual supernode")
+        notes.append(small_note)
+
+    edge_columns = None
+    if edges is not None:
+        edges = _check_file(edges, "edge")
+        edge_columns = _person_columns(edges)[1]
+        if len(edge_columns) < 2:
+            raise InputError(f"{edges}: the edge file's header has fewer than two columns")
+    text = _render(people, attributes, unit=unit, max_contacts=max_contacts, node_column=node_column,
+                   epsilon=float(epsilon), min_size=int(min_size), title=title, hierarchies=hierarchy_blocks,
+                   small_note=small_note, codebook=codebook, edge_columns=edge_columns)
+    try:  # the starting policy must parse strictly, as it is written
+        parse_policy(tomllib.loads(text))
+    except (tomllib.TOMLDecodeError, PolicyError) as exc:  # pragma: no cover - a bug in this module
+        raise AssertionError(f"draft-policy wrote a policy that does not parse: {exc}") from None
+    return DraftPolicy(text=text, notes=notes, unit=unit, attributes=attributes)
+
+
+def _check_draft_arguments(attributes, unit, codebook, max_contacts, node_column, epsilon, min_size) -> tuple:
+    """The attributes, cleaned; a :class:`UsageError` naming the option for anything missing or contradictory."""
     attributes = tuple(a.strip() for a in attributes)
     if not attributes or not all(attributes):
         raise UsageError("--attributes: give at least one attribute, comma-separated (e.g. age_band,neighbourhood)")
@@ -546,95 +602,74 @@ def draft_policy(people, attributes, *, unit: str = "edge", codebook=None, max_c
                 option = {"privacy.epsilon": "--epsilon", "grouping.min_size": "--min-size",
                           "privacy.max_contacts": "--max-contacts"}[path]
                 raise UsageError(f"{option}: {exc}") from None
+    return attributes
 
-    people = _check_file(people, "person")
-    fmt, columns = _person_columns(people)
-    _check_columns(people, columns, attributes, node_column)
-    if codebook is not None and not isinstance(codebook, Codebook):
-        codebook = read_codebook(codebook)
 
-    notes = []
-    hierarchy_blocks = []
-    found = None
-    if unit == "edge":
-        found = _read_person_values(people, fmt, attributes)
-    else:
-        notes.append(f"unit person: the attribute values were taken from the codebook {codebook.path}, not from "
-                     f"{people.name}: under this unit the values present in the person file are private (one person "
-                     "can be the only one with a value); only its header was read")
-        missing = [a for a in attributes if a not in codebook.levels]
-        if missing:
-            raise InputError(f"{codebook.path}: the codebook lists no values of attribute '{missing[0]}'; under unit "
-                             "'person' every grouping attribute needs its declared domain")
-    small_note = None
-    for a in attributes:
-        comments = []
-        if codebook is not None and a in codebook.levels:
-            levels = [dict(level) for level in codebook.levels[a]]
-            comments.append(f"Values and broader groups from the public codebook {codebook.path.name} "
-                            f"({len(levels[0])} values, {len(levels)} level(s)).")
-            if unit == "person":
-                comments += [
-                    "Under unit \"person\" the person file's values were not read: the values present in the data",
-                    "are private (one person can be the only one with a value), so this list is the declared",
-                    "domain of the attribute. The release refuses people whose value is not listed here.",
-                ]
-                notes.append(f"{a}: {len(levels[0])} values from the codebook, {len(levels)} level(s)")
-            else:
-                col = found.column(a)
-                present = {v for v in col.unique().to_pylist() if v}
-                extra = sorted(present - set(levels[0]), key=_natural_key)
-                for v in extra:  # under edge the person table is public: make the hierarchy cover it
-                    levels[0][v] = v
-                    for level in levels[1:]:
-                        level.setdefault(v, v)
-                if extra:
-                    comments.append(f"{len(extra)} value(s) found in {people.name} but not in the codebook were "
-                                    "added, each mapped to itself.")
-                notes.append(f"{a}: {len(levels[0]) - len(extra)} values from the codebook"
-                             + (f", {len(extra)} more found in {people.name}" if extra else ""))
+def _hierarchy_block(a, people, unit, codebook, found, notes):
+    """The first hierarchy levels of attribute ``a`` and their comments (codebook, or values found under edge)."""
+    comments = []
+    if codebook is not None and a in codebook.levels:
+        levels = [dict(level) for level in codebook.levels[a]]
+        comments.append(f"Values and broader groups from the public codebook {codebook.path.name} "
+                        f"({len(levels[0])} values, {len(levels)} level(s)).")
+        if unit == "person":
+            comments += [
+                "Under unit \"person\" the person file's values were not read: the values present in the data",
+                "are private (one person can be the only one with a value), so this list is the declared",
+                "domain of the attribute. The release refuses people whose value is not listed here.",
+            ]
+            notes.append(f"{a}: {len(levels[0])} values from the codebook, {len(levels)} level(s)")
         else:
             col = found.column(a)
-            values = sorted((v for v in col.unique().to_pylist() if v), key=_natural_key)
-            levels = [{v: v for v in values}]
-            comments += [
-                f"{len(values)} values found in {people.name} (unit \"edge\": the person table is public and was",
-                "read). Each value maps to itself, so nothing is generalised yet: map the values to broader",
-                "groups (e.g. \"0-4\" = \"0-9\") so small cells are generalised rather than merged into the",
-                "residual supernode. For a still broader step, add another [[...levels]] table that maps",
-                "each group of this level to a broader one.",
-            ]
-            notes.append(f"{a}: {len(values)} values found in {people.name}, each mapped to itself "
-                         "(map them to broader groups)")
-            if len(values) > MANY_VALUES:
-                notes.append(f"{a}: more than {MANY_VALUES:,} values; most cells will be small, so a coarser "
-                             "attribute or broader groups will keep far more of them")
-        if found is not None:
-            col = found.column(a)
-            empty = col.null_count + int(pc.sum(pc.equal(col, "")).as_py() or 0)
-            if empty:
-                notes.append(f"{a}: {empty:,} row(s) of {people.name} have no value; aggpub release refuses a person "
-                             "file with empty attribute cells, so fill them in first")
-        hierarchy_blocks.append((a, levels, comments))
+            present = {v for v in col.unique().to_pylist() if v}
+            extra = sorted(present - set(levels[0]), key=_natural_key)
+            for v in extra:  # under edge the person table is public: make the hierarchy cover it
+                levels[0][v] = v
+                for level in levels[1:]:
+                    level.setdefault(v, v)
+            if extra:
+                comments.append(f"{len(extra)} value(s) found in {people.name} but not in the codebook were "
+                                "added, each mapped to itself.")
+            notes.append(f"{a}: {len(levels[0]) - len(extra)} values from the codebook"
+                         + (f", {len(extra)} more found in {people.name}" if extra else ""))
+    else:
+        col = found.column(a)
+        values = sorted((v for v in col.unique().to_pylist() if v), key=_natural_key)
+        levels = [{v: v for v in values}]
+        comments += [
+            f"{len(values)} values found in {people.name} (unit \"edge\": the person table is public and was",
+            "read). Each value maps to itself, so nothing is generalised yet: map the values to broader",
+            "groups (e.g. \"0-4\" = \"0-9\") so small cells are generalised rather than merged into the",
+            "residual supernode. For a still broader step, add another [[...levels]] table that maps",
+            "each group of this level to a broader one.",
+        ]
+        notes.append(f"{a}: {len(values)} values found in {people.name}, each mapped to itself "
+                     "(map them to broader groups)")
+        if len(values) > MANY_VALUES:
+            notes.append(f"{a}: more than {MANY_VALUES:,} values; most cells will be small, so a coarser "
+                         "attribute or broader groups will keep far more of them")
     if found is not None:
-        cells, small, small_people = _small_cells(found, attributes, min_size)
-        small_note = (f"{small:,} of {cells:,} attribute cells have fewer than {min_size} people ({small_people:,} "
-                      f"people); unless broader groups are given they join the residual supernode")
-        notes.append(small_note)
-
-    text = _render(people, attributes, unit=unit, max_contacts=max_contacts, node_column=node_column,
-                   epsilon=float(epsilon), min_size=int(min_size), title=title, hierarchies=hierarchy_blocks,
-                   small_note=small_note, codebook=codebook)
-    try:  # the starting policy must parse strictly, as it is written
-        parse_policy(tomllib.loads(text))
-    except (tomllib.TOMLDecodeError, PolicyError) as exc:  # pragma: no cover - a bug in this module
-        raise AssertionError(f"draft-policy wrote a policy that does not parse: {exc}") from None
-    return DraftPolicy(text=text, notes=notes, unit=unit, attributes=attributes)
+        col = found.column(a)
+        empty = col.null_count + int(pc.sum(pc.equal(col, "")).as_py() or 0)
+        if empty:
+            notes.append(f"{a}: {empty:,} row(s) of {people.name} have no value; aggpub release refuses a person "
+                         "file with empty attribute cells, so fill them in first")
+    return a, levels, comments
 
 
 def _render(people: Path, attributes, *, unit, max_contacts, node_column, epsilon, min_size, title, hierarchies,
-            small_note, codebook) -> str:
+            small_note, codebook, edge_columns=None) -> str:
     dataset = re.sub(r"[^A-Za-z0-9._-]+", "-", people.stem).strip("-") or "dataset"
+    lines = _header_lines(people, attributes, unit, codebook, title, dataset)
+    lines += _privacy_lines(unit, epsilon, max_contacts, codebook, hierarchies)
+    lines += _grouping_lines(people, attributes, min_size, small_note, hierarchies)
+    lines += _component_lines(unit)
+    lines += _ledger_and_gate_lines(dataset, attributes)
+    lines += _input_lines(people, node_column, edge_columns)
+    return "\n".join(lines) + "\n"
+
+
+def _header_lines(people, attributes, unit, codebook, title, dataset) -> list:
     lines = [
         f"# Starting release policy written by aggpub draft-policy {__version__}.",
         f"# Person file: {people.name}; grouping attributes: {', '.join(attributes)}; privacy unit: {unit}.",
@@ -652,10 +687,12 @@ def _render(people: Path, attributes, *, unit, max_contacts, node_column, epsilo
         "# release may be made is for your data-protection officer, ethics board and the law that applies.",
         "",
     ]
-    lines += _key_lines("title", title if title is not None else f"{dataset} contacts: release",
-                        extra=("It is published with the release: keep private information out of it.",))
+    return lines + _key_lines("title", title if title is not None else f"{dataset} contacts: release",
+                              extra=("It is published with the release: keep private information out of it.",))
 
-    lines += _section_lines("privacy")
+
+def _privacy_lines(unit, epsilon, max_contacts, codebook, hierarchies) -> list:
+    lines = _section_lines("privacy")
     unit_extra = [
         "\"edge\": one contact between two people is protected; the person table (who is in the data and",
         "their attributes) is public, and supernode sizes are released exactly.",
@@ -679,11 +716,15 @@ def _render(people: Path, attributes, *, unit, max_contacts, node_column, epsilo
     ))
     if unit == "person":
         lines += _key_lines("privacy.max_contacts", max_contacts, extra=(
-            "A promise about the data: input in which anyone has more contacts is refused, never truncated.",
+            "A promise about the data, taken from public facts (the most contacts the survey form can record):",
+            "input in which anyone has more contacts is refused, never truncated, and the refusal is charged.",
             "A larger cap means more noise (it is the sensitivity of the superedge counts).",
         ))
+    return lines
 
-    lines += _section_lines("grouping")
+
+def _grouping_lines(people, attributes, min_size, small_note, hierarchies) -> list:
+    lines = _section_lines("grouping")
     lines += _key_lines("grouping.method", "attributes", extra=(
         "\"attributes\": people with equal values of the attributes below (public, no budget under \"edge\").",
         "\"structure\", \"attributes+structure\": read the contacts, paid from grouping.epsilon_share",
@@ -709,11 +750,14 @@ def _render(people: Path, attributes, *, unit, max_contacts, node_column, epsilo
             lines.append(f"[[grouping.hierarchies.{_key_name(attr)}.levels]]"
                          + ("" if k == 0 else f"   # step {k + 1}: the groups of step {k} -> broader groups"))
             lines += [f"{_toml_string(v)} = {_toml_string(level[v])}" for v in level]
+    return lines
 
-    lines += ["", f"# {'-' * 98}",
-              f"# [components]: {_plain(next(s for s in POLICY_SECTIONS if s.name == 'components').meaning)}",
-              "# Components without a share split what the shares leave (the triangle count takes half the",
-              "# part of each other one)."]
+
+def _component_lines(unit) -> list:
+    lines = ["", f"# {'-' * 98}",
+             f"# [components]: {_plain(next(s for s in POLICY_SECTIONS if s.name == 'components').meaning)}",
+             "# Components without a share split what the shares leave (the triangle count takes half the",
+             "# part of each other one)."]
     if unit == "edge":
         lines.append("# With nothing set: superedge counts 0.4, degree sequences 0.4, triangle count 0.2.")
     sizes_extra = (("Exact and free under unit \"edge\" (the person table is public).",) if unit == "edge" else
@@ -742,8 +786,11 @@ def _render(people: Path, attributes, *, unit, max_contacts, node_column, epsilo
         lines += ["", "[components.triangle_count]"]
         lines += _key_lines("components.triangle_count.enabled", True, active=False)
         lines += _key_lines("components.triangle_count.share", 0.2, active=False)
+    return lines
 
-    lines += _section_lines("ledger", active=False)
+
+def _ledger_and_gate_lines(dataset, attributes) -> list:
+    lines = _section_lines("ledger", active=False)
     lines += [
         "# Not active: remove the leading '# ' of the section and its keys to use it. Keep ONE ledger file",
         "# per dataset (the same people) and name it in every policy that releases that dataset: each",
@@ -752,23 +799,42 @@ def _render(people: Path, attributes, *, unit, max_contacts, node_column, epsilo
     lines += _key_lines("ledger.path", f"{dataset}.ledger", active=False)
     lines += _key_lines("ledger.dataset", dataset, active=False)
     lines += _key_lines("ledger.lifetime_epsilon", 3.0, active=False)
-
     lines += _section_lines("gate", active=False)
     lines += [
-        "# No thresholds are set. Examples (a release missing one is not published, its budget stays",
-        "# charged; the outcome depends on the true network, so do not retry until one passes):",
+        "# No thresholds are set. Examples (the gate judges the errors to expect from the noise, from public",
+        "# values only; 'aggpub plan' predicts it before any noise; a release missing one is not published):",
     ]
     lines += _key_lines("gate.max_degree_ks", 0.1, active=False)
     lines += _key_lines("gate.max_contact_matrix_median_relative_error", 0.25, active=False)
     lines += _key_lines("gate.contact_matrix_attribute", attributes[0], active=False)
+    lines += _section_lines("assumptions", active=False)
+    lines += [
+        "# Public planning figures for the pre-flight ('aggpub plan'), from the study design or a",
+        "# published survey, never from this data:",
+    ]
+    lines += _key_lines("assumptions.contacts_per_person", 11.0, active=False)
+    lines += _key_lines("assumptions.people", 10000, active=False)
+    return lines
 
-    lines += _section_lines("input")
+
+def _input_lines(people, node_column, edge_columns=None) -> list:
+    lines = _section_lines("input")
     lines += _key_lines("input.node", node_column, extra=(f"A column of {people.name}.",))
-    lines += _key_lines("input.source", "source", extra=("Edge-file columns: draft-policy did not read the edge file.",))
-    lines += _key_lines("input.target", "target")
+    if edge_columns is None:
+        source, target = "source", "target"
+        note = ("Edge-file columns: draft-policy did not read the edge file (give --edges FILE to read its header).",)
+    elif "source" in edge_columns and "target" in edge_columns:
+        source, target = "source", "target"
+        note = (f"The edge file's columns: {', '.join(edge_columns)}.",)
+    else:
+        source, target = edge_columns[0], edge_columns[1]
+        note = (f"The edge file's columns: {', '.join(edge_columns)}; its first two are taken as the two people",
+                "of each contact: check them.")
+    lines += _key_lines("input.source", source, extra=note)
+    lines += _key_lines("input.target", target)
     lines += _key_lines("input.weight", "minutes", active=False)
     lines += _key_lines("input.drop_unknown", False, active=False)
-    return "\n".join(lines) + "\n"
+    return lines
 
 
 def _key_name(name: str) -> str:

@@ -17,8 +17,8 @@ Decisions recorded here (and in the report):
   decimal, date, list and other types are refused;
 * an id that is empty or spells a missing value (``NaN``, ``NA``, ``N/A``,
   ``null``, ``None``, any case) is refused, in the person and the edge file;
-* ``--out`` inside the folder of the edge or person file is refused unless
-  ``--allow-inside-input``.
+* an output (bundle or report) folder that would hold an input file, or that is
+  an input's own folder, is refused; a new folder beside the inputs is fine.
 """
 
 from __future__ import annotations
@@ -159,8 +159,12 @@ def _out_parent_missing(s):
     s.out = s.root / "out" / "no" / "such" / "bundle"
 
 
-def _out_inside_input(s):
-    s.out = s.root / "in" / "bundle"
+def _out_is_input_folder(s):
+    s.out = s.root / "in"
+
+
+def _out_holds_inputs(s):
+    s.out = s.root
 
 
 def _out_under_proc(s):
@@ -341,9 +345,9 @@ CASES = [
     Case("out_parent_missing", OUTPUT, ("such", "does not exist"), _out_parent_missing),
     Case("out_existing_bundle", OUTPUT, ("bundle", "already exists", "--overwrite"), _existing_bundle),
     Case("out_foreign_folder_overwrite", OUTPUT, ("bundle", "not a bundle"), _nonbundle_folder),
-    Case("out_inside_input_folder", OUTPUT, ("bundle", "inside the folder of input", "--allow-inside-input"),
-         _out_inside_input),
-    Case("report_inside_input_folder", OUTPUT, ("report", "inside the folder of input"),
+    Case("out_is_the_input_folder", OUTPUT, ("in", "would be the folder of input"), _out_is_input_folder),
+    Case("out_holds_the_inputs", OUTPUT, ("lies inside the bundle folder", "--overwrite"), _out_holds_inputs),
+    Case("report_holds_the_inputs", OUTPUT, ("lies inside the report folder",),
          _extra("--report", "REPLACED")),
     Case("out_unwritable_proc", OUTPUT, ("/proc",), _out_under_proc),
     Case("out_is_the_edge_file", OUTPUT, ("edges.csv",), lambda s: setattr(s, "out", s.edges)),
@@ -374,7 +378,7 @@ def _run(capsys, argv):
 def test_malformed_input(case, tmp_path, capsys):
     s = Scenario(tmp_path)
     case.setup(s)
-    s.extra = [str(s.root / "in" / "report") if a == "REPLACED" else a for a in s.extra]
+    s.extra = [str(s.root) if a == "REPLACED" else a for a in s.extra]
     capsys.readouterr()
     before = tree_snapshot(tmp_path)
     rc, out, err = _run(capsys, s.argv())
@@ -504,10 +508,11 @@ def test_identical_duplicate_people_are_collapsed(tmp_path, capsys):
     _release_ok(s, capsys)
 
 
-def test_allow_inside_input(tmp_path, capsys):
+def test_bundle_beside_its_inputs_is_fine(tmp_path, capsys):
+    """The README's layout: inputs and the new bundle folder side by side in one folder (issue 14.1)."""
     s = Scenario(tmp_path)
     s.out = s.root / "in" / "bundle"
-    _release_ok(s, capsys, "--allow-inside-input")
+    _release_ok(s, capsys)
 
 
 def test_demo_writes_inputs_beside_not_inside(tmp_path, capsys):

@@ -193,3 +193,17 @@ def test_sparse_release_keeps_clamped_estimates():
     assert rel.manifest["superedges_sparse"] is True
     np.testing.assert_array_equal(se.column("edge_count_estimate").to_numpy(), se.column("edge_count").to_numpy())
     assert "sparse" in rel.manifest["superedge_estimates"]
+
+
+def test_capped_rescaling_keeps_the_total_and_the_order():
+    """A supernode whose fit puts everything on one member: the rescaled values never pass N - 1, stay sorted,
+    and still add up to the total (the total is possible: at most size x (N - 1))."""
+    group = np.repeat([0, 1], [5, 4])
+    fit = np.array([0.0, 0.0, 0.0, 0.1, 3.0, 1.0, 1.0, 2.0, 2.0])
+    totals = np.array([30.0, 12.0])
+    out = dest.degree_targets(fit, group, np.array([5, 4]), totals, cap=9.0)
+    assert out.max() <= 9.0 and (out >= 0).all()
+    np.testing.assert_allclose(np.bincount(group, weights=out), totals)
+    same = group[1:] == group[:-1]
+    assert (np.diff(out)[same] >= -1e-12).all()
+    np.testing.assert_allclose(out[5:], fit[5:] * 2.0)  # nobody near the cap: plain rescaling

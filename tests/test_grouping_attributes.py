@@ -128,3 +128,14 @@ def test_counting_and_sorting_encodings_give_the_same_grouping(monkeypatch):
     assert np.array_equal(dense.assignment, sorted_.assignment)
     assert dense.labels.equals(sorted_.labels)
     assert dense.n_supernodes > 3
+
+
+def test_uncovered_values_are_counted_as_values_not_cells():
+    """One district missing from the hierarchy, present in 25 small cells (25 age bands): "1 value(s)" (issue 14.5)."""
+    ages = [f"a{i:02d}" for i in range(25)]
+    people = pa.table({"age": [a for a in ages for _ in range(2)] + ["a00"] * 3,
+                       "district": ["d9"] * 50 + ["d1"] * 3})
+    hier = {"district": ({"d1": "zone"},)}
+    with pytest.raises(PolicyError, match=r"does not cover 1 value\(s\) of attribute 'district'") as err:
+        group_by_attributes(people, ["age", "district"], 5, hier, ["district"])
+    assert "d9" not in str(err.value)

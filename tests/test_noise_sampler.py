@@ -16,6 +16,15 @@ Sources used below:
 * [COCHRAN] the usual rule that chi-square cells need expected counts of at
   least 5: W. G. Cochran, "Some methods for strengthening the common chi-square
   tests", Biometrics, 1954 (citation recalled from memory).
+* [CKS20] C. L. Canonne, G. Kamath, T. Steinke, "The Discrete Gaussian for
+  Differential Privacy", NeurIPS 2020 -- Algorithm 1 (Bernoulli(exp(-gamma))
+  for rational gamma, expected to succeed with probability exactly
+  exp(-gamma)) and Algorithm 2 (discrete Laplace by a geometric, a sign and a
+  rejection).
+* [DEC] Python's ``decimal`` module: ``Decimal.exp`` is correctly rounded
+  (documented in the Python library reference), used as an independent
+  high-precision value of exp(-x).
+* [BINOM] ``scipy.stats.binomtest``: exact binomial test.
 * [MOM] moments derived here from sum_{k>=1} k^2 a^k = a(1+a)/(1-a)^3 and
   sum_{k>=1} k^4 a^k = a(1+11a+11a^2+a^3)/(1-a)^5 (Eulerian-number series,
   recalled from memory and re-checked numerically in ``test_moment_formulas``);
@@ -39,13 +48,19 @@ from hypothesis import given, settings
 from hypothesis import strategies as hs
 
 from aggpub.noise.mechanisms import GeometricMechanism
+from fractions import Fraction
+
+from aggpub.noise import sampler as smp
 from aggpub.noise.sampler import (
+    MIN_RATE,
     RandomSource,
     SeededRandomSource,
     SystemRandomSource,
     _bits_to_open_unit,
+    dyadic_rate,
     make_random_source,
     sample_discrete_laplace,
+    sample_discrete_laplace_exact,
 )
 
 SEEDED_LEVEL = 1e-3
@@ -94,7 +109,7 @@ def gof(x: np.ndarray, a: float):
 
 def homogeneity(x: np.ndarray, y: np.ndarray, a: float):
     """Two-sample chi-square (contingency table) on cells pooled for the smaller sample [SCIPY]."""
-    t, _ = pooled_cells(a, min(x.size, y.size))
+    t, _ = pooled_cells(a, min(x.size, y.size), min_expected=10.0)  # realised column totals stay >= 5
     table = np.vstack([cell_counts(x, t), cell_counts(y, t)])
     res = st.chi2_contingency(table)
     assert res.expected_freq.min() >= 5.0  # [COCHRAN]
@@ -394,3 +409,321 @@ def test_mechanism_properties_and_randomise():
     sharp = GeometricMechanism(1e4, 1.0)
     assert sharp.alpha == 0.0 and sharp.variance() == 0.0
     assert not sharp.noise(1000, SeededRandomSource(1)).any()
+
+
+# ====================================================================== exact sampler [CKS20]
+class _PrefixSource(SeededRandomSource):
+    """Seeded bytes, except that the first bytes ever handed out are a fixed prefix (white-box tests)."""
+
+    def __init__(self, seed, prefix: bytes):
+        super().__init__(seed)
+        self._prefix = np.frombuffer(prefix, dtype=np.uint8)
+
+    def random_bytes(self, n):
+        head, self._prefix = self._prefix[:n], self._prefix[n:]
+        return np.concatenate([head, super().random_bytes(n - head.size)])
+
+
+def _stream(seed: int, hint: int = 1 << 16):
+    return smp.ByteStream(SeededRandomSource(seed), hint)
+
+
+def test_random_bytes_are_uniform_on_both_sources():
+    # [SCIPY] chi-square of 2**20 bytes against the uniform law on 0..255.
+    for src, level in ((SeededRandomSource(5), SEEDED_LEVEL), (SystemRandomSource(), SYSTEM_LEVEL)):
+        b = src.random_bytes(1 << 20)
+        assert b.dtype == np.uint8 and b.shape == (1 << 20,)
+        assert st.chisquare(np.bincount(b, minlength=256)).pvalue > level
+    assert SeededRandomSource(5).random_bytes(0).shape == (0,)
+    assert np.array_equal(SeededRandomSource(6).random_bytes(100), SeededRandomSource(6).random_bytes(100))
+
+
+class _UniformOnly(RandomSource):
+    """A source that only implements uniform(), as wrappers do: bytes come from the default path."""
+
+    def __init__(self, inner):
+        self.inner, self.calls = inner, 0
+
+    def uniform(self, n):
+        self.calls += 1
+        return self.inner.uniform(n)
+
+    seeded = property(lambda self: True)
+    description = property(lambda self: "test wrapper")
+
+
+def test_default_random_bytes_come_from_uniform_and_are_uniform():
+    wrapped = _UniformOnly(SeededRandomSource(8))
+    b = wrapped.random_bytes(600_000)
+    assert wrapped.calls == 1 and b.shape == (600_000,)
+    assert st.chisquare(np.bincount(b, minlength=256)).pvalue > SEEDED_LEVEL  # [SCIPY]
+    # Off-grid uniforms (e.g. numpy's 53-bit random()) cannot give exact bytes: refused, not guessed.
+    class OffGrid(_UniformOnly):
+        def uniform(self, n):
+            return np.random.default_rng(0).random(n)
+    with pytest.raises(RuntimeError, match="grid"):
+        OffGrid(None).random_bytes(10)
+
+
+def test_charge_on_first_draw_runs_before_exact_noise():
+    # The release pipeline wraps its source in ChargeOnFirstDraw, which forwards uniform() and
+    # random_bytes(): the exact sampler must go through it, after the charge.
+    from aggpub.budget.ledger import ChargeOnFirstDraw
+
+    events = []
+
+    class Src(SeededRandomSource):
+        def uniform(self, n):
+            events.append("draw")
+            return super().uniform(n)
+
+        def random_bytes(self, n):
+            events.append("draw")
+            return super().random_bytes(n)
+
+    guarded = ChargeOnFirstDraw(Src(3), lambda: events.append("charge"))
+    x = GeometricMechanism(1.0, 1.0).noise(50_000, guarded)
+    assert events[0] == "charge" and events.count("charge") == 1 and "draw" in events
+    stat, p, cells = gof(x, alpha_of(1.0, 1.0))  # [SCIPY] vs [GRS09]
+    assert p > SEEDED_LEVEL
+
+
+@pytest.mark.parametrize("upper", [3, 10, 255, 256, 1000, 2 ** 32 + 5, 3 * 2 ** 61])
+def test_integers_are_uniform_without_modulo_bias(upper):
+    src = SeededRandomSource(upper % 1000)
+    x = src.integers(upper, 120_000)
+    assert x.min() >= 0 and int(x.max()) < upper
+    # Thirds of the range [SCIPY], expected counts from the number of integers in each third. For
+    # upper = 3 * 2**61 a plain "word mod upper" would put 3/8 (not 1/3) of the mass in the first
+    # third (values below 2**64 - 2 * upper have 3 preimages, the others 2); the same test rejects it.
+    def third_counts(v):
+        return np.bincount(np.minimum((v.astype(np.float64) * 3 / upper).astype(np.int64), 2), minlength=3)
+
+    edges = [-(-j * upper // 3) for j in range(4)]
+    probs = np.diff(edges) / upper
+    assert st.chisquare(third_counts(x), probs * x.size).pvalue > SEEDED_LEVEL
+    if upper <= 1000:
+        assert st.chisquare(np.bincount(x, minlength=upper)).pvalue > SEEDED_LEVEL
+    if upper == 3 * 2 ** 61:
+        naive = SeededRandomSource(1).random_bytes(8 * 120_000).view("<u8") % np.uint64(upper)
+        assert st.chisquare(third_counts(naive), probs * x.size).pvalue < 1e-10
+
+
+def test_integers_with_per_draw_bounds_and_validation():
+    src = SeededRandomSource(2)
+    bounds = np.array([1, 2, 7, 2 ** 40, 2 ** 63] * 20_000, dtype=np.uint64)
+    x = src.integers(bounds)
+    assert x.dtype == np.uint64 and np.all(x < bounds)
+    assert np.all(x[bounds == 1] == 0)
+    for b in (2, 7):
+        assert st.chisquare(np.bincount(x[bounds == b].astype(np.int64), minlength=b)).pvalue > SEEDED_LEVEL
+    with pytest.raises(ValueError):
+        src.integers(0)
+    with pytest.raises(ValueError):
+        src.integers(2 ** 63 + 1)
+
+
+# ------------------------------------------------------------------ rates
+def test_dyadic_rate_is_exact_for_dyadics_and_the_largest_below_otherwise():
+    assert dyadic_rate(1) == (1, 0)
+    assert dyadic_rate(0.25) == (1, 2)
+    assert dyadic_rate(0.1) == (Fraction(0.1).numerator, 55)          # a float is an exact dyadic
+    for x in (Fraction(1, 3), Fraction(0.1) / 100, Fraction(7, 10) / Fraction(2.3), Fraction(10 ** 6, 7)):
+        s, k = dyadic_rate(x)
+        assert 0 <= k <= 62 and 1 <= s <= 2 ** 62
+        y = Fraction(s, 2 ** k)
+        assert y <= x                                                  # never more epsilon than stated
+        # largest with k <= 62: the next multiple of 2**-62 is above x (or s would exceed 2**62)
+        assert Fraction(s * 2 ** (62 - k) + 1, 2 ** 62) > x or s * 2 ** (62 - k) + 1 > 2 ** 62
+        assert (x - y) / x < 2.0 ** -52
+    assert dyadic_rate(2.0 ** 70) == (2 ** 62, 0)
+    assert dyadic_rate(MIN_RATE) == (1, 54)
+    with pytest.raises(ValueError, match="too large"):
+        dyadic_rate(MIN_RATE / 2)
+    with pytest.raises(ValueError):
+        dyadic_rate(0)
+
+
+def test_mechanism_records_the_rate_it_samples():
+    exact = GeometricMechanism(0.1, 1.0)
+    assert exact.rate == Fraction(0.1) and exact.rate_is_exact and exact.effective_epsilon == 0.1
+    assert GeometricMechanism(0.1, 4.0).rate_is_exact and GeometricMechanism(1.0, 2.0).rate == Fraction(1, 2)
+    approx = GeometricMechanism(0.1, 100.0)          # 0.1 / 100 has denominator 2**57 * 25
+    assert not approx.rate_is_exact
+    assert approx.rate < Fraction(0.1) / 100
+    assert Fraction(approx.effective_epsilon) <= approx.rate * 100 < Fraction(0.1)  # rounded down
+    assert 0.1 - approx.effective_epsilon < 1e-16
+    with pytest.raises(ValueError, match="too large"):
+        GeometricMechanism(1e-9, 1e9)
+
+
+# --------------------------------------------------------- Bernoulli(exp(-gamma)) [CKS20]
+@pytest.mark.parametrize("c,k", [(0, 0), (3, 3), (1, 0), (5, 2), (5, 1), (7, 0), (43, 2),
+                                 (Fraction(0.1).numerator, 55), (2 ** 62 - 1, 62)])
+def test_bernoulli_exp_matches_exp(c, k):
+    # Bernoulli(exp(-gamma)), gamma = c / 2**k in {0, 3/8, 1, 5/4, 5/2, 7, 10.75, 0.1, ~1}: the
+    # frequency of 1 must pass an exact binomial test [BINOM] against exp(-gamma) [CKS20].
+    n = 300_000
+    gamma = Fraction(c, 2 ** k)
+    x = smp._bern_exp(_stream(c % 997 + k), c, k, n)
+    p_true = math.exp(-float(gamma))
+    if c == 0:
+        assert x.all()
+        return
+    assert st.binomtest(int(x.sum()), n, p_true).pvalue > SEEDED_LEVEL
+    if gamma <= 1:  # per-draw numerators (array path) on the same law
+        y = smp._bern_exp_unit(_stream(k + 1), np.full(n, c, dtype=np.uint64), k)
+        assert st.binomtest(int(y.sum()), n, p_true).pvalue > SEEDED_LEVEL
+    # power: the same test rejects a law 5 % off in gamma when exp(-gamma) is not tiny
+    if p_true > 1e-3:
+        assert st.binomtest(int(x.sum()), n, math.exp(-1.05 * float(gamma))).pvalue < SEEDED_LEVEL
+
+
+def test_bernoulli_dyadic_and_first_factorial_failure():
+    n = 400_000
+    for c, k in ((1, 1), (3, 3), (200, 8), (Fraction(0.1).numerator, 55)):
+        x = smp._bern_dyadic(_stream(c % 101), np.full(n, c, dtype=np.uint64), k)
+        assert st.binomtest(int(x.sum()), n, c / 2 ** k).pvalue > SEEDED_LEVEL  # [BINOM]
+    # K1 = first failure among Bernoulli(1/1), Bernoulli(1/2), ...: P(K1 > j) = 1/j!
+    k1 = smp._first_factorial_failure(_stream(3), n)
+    assert k1.min() >= 2
+    for j in (2, 3, 4, 5):
+        assert st.binomtest(int((k1 > j).sum()), n, 1 / math.factorial(j)).pvalue > SEEDED_LEVEL
+    # The rare K1 > 7 branch (a first word of 0): the coins from 8 on are drawn one by one.
+    forced = smp.ByteStream(_PrefixSource(4, bytes(2)), 64)
+    assert smp._first_factorial_failure(forced, 1)[0] >= 8
+
+
+# ------------------------------------------------------------- geometric and tails
+def _geometric_gof(g: np.ndarray, rate: float, n: int, bins: int = 40):
+    """Chi-square of geometric draws against P(G >= j) = a**j, a = exp(-rate) [GRS09].
+
+    Bins start at about equal-probability points (rounded up to integers, duplicates dropped), so
+    small and large scales are tested alike; bins with an expected count below 5 are merged into
+    their left neighbour [COCHRAN]; the last bin is the whole tail.
+    """
+    q = np.arange(1, bins) / bins
+    starts = np.unique(np.concatenate([[0], np.ceil(-np.log1p(-q) / rate)]).astype(np.int64))
+    surv = np.exp(-rate * starts.astype(np.float64))          # P(G >= start)
+    probs = np.append(surv[:-1] - surv[1:], surv[-1])
+    obs = np.bincount(np.searchsorted(starts, g, side="right") - 1, minlength=starts.size)
+    keep_o, keep_p = [], []
+    for o, p in zip(obs, probs):
+        if keep_p and (p * n < 5 or keep_p[-1] * n < 5):
+            keep_o[-1] += o
+            keep_p[-1] += p
+        else:
+            keep_o.append(o)
+            keep_p.append(p)
+    keep_p = np.array(keep_p)
+    return st.chisquare(keep_o, keep_p / keep_p.sum() * n).pvalue
+
+
+@pytest.mark.parametrize("s,k", [(1, 0), (Fraction(0.1).numerator, 55), (1, 2), (5, 1), (3, 20), (1, 5)])
+def test_exact_geometric_law(s, k):
+    # P(G >= g) = exp(-g s / 2**k): scale 1 (m = 1), 10 (m = 10), 4 (power of two), rate 2.5 (> 1),
+    # about 350,000 (m = 349525, per-value uniforms of 32 bits) and 32.
+    n = 200_000
+    g = smp.geometric_exact(_stream(s % 991 + k), s, k, n)
+    assert g.dtype == np.int64 and g.min() >= 0
+    rate = s / 2 ** k
+    assert _geometric_gof(g, rate, n) > SEEDED_LEVEL
+    assert _geometric_gof(g, 1.3 * rate, n) < SEEDED_LEVEL  # power: a 30 % wrong rate is rejected
+
+
+def test_discrete_laplace_far_tails_exact_binomial():
+    # 4 million draws at a = exp(-1): cells 0..T fitted by chi-square, then the far one-sided tails
+    # P(|Z| >= t) = 2 a**t / (1 + a) [GRS09] by exact binomial tests [BINOM] for t up to 16
+    # (expected count 1.6 at t = 16); Bonferroni over the tails.
+    n = 4_000_000
+    mech = GeometricMechanism(1.0, 1.0)
+    x = mech.noise(n, SeededRandomSource(4242))
+    a = mech.alpha
+    stat, p, cells = gof(x, a)
+    assert p > SEEDED_LEVEL
+    tails = [8, 10, 12, 14, 16]
+    pvals = [st.binomtest(int((np.abs(x) >= t).sum()), n, 2 * a ** t / (1 + a)).pvalue for t in tails]
+    print(f"far tails t={tails}: counts={[int((np.abs(x) >= t).sum()) for t in tails]} p={pvals}")
+    assert min(pvals) * len(tails) > SEEDED_LEVEL
+    # power of the same tail tests against a 30 % larger scale
+    wrong = sample_discrete_laplace_exact(1 / 1.3, n, SeededRandomSource(4243))
+    assert st.binomtest(int((np.abs(wrong) >= 10).sum()), n, 2 * a ** 10 / (1 + a)).pvalue < SEEDED_LEVEL
+
+
+def test_noise_is_unbounded_beyond_the_old_float_limit():
+    # The float sampler never exceeded 53 ln 2 / rate = 36.7 * scale: an event of probability about
+    # 1e-16, too rare to observe. Instead the conditional law is checked (white box): the magnitude
+    # |Z| is the exact geometric G of [CKS20] Algorithm 2. At rate 1 (scale 1) each trial of G is one
+    # exp(-1) coin decided by one 16-bit word; the first 40 trials are forced to succeed by a fixed
+    # prefix of words, after which fresh random bytes must give G = 40 + G' with G' geometric of the
+    # same law (memorylessness, [GRS09]): values far beyond 36.7 appear with exactly the conditional
+    # frequencies of the law, and nothing caps them.
+    j_max = smp._FACT_J
+    succeed = int(smp._FACT_C * (math.factorial(j_max) // math.factorial(3)))  # K1 = 3, odd: the coin succeeds
+    prefix = np.full(40, succeed, dtype="<u2").tobytes()
+    runs = 6000
+    out = np.empty(runs, dtype=np.int64)
+    for i in range(runs):
+        stream = smp.ByteStream(_PrefixSource(10_000 + i, prefix), 64)
+        out[i] = smp.geometric_exact(stream, 1, 0, 1)[0]
+    assert out.min() >= 40
+    assert _geometric_gof(out - 40, 1.0, runs) > SEEDED_LEVEL
+    assert _geometric_gof(out - 40, 1.3, runs) < SEEDED_LEVEL  # power: a 30 % steeper tail is rejected
+    # and the signed noise built from such magnitudes keeps them (Algorithm 2 only rejects G = 0)
+    assert smp._FACT_J == 7 and smp._FACT_TABLE[succeed] == 3
+
+
+def test_large_scale_cap_and_overflow_guard(monkeypatch):
+    # scale 2**40: values of the order of 1e12, exact int64, standard deviation sqrt(2) * scale.
+    x = sample_discrete_laplace_exact(Fraction(1, 2 ** 40), 20_000, SeededRandomSource(3))
+    assert x.dtype == np.int64
+    assert 0.9 < float(np.std(x.astype(np.float64))) / (math.sqrt(2) * 2 ** 40) < 1.1
+    # cap (skip walks): values >= cap come back as cap, with probability P(G >= cap) = a**cap
+    g = smp.geometric_exact(_stream(5), 1, 3, 100_000, cap=20)          # rate 1/8
+    assert g.max() == 20
+    assert st.binomtest(int((g == 20).sum()), g.size, math.exp(-20 / 8)).pvalue > SEEDED_LEVEL
+    # without a cap a value past the int64 guard raises instead of wrapping (guard lowered to 10 here;
+    # the real one is 2**62 - 1, reached with probability below exp(-256) at the accepted scales)
+    monkeypatch.setattr(smp, "_MAX_VALUE", 10)
+    with pytest.raises(OverflowError):
+        smp.geometric_exact(_stream(6), 1, 3, 1000)
+
+
+# --------------------------------------------------- rigorous bounds and constant coins
+@pytest.mark.parametrize("x", [Fraction(0), Fraction(3, 8), Fraction(1), Fraction(0.1) * 7, Fraction(400),
+                               Fraction(12345, 7), Fraction(1, 2 ** 40)])
+def test_exp_bounds_bracket_the_decimal_value(x):
+    from decimal import Decimal, localcontext
+
+    lo, hi = smp.exp_neg_bounds(x, 120)
+    with localcontext() as ctx:
+        ctx.prec = 80
+        ref = (-(Decimal(x.numerator) / Decimal(x.denominator))).exp()  # [DEC] correctly rounded
+        tol = abs(ref) * Decimal(10) ** -75
+        assert Decimal(lo.numerator) / Decimal(lo.denominator) <= ref + tol
+        assert Decimal(hi.numerator) / Decimal(hi.denominator) >= ref - tol
+    assert lo <= hi and (x == 0 or (hi - lo) / lo < Fraction(1, 2 ** 110))
+    if 0 < x <= 1:
+        qlo, qhi = smp.one_minus_exp_neg_bounds(x, 120)
+        with localcontext() as ctx:
+            ctx.prec = 80
+            ref1 = 1 - ref
+            assert Decimal(qlo.numerator) / Decimal(qlo.denominator) <= ref1 * (1 + Decimal(10) ** -70)
+            assert Decimal(qhi.numerator) / Decimal(qhi.denominator) >= ref1 * (1 - Decimal(10) ** -70)
+        assert (qhi - qlo) / qlo < Fraction(1, 2 ** 110)
+
+
+@pytest.mark.parametrize("rho", [Fraction(1, 3), Fraction(0), Fraction(1), Fraction(2, 7)])
+def test_bernoulli_from_bounds_including_the_slow_path(rho):
+    # Bounds deliberately loose at the fast precision (width 2**-8) so about 1 % of the draws take
+    # the word-by-word path; the frequency must still be exactly rho [BINOM].
+    def bounds(bits):
+        w = Fraction(1, 2 ** max(bits - 120, 1))
+        return max(Fraction(0), rho - w), min(Fraction(1), rho + w)
+
+    n = 200_000
+    x = smp.bernoulli_bounded(_stream(int(rho * 97)), bounds, n)
+    if rho in (0, 1):
+        assert x.all() if rho == 1 else not x.any()
+    else:
+        assert st.binomtest(int(x.sum()), n, float(rho)).pvalue > SEEDED_LEVEL

@@ -234,3 +234,88 @@ def test_out_of_memory_is_named_as_such_not_as_bad_input():
     assert isinstance(err, UsageError) and "--memory-limit" in str(err)
     err = sp._input_error("edges.csv: cannot read edge file", RuntimeError("[PATH_NOT_FOUND] no such file"), False)
     assert isinstance(err, InputError) and str(err).startswith("edges.csv: cannot read edge file: ")
+
+
+# ------------------------------------------------------------------ one set of ingest rules (issue 16)
+
+_PEOPLE = "node,area\n" + "".join(f"p{i},a{i % 3}\n" for i in range(8))
+_EDGES = "source,target,minutes\n" + "".join(f"p{i},p{(i + 1) % 8},{i}\n" for i in range(8))
+
+# (name, edge file, person file, load options): each refused by both engines
+_REFUSED = [
+    ("edge_missing_id", _EDGES.replace("p2,p3", "NaN,p3"), _PEOPLE, {}),
+    ("edge_empty_id", _EDGES.replace("p5,p6", " ,p6"), _PEOPLE, {}),
+    ("edge_padded_null_id", _EDGES.replace("p4,p5", "p4, Null "), _PEOPLE, {}),
+    ("edge_nbsp_nan_is_an_unknown_id", _EDGES.replace("p3,p4", "\u00a0nan,p4"), _PEOPLE, {}),
+    ("unknown_people", _EDGES.replace("p6,p7", "p6,p77"), _PEOPLE, {}),
+    ("bad_weight_text", _EDGES.replace("p3,p4,3", "p3,p4,three"), _PEOPLE, {"weight": "minutes"}),
+    ("bad_weight_negative", _EDGES.replace("p3,p4,3", "p3,p4,-3"), _PEOPLE, {"weight": "minutes"}),
+    ("bad_weight_nan", _EDGES.replace("p1,p2,1", "p1,p2,NaN"), _PEOPLE, {"weight": "minutes"}),
+    ("edge_missing_column_named", _EDGES.replace("target", "dest"), _PEOPLE, {}),
+    ("edge_headerless", _EDGES.split("\n", 1)[1], _PEOPLE, {}),
+    ("edge_no_rows", "source,target\n", _PEOPLE, {}),
+    ("only_self_loops", "source,target\np1,p1\np2,p2\n", _PEOPLE, {}),
+    ("all_unknown_dropped", "source,target\nq1,q2\n", _PEOPLE, {"drop_unknown": True}),
+    ("person_missing_id", _EDGES, _PEOPLE.replace("p4,a1", "null,a1"), {}),
+    ("person_empty_attribute", _EDGES, _PEOPLE.replace("p4,a1", "p4,"), {}),
+    ("person_conflicting_repeat", _EDGES, _PEOPLE + "p5,a0\np2,a0\np5,a2\n", {}),
+    ("person_missing_attribute", _EDGES, _PEOPLE, {"attributes": ["zone"]}),
+    ("person_no_rows", _EDGES, "node,area\n", {}),
+]
+
+
+@pytest.mark.parametrize("name, edges, people, options", _REFUSED, ids=[c[0] for c in _REFUSED])
+def test_both_engines_refuse_with_the_same_message(spark, tmp_path, name, edges, people, options):
+    (tmp_path / "e.csv").write_text(edges)
+    (tmp_path / "p.csv").write_text(people)
+    options = {"attributes": ["area"], **options}
+    sp, dd = _engines(spark)
+    msgs = []
+    for eng in (sp, dd):
+        with pytest.raises(InputError) as info:
+            load_network(tmp_path / "e.csv", tmp_path / "p.csv", engine=eng, **options)
+        msgs.append(str(info.value))
+    assert msgs[0] == msgs[1]
+    assert "data row" in msgs[0] or "no rows" in msgs[0] or "column" in msgs[0] or "no contacts" in msgs[0]
+
+
+@pytest.mark.parametrize("kind", ["float", "bool", "decimal"])
+def test_both_engines_refuse_the_same_parquet_id_types(spark, tmp_path, kind):
+    ids = {"float": pa.array([1.0, 2.0]), "bool": pa.array([True, False]),
+           "decimal": pa.array([1, 2], pa.decimal128(38, 0))}[kind]
+    pq.write_table(pa.table({"source": ids, "target": ids}), tmp_path / "e.parquet")
+    (tmp_path / "p.csv").write_text(_PEOPLE)
+    sp, dd = _engines(spark)
+    msgs = []
+    for eng in (sp, dd):
+        with pytest.raises(InputError) as info:
+            load_network(tmp_path / "e.parquet", tmp_path / "p.csv", engine=eng)
+        msgs.append(str(info.value))
+    assert msgs[0] == msgs[1] and "ids must be integers or text" in msgs[0]
+
+
+def test_repeated_people_and_unsigned_64_bit_ids_give_the_same_network(spark, tmp_path):
+    """Identical repeated person rows take the collapsing path; uint64 ids above 2**63 (which Spark
+    reads as decimal(20,0)) are integers in both engines."""
+    rng = np.random.default_rng(9)
+    n = 60
+    ids = pa.array([2 ** 64 - 1 - 7 * i for i in range(n)], pa.uint64())
+    people = pa.table({"node": ids, "area": [f"a{x}" for x in rng.integers(0, 3, n)]})
+    people = pa.concat_tables([people, people.slice(5, 10)])  # ten identical repeats
+    u, v = rng.integers(0, n, 300), rng.integers(0, n, 300)
+    edges = pa.table({"source": ids.take(pa.array(u)), "target": ids.take(pa.array(v))})
+    pq.write_table(people, tmp_path / "p.parquet")
+    pq.write_table(edges, tmp_path / "e.parquet")
+    policy = {"privacy": {"unit": "edge", "epsilon": 1.0},
+              "grouping": {"method": "attributes", "attributes": ["area"], "min_size": 2}}
+    n_s, n_d, _ = _compare(spark, tmp_path / "e.parquet", tmp_path / "p.parquet", policy, edge_list=True)
+    assert n_s.report.duplicate_person_rows_collapsed == 10 and n_s.n_people == n
+    assert n_s.ids.to_pylist() == n_d.ids.to_pylist() == [str(x) for x in ids.to_pylist()]
+    assert n_s.report.self_loops_dropped == int((u == v).sum())
+
+
+def test_a_live_spark_engine_is_an_engine(spark):
+    from aggpub.engines import Engine
+
+    sp, dd = _engines(spark)
+    assert isinstance(sp, Engine) and isinstance(dd, Engine)

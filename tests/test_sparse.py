@@ -171,18 +171,22 @@ def _forget_zero_cells(monkeypatch):
     monkeypatch.setattr(sparse, "_zero_cell_ranks", lambda n, p, src: np.empty(0, dtype=np.int64))
 
 
-def _wrong_tail(monkeypatch):  # zero cells' values from a tail twice as steep
-    real = sparse._geometric_chunk
-    monkeypatch.setattr(sparse, "_geometric_chunk", lambda la, k, src: real(2 * la, k, src))
+def _wrong_tail(monkeypatch):  # zero cells' values from a tail twice as steep (rate s/2^k doubled)
+    real = sparse._zero_cell_values
+    monkeypatch.setattr(sparse, "_zero_cell_values",
+                        lambda theta, rate, n, src: real(theta, (2 * rate[0], rate[1]), n, src))
 
 
 def _tail_without_normaliser(monkeypatch):  # P(Z >= t) taken as a^t, forgetting 1/(1+a)
-    monkeypatch.setattr(sparse, "pass_probability", lambda t, la: math.exp(t * la))
+    def bounds(theta, s, k, bits):
+        return sparse.exp_neg_bounds(theta * sparse.Fraction(s, 1 << k), bits)
+
+    monkeypatch.setattr(sparse, "_pass_probability_bounds", bounds)
 
 
 def _threshold_off_by_one(monkeypatch):  # zero cells start at theta + 1
-    real = sparse._geometric_chunk
-    monkeypatch.setattr(sparse, "_geometric_chunk", lambda la, k, src: real(la, k, src) + 1)
+    real = sparse._zero_cell_values
+    monkeypatch.setattr(sparse, "_zero_cell_values", lambda theta, rate, n, src: real(theta, rate, n, src) + 1)
 
 
 @pytest.mark.parametrize("variant", [_forget_zero_cells, _wrong_tail, _tail_without_normaliser,
@@ -241,6 +245,29 @@ def test_wrong_count_is_caught_at_scale(big_table, monkeypatch):
     law = st.binom(n_cells - len(nz), math.exp(theta * ALPHA_LOG) / (1 + math.exp(ALPHA_LOG)))
     z = (np.mean(ks) - law.mean()) / (law.std() / math.sqrt(len(ks)))
     assert z > 10
+
+
+def test_exact_selection_bounds_and_candidate_rate():
+    """The rigorous bounds on p = a^theta / (1 + a) [GRS09] bracket an independent high-precision value
+    (Python's decimal, whose exp is correctly rounded); the candidate probability 1 - exp(-lambda) of the
+    exact skip walk is at least p and only slightly above it (the thinning keeps almost every candidate)."""
+    from decimal import Decimal, localcontext
+
+    for eps, sens, theta in ((1.0, 1.0, 2), (0.1, 1.0, 40), (0.1, 100.0, 3000), (3.0, 1.0, 9), (1.0, 1.0, 400)):
+        rate = GeometricMechanism(eps, sens).rate
+        s, k = rate.numerator, rate.denominator.bit_length() - 1
+        lo, hi = sparse._pass_probability_bounds(theta, s, k, 100)
+        with localcontext() as ctx:
+            ctx.prec = 60
+            g = Decimal(s) / Decimal(2 ** k)
+            ref = (-theta * g).exp() / (1 + (-g).exp())
+            assert Decimal(lo.numerator) / Decimal(lo.denominator) <= ref * (1 + Decimal(10) ** -50)
+            assert Decimal(hi.numerator) / Decimal(hi.denominator) >= ref * (1 - Decimal(10) ** -50)
+        lam_s, lam_k = sparse._candidate_rate(theta, s, k, sparse._pass_probability_bounds)
+        q_lo, _ = sparse.one_minus_exp_neg_bounds(sparse.Fraction(lam_s, 2 ** lam_k), 100)
+        assert q_lo >= hi
+        if float(hi) > 1e-15:  # above the smallest candidate rate 2**-54
+            assert float(q_lo / hi) < 1 + 1e-6
 
 
 def test_flat_to_pair_inverts_cell_index():

@@ -363,3 +363,30 @@ def test_help_shows_the_options_and_exit_codes(capsys):
     for option in ("--nodes", "--attributes", "--unit", "--codebook", "--max-contacts", "--out", "--overwrite"):
         assert option in out
     assert "exit codes:" in out and "3 input error" in out and "7 output error" in out
+
+
+def test_edges_header_names_the_edge_columns_and_a_semicolon_file_is_explained(tmp_path, capsys):
+    """An agency export as a steward would bring it (string ids, extra columns, other column names): the
+    starting policy names the edge file's id columns from its header alone, and releases as written."""
+    from aggpub.cli import main
+
+    people = tmp_path / "clients.csv"
+    people.write_text("ClientID,Area,AgeGroup,Phone\n" + "".join(
+        f"CL-{i:04d},{['North', 'South'][i % 2]},{['young', 'old'][i // 2 % 2]},+45 {i}\n" for i in range(200)),
+        encoding="utf-8")
+    edges = tmp_path / "encounters.csv"
+    edges.write_text("person_a,person_b,minutes,place\n" + "".join(
+        f"CL-{i:04d},CL-{(i * 7 + 3) % 200:04d},{i % 60 + 1},home\n" for i in range(200) if (i * 7 + 3) % 200 != i),
+        encoding="utf-8")
+    out = tmp_path / "policy.toml"
+    assert main(["draft-policy", "--nodes", str(people), "--node-column", "ClientID", "--attributes", "Area,AgeGroup",
+                 "--edges", str(edges), "--out", str(out)]) == 0
+    text = out.read_text(encoding="utf-8")
+    assert 'source = "person_a"' in text and 'target = "person_b"' in text
+    assert main(["release", "--policy", str(out), "--edges", str(edges), "--nodes", str(people), "--out",
+                 str(tmp_path / "release"), "--quiet"]) == 0
+    semi = tmp_path / "semicolon.csv"
+    semi.write_text("ClientID;Area\nCL-1;North\n", encoding="utf-8")
+    assert main(["draft-policy", "--nodes", str(semi), "--node-column", "ClientID", "--attributes", "Area",
+                 "--out", str(tmp_path / "p2.toml")]) == 3
+    assert "';'-delimited" in capsys.readouterr().err

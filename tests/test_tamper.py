@@ -213,7 +213,7 @@ def test_check_command_names_the_file(bundle, capsys):
     (bundle / "superedges.parquet").write_bytes(bytes(data))
     assert main(["check", str(bundle)]) == 1
     out = capsys.readouterr().out
-    assert "FAIL superedges.parquet" in out and "check failed" in out
+    assert "does not hold: superedges.parquet" in out and "check failed" in out
 
 
 def test_check_pristine_copy_passes(bundle, capsys):

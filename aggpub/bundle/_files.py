@@ -31,22 +31,29 @@ def manifest_digest(manifest: dict) -> str:
     return hashlib.sha256(canonical_json(body)).hexdigest()
 
 
-def check_outside_inputs(target: Path, inputs) -> None:
-    """Refuse an output folder inside (or equal to) the folder of any input file.
+def check_outside_inputs(target: Path, inputs, what: str = "output") -> None:
+    """Refuse an output folder that would swallow an input, or that is an input's own folder.
+
+    Writing a new bundle folder beside its inputs (``contacts.csv``, ``people.csv``,
+    ``release-2026/``) is the common layout and is allowed. Refused: an input file
+    inside the output folder (it would be published with the bundle, or deleted by
+    ``--overwrite``), and the output being the very folder that holds an input.
 
     Raises
     ------
     OutputError
-        ``target`` lies in an input file's folder.
     """
     out = Path(target).absolute().resolve()
     for inp in inputs:
         if inp is None or not isinstance(inp, (str, os.PathLike)):
             continue
-        folder = Path(inp).absolute().resolve().parent
-        if out == folder or folder in out.parents:
-            raise OutputError(f"{Path(target)}: output would land inside the folder of input {Path(inp)}; "
-                              "choose a folder outside it (or pass --allow-inside-input)")
+        path = Path(inp).absolute().resolve()
+        if out == path.parent:
+            raise OutputError(f"{Path(target)}: the {what} folder would be the folder of input {Path(inp)}; "
+                              "choose a new folder (beside the inputs is fine)")
+        if out in path.parents:
+            raise OutputError(f"{Path(target)}: input {Path(inp)} lies inside the {what} folder; it would be "
+                              "published with it or deleted by --overwrite. Choose a folder that holds no input")
 
 
 def _is_bundle(target: Path) -> bool:

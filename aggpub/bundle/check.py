@@ -70,6 +70,26 @@ def check_bundle(path) -> CheckResult:
     Returns
     -------
     CheckResult
+
+    Examples
+    --------
+    >>> import networkx as nx, pyarrow as pa
+    >>> import aggpub
+    >>> G = nx.karate_club_graph()  # Zachary's karate club, as networkx ships it
+    >>> edges = pa.table({"source": [str(u) for u, v in G.edges()], "target": [str(v) for u, v in G.edges()]})
+    >>> people = pa.table({"node": [str(n) for n in G], "club": [G.nodes[n]["club"] for n in G]})
+    >>> policy = {"privacy": {"unit": "edge", "epsilon": 1.0},
+    ...           "grouping": {"method": "attributes", "attributes": ["club"], "min_size": 5}}
+    >>> import pathlib, tempfile
+    >>> path = aggpub.publish(aggpub.release_tables(edges, people, policy, seed=1),
+    ...                       pathlib.Path(tempfile.mkdtemp()) / "bundle")
+    >>> result = aggpub.check_bundle(path)
+    >>> result.ok, result.problems
+    (True, [])
+    >>> (path / "superedges.parquet").write_bytes(b"edited")  # a changed file is found
+    6
+    >>> aggpub.check_bundle(path).ok
+    False
     """
     path = Path(path)
     res = CheckResult(path=path)
@@ -159,7 +179,21 @@ def check_bundle(path) -> CheckResult:
     if manifest.get("seeded"):
         res.warnings.append("seeded bundle: the noise came from a fixed seed, so this release is NOT private "
                             "(for tests only; never give it to researchers)")
+    _note_accounting(manifest, res)
     return res
+
+
+def _note_accounting(manifest, res) -> None:
+    """Say how the release was accounted: charged to a lifetime ledger, or not (and why)."""
+    acc = manifest.get("accounting")
+    if acc is None:  # bundles written before the manifest said it
+        acc = ({"charged": True, "dataset": manifest["ledger"].get("dataset")} if manifest.get("ledger")
+               else {"charged": False, "why": "this bundle's manifest does not say"})
+    if acc.get("charged"):
+        res.checked.append(f"charged to the lifetime ledger of dataset '{acc.get('dataset')}'")
+    else:
+        res.warnings.append(f"not charged to a lifetime ledger ({acc.get('why')}): releases of the same people "
+                            "add up, and nothing here keeps count of this one")
 
 
 def _check_invariants(manifest, tables, res):

@@ -6,7 +6,7 @@ grouping's public description and the row counts of the released tables.
 
 from __future__ import annotations
 
-__all__ = ["build_manifest"]
+__all__ = ["build_manifest", "public_policy"]
 
 from datetime import datetime, timezone
 
@@ -14,8 +14,27 @@ from .._version import BUNDLE_FORMAT, __version__
 from .datacard import CAUTIONS
 
 
+def public_policy(policy) -> dict:
+    """The policy as applied, as the manifest records it: no internal file path.
+
+    The ledger appears as its dataset id and lifetime cap (its file stays with the
+    steward); a given person -> supernode map as its file name only; the policy
+    file's own location not at all.
+    """
+    from pathlib import Path
+
+    from ..policy import policy_to_dict
+
+    d = policy_to_dict(policy)
+    if d.get("ledger"):
+        d["ledger"] = {"dataset": d["ledger"]["dataset"], "lifetime_epsilon": d["ledger"]["lifetime_epsilon"]}
+    if d.get("grouping", {}).get("map_path"):
+        d["grouping"]["map_path"] = Path(d["grouping"]["map_path"]).name
+    return d
+
+
 def build_manifest(policy, grouping, budget, source, tables: dict, *, sizes_exact: bool, extra: dict,
-                   ledger_charge=None) -> dict:
+                   ledger_charge=None, uncharged: str = "") -> dict:
     """The manifest dict of a release (without ``files`` and ``manifest_sha256``, added when written).
 
     Parameters
@@ -34,16 +53,16 @@ def build_manifest(policy, grouping, budget, source, tables: dict, *, sizes_exac
         Fields added by a statistic (the sparse release's threshold).
     ledger_charge : Charge, optional
         The lifetime ledger's charge of this release.
+    uncharged : str
+        Why no ledger was charged (when ``ledger_charge`` is ``None``).
     """
-    from ..policy import policy_to_dict
-
     unit = policy.privacy.unit
     manifest = {
         "format": BUNDLE_FORMAT,
         "tool_version": __version__,
         "created_utc": datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ"),
         "title": policy.title,
-        "policy": policy_to_dict(policy),
+        "policy": public_policy(policy),
         "privacy_unit": unit,
         "max_contacts": policy.privacy.max_contacts,
         "epsilon_total": policy.privacy.epsilon,
@@ -66,4 +85,7 @@ def build_manifest(policy, grouping, budget, source, tables: dict, *, sizes_exac
         manifest["warning"] = "seeded: reproducible noise, NOT private; for tests only"
     if ledger_charge is not None:
         manifest["ledger"] = ledger_charge.as_dict()
+        manifest["accounting"] = {"charged": True, "dataset": ledger_charge.dataset}
+    else:
+        manifest["accounting"] = {"charged": False, "why": uncharged}
     return manifest

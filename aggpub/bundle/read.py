@@ -58,6 +58,24 @@ def read_bundle(path) -> Bundle:
     Returns
     -------
     Bundle
+
+    Examples
+    --------
+    >>> import networkx as nx, pyarrow as pa
+    >>> import aggpub
+    >>> G = nx.karate_club_graph()  # Zachary's karate club, as networkx ships it
+    >>> edges = pa.table({"source": [str(u) for u, v in G.edges()], "target": [str(v) for u, v in G.edges()]})
+    >>> people = pa.table({"node": [str(n) for n in G], "club": [G.nodes[n]["club"] for n in G]})
+    >>> policy = {"privacy": {"unit": "edge", "epsilon": 1.0},
+    ...           "grouping": {"method": "attributes", "attributes": ["club"], "min_size": 5}}
+    >>> import pathlib, tempfile
+    >>> path = aggpub.publish(aggpub.release_tables(edges, people, policy, seed=1),
+    ...                       pathlib.Path(tempfile.mkdtemp()) / "bundle")
+    >>> bundle = aggpub.read_bundle(path)
+    >>> bundle.supernodes.column_names
+    ['supernode', 'size', 'club']
+    >>> bundle.manifest["privacy_unit"], bundle.manifest["epsilon_total"], bundle.seeded
+    ('edge', 1.0, True)
     """
     path = Path(path)
     if not (path / MANIFEST).is_file():

@@ -1,11 +1,15 @@
 """The embedded DuckDB counting engine (the default).
 
-All counting over edges happens here, in SQL: ingest (id mapping, self-loops,
-duplicates), superedge counts, degrees, degree histograms, weight totals and
-contact profiles. No Python loop touches an edge.
+All counting over edges happens here, in SQL (or numpy over Arrow batches):
+the edge mapping that ingest asks for (ids to dense ids, self-loops, duplicates),
+superedge counts, degrees, degree histograms, weight totals and contact
+profiles. No Python loop touches an edge. What is accepted and every message
+are :mod:`aggpub.ingest`'s; this module only reads and counts.
 """
 
 from __future__ import annotations
+
+__all__ = ["DuckDBEngine", "default_memory_limit", "fetch_arrow", "quote_ident", "quote_literal"]
 
 import os
 import re
@@ -16,8 +20,10 @@ import numpy as np
 import pyarrow as pa
 
 from ..errors import InputError
-from ..ingest import IngestReport, Network, csv_header, file_format
 from ..progress import LongStep
+from .common import degree_histograms_from_degrees
+from .interface import (INTEGER, OTHER, REAL, TEXT, ColumnType, EdgeColumns, EdgeCounts, PeopleColumns,
+                        RowCondition, Source)
 
 MISSING_ID = -2
 UNKNOWN_ID = -1
@@ -96,46 +102,35 @@ def _clean_duckdb_message(exc: Exception, debug: bool) -> str:
     return first + (f" (near line {line.group(1)})" if line and not where else "")
 
 
-#: DuckDB types accepted for id columns: integers of any width, or text
-_ID_TYPE = re.compile(r"^(U?(TINYINT|SMALLINT|INTEGER|BIGINT|HUGEINT)|VARCHAR)$")
+#: DuckDB types of each column kind (see :class:`ColumnType`)
 _INT_TYPE = re.compile(r"^U?(TINYINT|SMALLINT|INTEGER|BIGINT|HUGEINT)$")
-_NUMERIC_TYPE = re.compile(r"^(U?(TINYINT|SMALLINT|INTEGER|BIGINT|HUGEINT)|FLOAT|DOUBLE|REAL|DECIMAL.*|VARCHAR)$")
+_REAL_TYPE = re.compile(r"^(FLOAT|DOUBLE|REAL|DECIMAL.*)$")
 
 
-def _missing_id_sql(expr: str) -> str:
-    """SQL true when an id (as text) is empty or spells a missing value (see ``MISSING_ID_SPELLINGS``)."""
-    from ..ingest import MISSING_ID_SPELLINGS
+def _column_type(name: str) -> ColumnType:
+    """The kind of a DuckDB type: integers of any width, text, floating point or decimal, other."""
+    upper = name.upper()
+    if _INT_TYPE.match(upper):
+        return ColumnType(INTEGER, name)
+    if upper == "VARCHAR":
+        return ColumnType(TEXT, name)
+    if _REAL_TYPE.match(upper):
+        return ColumnType(REAL, name)
+    return ColumnType(OTHER, name)
 
-    spellings = ", ".join(quote_literal(x) for x in MISSING_ID_SPELLINGS)
-    return f"({expr} IS NULL OR lower(trim({expr})) IN ({spellings}))"
 
+def _missing_id_sql(expr: str, spellings) -> str:
+    """SQL true when an id (as text) is null, or empty or one of ``spellings`` after trimming spaces, any case.
 
-def _missing_column(file_name, col, cols, expected, what, debug) -> InputError:
-    """Error for a missing column; names from the header are suggested only when it is a real header.
-
-    A file without a header has data on its first line, so its "column names" are
-    private values: they are shown only with ``debug`` or when at least one
-    expected column is present (the first line is then a header).
+    Only U+0020 is trimmed (DuckDB's one-argument trim() also takes other Unicode spaces).
     """
-    from ..errors import closest_name
+    listed = ", ".join(quote_literal(x) for x in spellings)
+    return f"({expr} IS NULL OR lower(trim({expr}, ' ')) IN ({listed}))"
 
-    import difflib
 
-    cols = list(cols)
-    is_header = debug or any(c in cols for c in expected)
-    if not is_header:  # a near-miss of the asked name without digits (ids have them) reads as a header
-        near = difflib.get_close_matches(str(col), [str(c) for c in cols], n=1, cutoff=0.75)
-        is_header = bool(near) and not any(ch.isdigit() for ch in near[0])
-    hint = closest_name(col, cols) if is_header else ""
-    if not is_header:
-        if len(cols) == 1 and any(d in cols[0] for d in (";", "\t", "|", ",")):
-            delim = next(d for d in (";", "\t", "|", ",") if d in cols[0])
-            hint = (f" (the header is a single field containing {delim!r}: the file looks {delim!r}-delimited; "
-                    f".csv files must be comma-separated and .tsv files tab-separated)")
-        else:
-            hint = f" (none of the {len(cols)} header fields is an expected column: is the first line a header?)"
-    return InputError(f"{file_name}: no {what} '{col}'{hint}")
-
+def _unreadable(source: Source, exc: Exception) -> InputError:
+    """The error for a failed read of ``source`` (the reason names no private value unless debugging)."""
+    return InputError(f"{source.unreadable}: {_clean_duckdb_message(exc, source.debug)}")
 
 class DuckDBEngine:
     """Counting in an embedded DuckDB database.
@@ -193,7 +188,8 @@ class DuckDBEngine:
         # DuckDB tracks a statement's progress only with its progress bar on; nothing is printed
         self.con.execute("SET enable_progress_bar=true")
         self.con.execute("SET enable_progress_bar_print=false")
-        self._weighted = False
+        self._staged = None
+        self._degrees = None
 
     def _long(self, what: str) -> LongStep:
         """Reports the progress of the statement(s) run inside it (see :class:`LongStep`)."""
@@ -203,146 +199,97 @@ class DuckDBEngine:
 
         return LongStep(self.progress, what, poll)
 
-    # ------------------------------------------------------------------ ingest
+    # ------------------------------------------------------------------ ingest (driven by aggpub.ingest)
 
-    def _relation_sql(self, src, what, all_varchar):
-        """SQL for a scan of a file (or a registered Arrow table)."""
-        if isinstance(src, pa.Table):
-            view = f"__{what}_arrow"
-            self.con.register(view, src)
-            return view
-        fmt = file_format(src)
-        path = quote_literal(str(src))
-        if fmt == "parquet":
+    def _relation_sql(self, source: Source) -> str:
+        """SQL for a scan of ``source`` (an Arrow table is registered as a view)."""
+        if source.format == "arrow":
+            self.con.register("__input_arrow", source.table)
+            return "__input_arrow"
+        path = quote_literal(source.path)
+        if source.format == "parquet":
             return f"read_parquet({path})"
-        # CSV/TSV: the header is parsed here (a UTF-8 byte-order mark is accepted) and every column is
-        # read as text without type sniffing, so ids keep their exact spelling ("007" stays "007",
-        # ids beyond 64 bits stay exact) and the parser reports ragged rows by line number.
-        names = csv_header(src, "\t" if fmt == "tsv" else ",")
-        delim = "\\t" if fmt == "tsv" else ","
-        columns = "{" + ", ".join(f"{quote_literal(n)}: 'VARCHAR'" for n in names) + "}"
+        # CSV/TSV: the header was parsed by ingest and every column is read as text without type
+        # sniffing, so ids keep their exact spelling ("007" stays "007", ids beyond 64 bits stay exact)
+        # and the parser reports ragged rows by line number
+        delim = "\\t" if source.delimiter == "\t" else ","
+        columns = "{" + ", ".join(f"{quote_literal(n)}: 'VARCHAR'" for n in source.header) + "}"
         opts = f"header=true, delim='{delim}', quote='\"', escape='\"', auto_detect=false, " \
                f"columns={columns}, strict_mode=true"
         return f"read_csv({path}, {opts})"
 
-    def _columns(self, rel_sql, src, what, debug):
+    def _forget_input(self):
+        """Drop the view of an Arrow input (and so the engine's reference to the caller's table)."""
         try:
-            desc = self.con.execute(f"DESCRIBE SELECT * FROM {rel_sql}").fetchall()
-        except duckdb.Error as exc:
-            raise InputError(f"{src if not isinstance(src, pa.Table) else what + ' table'}: cannot read "
-                             f"{what} file: {_clean_duckdb_message(exc, debug)}") from None
-        return {row[0]: row[1] for row in desc}
+            self.con.unregister("__input_arrow")
+        except duckdb.Error:  # pragma: no cover - nothing registered
+            pass
 
-    def load(self, edges_src, people_src, *, source, target, node, weight, drop_unknown, attributes,
-             debug=False) -> Network:
-        edge_name = "edge table" if isinstance(edges_src, pa.Table) else str(edges_src)
-        people_name = "person table" if isinstance(people_src, pa.Table) else str(people_src)
-
-        # ---- people: into Arrow, ids deduplicated, dense index = row order
-        p_sql = self._relation_sql(people_src, "people", all_varchar=True)
-        p_cols = self._columns(p_sql, people_src, "person", debug)
-        expected = [node] + list(attributes or ())
-        if node not in p_cols:
-            raise _missing_column(people_name, node, p_cols, expected, "id column", debug)
-        if not _ID_TYPE.match(str(p_cols[node]).upper()):
-            raise InputError(f"{people_name}: id column '{node}' has type {p_cols[node]}; ids must be "
-                             "integers or text")
-        attr_cols = [c for c in p_cols if c != node] if attributes is None else list(attributes)
-        for a in attr_cols:
-            if a not in p_cols:
-                raise _missing_column(people_name, a, p_cols, expected, "attribute column", debug)
-        # integer ids (Parquet, Arrow) also keep their native value: the edge mapping then joins on
-        # integers when the edge ids are integers too, which gives the same pairs as comparing the text
-        # (an integer's decimal text is unique) at a fraction of the cost
-        int_ids = _INT_TYPE.match(str(p_cols[node]).upper()) is not None
-        nid_sql = ", __nid" if int_ids else ""
-        sel = ", ".join([f"CAST({quote_ident(node)} AS VARCHAR) AS id"] +
-                        ([f"{quote_ident(node)} AS __nid"] if int_ids else []) +
-                        [f"CAST({quote_ident(a)} AS VARCHAR) AS {quote_ident(a)}" for a in attr_cols])
+    def describe(self, source: Source) -> dict:
+        """The columns of ``source`` and their types (see :meth:`aggpub.engines.Engine.describe`)."""
         try:
-            raw = fetch_arrow(self.con.execute(f"SELECT {sel} FROM {p_sql}"))
+            desc = self.con.execute(f"DESCRIBE SELECT * FROM {self._relation_sql(source)}").fetchall()
         except duckdb.Error as exc:
-            raise InputError(f"{people_name}: cannot read person file: {_clean_duckdb_message(exc, debug)}") from None
-        person_rows = raw.num_rows
-        if person_rows == 0:
-            raise InputError(f"{people_name}: the person table has no rows")
-        raw = raw.append_column("__row", pa.array(np.arange(person_rows, dtype=np.int64)))
-        self.con.register("__people_raw", raw)
-        bad = self.con.execute(f"SELECT min(__row), count(*) FROM __people_raw WHERE {_missing_id_sql('id')}"
-                               ).fetchall()[0]
-        if bad[0] is not None:
-            raise InputError(f"{people_name}: {bad[1]:,} row(s) have an empty or missing id (NaN, NA, null) "
-                             f"in column '{node}' (first at data row {bad[0] + 1})")
-        for a in attr_cols:
-            bad = self.con.execute(f"SELECT min(__row) FROM __people_raw WHERE {quote_ident(a)} IS NULL").fetchall()[0][0]
-            if bad is not None:
-                raise InputError(f"{people_name}: column '{a}' is empty in data row {bad + 1}")
-        attr_sql = "".join(", " + quote_ident(a) for a in attr_cols)
-        n_ids = self.con.execute("SELECT count(DISTINCT id) FROM __people_raw").fetchall()[0][0]
-        if n_ids == person_rows:  # no repeated id: the rows are the people, in file order (no sort needed)
-            distinct = raw
-        else:
-            distinct = fetch_arrow(self.con.execute(
-                f"SELECT id{nid_sql}{attr_sql}, min(__row) AS first FROM __people_raw GROUP BY ALL ORDER BY first"))
-        if distinct.num_rows != n_ids:
-            conflicted = distinct.num_rows - n_ids
-            tup = "row(" + (", ".join("p." + quote_ident(c) for c in attr_cols) or "p.id") + ")"
-            row, other = self.con.execute(  # error path: the first repeated id and its first differing row
-                f"WITH k AS (SELECT id, min(__row) AS first FROM __people_raw GROUP BY id "
-                f"           HAVING count(DISTINCT {tup.replace('p.', '')}) > 1 ORDER BY first LIMIT 1), "
-                f"     f AS (SELECT p.id, {tup} AS t FROM __people_raw p JOIN k ON p.__row = k.first) "
-                f"SELECT min(k.first), min(p.__row) FROM __people_raw p JOIN k ON p.id = k.id "
-                f"JOIN f ON f.id = p.id WHERE {tup} IS DISTINCT FROM f.t"
-            ).fetchall()[0]
-            raise InputError(f"{people_name}: {conflicted} person id(s) appear more than once with conflicting "
-                             f"attributes (first at data row {int(row) + 1}, again with other attributes at "
-                             f"data row {int(other) + 1})")
-        self.con.unregister("__people_raw")
-        n_people = distinct.num_rows
-        ids = distinct.column("id")
-        people = distinct.select(attr_cols)
-        id_table = pa.table({"id": ids, "idx": pa.array(np.arange(n_people, dtype=np.int32))})
-        if int_ids:
-            id_table = id_table.append_column("nid", distinct.column("__nid"))
+            raise _unreadable(source, exc) from None
+        return {row[0]: _column_type(str(row[1])) for row in desc}
 
-        # ---- edges: mapped to dense ids, canonical u < v, collapsed, all in one scan
-        e_sql = self._relation_sql(edges_src, "edges", all_varchar=False)
-        e_cols = self._columns(e_sql, edges_src, "edge", debug)
-        expected = [source, target] + ([weight] if weight else [])
-        for c in expected:
-            if c not in e_cols:
-                raise _missing_column(edge_name, c, e_cols, expected, "column", debug)
-        for c in (source, target):
-            if not _ID_TYPE.match(str(e_cols[c]).upper()):
-                raise InputError(f"{edge_name}: id column '{c}' has type {e_cols[c]}; ids must be "
-                                 "integers or text")
-        if weight and not _NUMERIC_TYPE.match(str(e_cols[weight]).upper()):
-            raise InputError(f"{edge_name}: weight column '{weight}' is not numeric ({e_cols[weight]})")
-        self.con.register("__ids", id_table)
-        # text weights (CSV) are parsed here; an unparseable one becomes NULL and is refused below
-        # (trim() keeps DuckDB from pushing the cast into the CSV reader, where it turns into a strict
-        # cast that fails on the first bad value with the value in its message)
-        w_expr = "NULL::DOUBLE"
-        if weight:
-            w_expr = (f"TRY_CAST(trim({quote_ident(weight)}) AS DOUBLE)" if str(e_cols[weight]).upper() == "VARCHAR"
-                      else f"CAST({quote_ident(weight)} AS DOUBLE)")
-        missing_a, missing_b = _missing_id_sql("e.a"), _missing_id_sql("e.b")
-        # people ids are VARCHAR; compare edge ids as text so CSV and Parquet inputs mix,
+    def read_people(self, source: Source, id_column: str, attributes) -> PeopleColumns:
+        """The id and attribute columns as Arrow, in input order (see :meth:`aggpub.engines.Engine.read_people`).
+
+        Integer ids also come back as DuckDB integers: the edge mapping then joins on
+        integers when the edge ids are integers too, which gives the same pairs as
+        comparing the text at a fraction of the cost.
+        """
+        attributes = list(attributes)
+        int_ids = self.describe(source)[id_column].kind == INTEGER
+        exprs = ([f"CAST({quote_ident(id_column)} AS VARCHAR)"] + ([quote_ident(id_column)] if int_ids else [])
+                 + [f"CAST({quote_ident(a)} AS VARCHAR)" for a in attributes])
+        select = ", ".join(f"{e} AS __c{i}" for i, e in enumerate(exprs))  # no clash with any input name
+        self.con.execute("SET preserve_insertion_order=true")  # rows in file order: row numbers, dense ids
+        try:
+            raw = fetch_arrow(self.con.execute(f"SELECT {select} FROM {self._relation_sql(source)}"))
+        except duckdb.Error as exc:
+            raise _unreadable(source, exc) from None
+        finally:
+            self.con.execute("SET preserve_insertion_order=false")
+            self._forget_input()
+        first = 2 if int_ids else 1
+        attrs = pa.table([raw.column(first + i) for i in range(len(attributes))], names=attributes)
+        return PeopleColumns(ids=raw.column(0), native_ids=raw.column(1) if int_ids else None, attributes=attrs)
+
+    @staticmethod
+    def _weight_sql(columns: EdgeColumns) -> str:
+        """The weight as a DOUBLE; text weights are parsed, an unparseable one becomes NULL (a bad weight).
+
+        trim() keeps DuckDB from pushing the cast into the CSV reader, where it turns
+        into a strict cast that fails on the first bad value with the value in its message.
+        """
+        if not columns.weight:
+            return "NULL::DOUBLE"
+        if columns.weight_type.kind == TEXT:
+            return f"TRY_CAST(trim({quote_ident(columns.weight)}) AS DOUBLE)"
+        return f"CAST({quote_ident(columns.weight)} AS DOUBLE)"
+
+    def stage_edges(self, source: Source, columns: EdgeColumns, ids: pa.Table) -> EdgeCounts:
+        """Map, canonicalise and collapse the edges in one scan (see :meth:`aggpub.engines.Engine.stage_edges`)."""
+        e_sql = self._relation_sql(source)
+        self.con.register("__ids", ids)
+        spellings = columns.missing_spellings
+        missing = f"({_missing_id_sql('e.a', spellings)} OR {_missing_id_sql('e.b', spellings)})"
+        # person ids are VARCHAR; compare edge ids as text so CSV and Parquet inputs mix,
         # or as integers when both sides are integers (same pairs, much faster)
-        a_sql = f"CAST({quote_ident(source)} AS VARCHAR)"
-        b_sql = f"CAST({quote_ident(target)} AS VARCHAR)"
+        a_sql = f"CAST({quote_ident(columns.source)} AS VARCHAR)"
+        b_sql = f"CAST({quote_ident(columns.target)} AS VARCHAR)"
         id_col = "id"
-        if int_ids and all(_INT_TYPE.match(str(e_cols[c]).upper()) for c in (source, target)):
-            a_sql, b_sql, id_col = quote_ident(source), quote_ident(target), "nid"
-            missing_a, missing_b = "(e.a IS NULL)", "(e.b IS NULL)"
+        if "nid" in ids.column_names and columns.source_type.kind == columns.target_type.kind == INTEGER:
+            a_sql, b_sql, id_col = quote_ident(columns.source), quote_ident(columns.target), "nid"
+            missing = "(e.a IS NULL OR e.b IS NULL)"
         q = f"""
             CREATE OR REPLACE TEMP TABLE __mapped AS
-            WITH e AS (SELECT {a_sql} AS a, {b_sql} AS b, {w_expr} AS w
+            WITH e AS (SELECT {a_sql} AS a, {b_sql} AS b, {self._weight_sql(columns)} AS w
                        FROM {e_sql}),
-                 m AS (SELECT CASE WHEN {missing_a} OR {missing_b}
-                                   THEN {MISSING_ID} ELSE coalesce(ps.idx, {UNKNOWN_ID}) END AS s,
-                              CASE WHEN {missing_a} OR {missing_b}
-                                   THEN {MISSING_ID} ELSE coalesce(pt.idx, {UNKNOWN_ID}) END AS t,
+                 m AS (SELECT CASE WHEN {missing} THEN {MISSING_ID} ELSE coalesce(ps.idx, {UNKNOWN_ID}) END AS s,
+                              CASE WHEN {missing} THEN {MISSING_ID} ELSE coalesce(pt.idx, {UNKNOWN_ID}) END AS t,
                               e.w
                        FROM e LEFT JOIN __ids ps ON e.a = ps.{id_col} LEFT JOIN __ids pt ON e.b = pt.{id_col})
             SELECT least(s, t) AS u, greatest(s, t) AS v, count(*) AS mult, sum(w) AS w,
@@ -353,30 +300,32 @@ class DuckDBEngine:
             with self._long("reading, mapping and collapsing edges"):
                 self.con.execute(q)
         except duckdb.Error as exc:
-            self.con.unregister("__ids")
-            raise InputError(f"{edge_name}: cannot read edge file: {_clean_duckdb_message(exc, debug)}") from None
-        try:
-            self._check_edges(e_sql, edge_name, people_name, source, target, weight, w_expr, drop_unknown)
-        finally:
-            self.con.unregister("__ids")
+            self.discard_staged_edges()
+            raise _unreadable(source, exc) from None
+        self._staged = (source, columns)
         stats = self.con.execute(f"""
             SELECT coalesce(sum(mult), 0),
+                   coalesce(sum(mult) FILTER (WHERE u = {MISSING_ID}), 0),
                    coalesce(sum(mult) FILTER (WHERE u = {UNKNOWN_ID}), 0),
+                   coalesce(sum(bad_w) FILTER (WHERE u >= 0), 0),
                    coalesce(sum(mult) FILTER (WHERE u = v AND u >= 0), 0),
                    coalesce(sum(mult - 1) FILTER (WHERE u < v AND u >= 0), 0),
                    count(*) FILTER (WHERE u < v AND u >= 0)
             FROM __mapped""").fetchall()[0]
-        rows, unknown, loops, dups, n_edges = (int(x) for x in stats)
-        if n_edges == 0:
-            raise InputError(f"{edge_name}: no contacts left after dropping self-loops"
-                             + (" and unknown people" if unknown else ""))
-        self._publish_edges(weight)
-        report = IngestReport(edge_rows=rows, edges=n_edges, self_loops_dropped=loops,
-                              duplicate_rows_collapsed=dups, unknown_person_rows_dropped=unknown,
-                              person_rows=person_rows, people=n_people,
-                              duplicate_person_rows_collapsed=person_rows - n_people)
-        return Network(people=people, n_people=n_people, n_edges=n_edges, engine=self, report=report,
-                       weighted=bool(weight), ids=ids.combine_chunks() if hasattr(ids, "combine_chunks") else ids)
+        return EdgeCounts(*(int(x) for x in stats))
+
+    def first_staged_row(self, condition: RowCondition):
+        """1-based data row of the first staged edge row matching ``condition`` (error path only)."""
+        source, columns = self._staged
+        spellings = columns.missing_spellings
+        select = (f"CAST({quote_ident(columns.source)} AS VARCHAR) AS a, "
+                  f"CAST({quote_ident(columns.target)} AS VARCHAR) AS b, {self._weight_sql(columns)} AS w")
+        missing = f"({_missing_id_sql('a', spellings)} OR {_missing_id_sql('b', spellings)})"
+        known = f"(NOT {missing} AND a IN (SELECT id FROM __ids) AND b IN (SELECT id FROM __ids))"
+        predicate = {RowCondition.MISSING_ID: missing,
+                     RowCondition.UNKNOWN_PERSON: f"NOT {missing} AND NOT {known}",
+                     RowCondition.BAD_WEIGHT: f"{known} AND (w IS NULL OR isnan(w) OR isinf(w) OR w < 0)"}[condition]
+        return self._first_row(self._relation_sql(source), select, predicate)
 
     def _first_row(self, rel_sql, select, predicate):
         """1-based data row of the first input row matching ``predicate`` (error path only).
@@ -399,46 +348,24 @@ class DuckDBEngine:
             self.con.execute("RESET disabled_optimizers")
         return None if row is None else int(row)
 
-    def _check_edges(self, e_sql, edge_name, people_name, source, target, weight, w_expr, drop_unknown):
-        """Refuse empty edge tables, missing ids, unknown people and bad weights, naming the first row."""
-        stats = self.con.execute(f"""
-            SELECT coalesce(sum(mult), 0),
-                   coalesce(sum(mult) FILTER (WHERE u = {MISSING_ID}), 0),
-                   coalesce(sum(mult) FILTER (WHERE u = {UNKNOWN_ID}), 0),
-                   coalesce(sum(bad_w) FILTER (WHERE u >= 0), 0)
-            FROM __mapped""").fetchall()[0]
-        rows, missing, unknown, bad_w = (int(x) for x in stats)
-        if rows == 0:
-            raise InputError(f"{edge_name}: the edge table has no rows")
-        select = (f"CAST({quote_ident(source)} AS VARCHAR) AS a, CAST({quote_ident(target)} AS VARCHAR) AS b, "
-                  f"{w_expr} AS w")
-        missing_ab = f"({_missing_id_sql('a')} OR {_missing_id_sql('b')})"
-        known = f"(NOT {missing_ab} AND a IN (SELECT id FROM __ids) AND b IN (SELECT id FROM __ids))"
-
-        def at(predicate):
-            row = self._first_row(e_sql, select, predicate)
-            return f" (first at data row {row})" if row else ""
-
-        if missing:
-            raise InputError(f"{edge_name}: {missing:,} edge row(s) have an empty '{source}' or '{target}' "
-                             f"(or an id spelling a missing value: NaN, NA, null){at(missing_ab)}")
-        if unknown and not drop_unknown:
-            raise InputError(f"{edge_name}: {unknown:,} edge row(s) name people missing from {people_name}"
-                             f"{at(f'NOT {missing_ab} AND NOT {known}')} (use --drop-unknown to drop them)")
-        if weight and bad_w:
-            raise InputError(f"{edge_name}: {bad_w:,} edge row(s) have an empty, unparseable, NaN, infinite or "
-                             f"negative '{weight}'"
-                             f"{at(f'{known} AND (w IS NULL OR isnan(w) OR isinf(w) OR w < 0)')}")
-
-    def _publish_edges(self, weight):
-        """Keep the mapped, canonical contacts as table ``edges`` (inputs already validated)."""
+    def publish_staged_edges(self):
+        """Keep the staged pairs of known, different people as table ``edges`` (inputs already validated)."""
         with self._long("keeping the contacts"):
             self.con.execute("""CREATE OR REPLACE TABLE edges AS
                                 SELECT CAST(u AS INTEGER) AS u, CAST(v AS INTEGER) AS v, w
                                 FROM __mapped WHERE u < v AND u >= 0""")
-        self.con.execute("DROP TABLE __mapped")
-        self._weighted = bool(weight)
+        self.discard_staged_edges()
         self._degrees = None  # new edges: forget degrees of a previous load
+
+    def discard_staged_edges(self):
+        """Drop the staged table, the id table and the input's view."""
+        self.con.execute("DROP TABLE IF EXISTS __mapped")
+        try:
+            self.con.unregister("__ids")
+        except duckdb.Error:  # pragma: no cover - not registered
+            pass
+        self._forget_input()
+        self._staged = None
 
     # ------------------------------------------------------------------ counting
 
@@ -559,10 +486,7 @@ class DuckDBEngine:
         Returns an int64 array of shape ``(n_groups, cap + 1)``; people with no
         contacts count in bin 0.
         """
-        deg = self.degrees(len(assignment))
-        bins = np.minimum(deg, cap)
-        flat = np.asarray(assignment, dtype=np.int64) * (cap + 1) + bins
-        return np.bincount(flat, minlength=n_groups * (cap + 1)).reshape(n_groups, cap + 1)
+        return degree_histograms_from_degrees(self.degrees(len(assignment)), assignment, n_groups, cap)
 
     def contact_profiles(self, assignment: np.ndarray):
         """Per person and supernode, the number of that person's contacts in the supernode.

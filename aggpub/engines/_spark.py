@@ -1,10 +1,13 @@
 """The Spark counting engine (optional extra ``aggpub[spark]``), for tables held in a cluster.
 
-The same stages as :class:`aggpub.engines._duckdb.DuckDBEngine`, in Spark SQL:
-ingest (id mapping, self-loops, duplicates, unknown people), superedge counts,
-weight totals, degrees, degree histograms, contact profiles. The results are
-exactly DuckDB's on the same input: the same people in the same dense order
-(first appearance in the person file), the same contacts, the same true counts.
+The same methods as the DuckDB engine (:class:`aggpub.engines.Engine`), in Spark
+SQL: the edge mapping that ingest asks for (ids to dense ids, self-loops,
+duplicates, unknown people), superedge counts, weight totals, degrees, degree
+histograms, contact profiles. Ingest (:mod:`aggpub.ingest`) applies the same
+rules and words the same messages for both engines, and numbers the people
+itself, so the results are exactly DuckDB's on the same input: the same people
+in the same dense order (first appearance in the person file), the same
+contacts, the same true counts.
 Only aggregated tables come back to the driver, where the noise is drawn from the
 full table of cells in its canonical order (row-major upper triangle), so a
 seeded source gives the same released counts with either engine.
@@ -28,14 +31,35 @@ import numpy as np
 import pyarrow as pa
 
 from ..errors import InputError, UsageError
-from ..ingest import IngestReport, MISSING_ID_SPELLINGS, Network, csv_header, file_format
 from ..progress import LongStep
+from .common import degree_histograms_from_degrees
+from .interface import (INTEGER, OTHER, REAL, TEXT, ColumnType, EdgeColumns, EdgeCounts, PeopleColumns,
+                        RowCondition, Source)
 
 MISSING_ID = -2
 UNKNOWN_ID = -1
 
+#: Spark's integer types (their values join as BIGINT)
 _INT_TYPES = ("tinyint", "smallint", "int", "bigint")
-_NUMERIC_TYPES = _INT_TYPES + ("float", "double")
+#: how Spark reads an unsigned 64-bit Parquet integer column
+_UINT64_TYPE = "decimal(20,0)"
+#: a weight that is null, unparseable (null after try_cast), NaN, infinite or negative
+_BAD_WEIGHT = "(w IS NULL OR isnan(w) OR abs(w) = CAST('Infinity' AS DOUBLE) OR w < 0)"
+
+
+def _column_type(simple: str) -> ColumnType:
+    """The kind of a Spark type (its ``simpleString``): integers, text, floating point or decimal, other.
+
+    ``decimal(20,0)`` counts as integers: it is how Spark reads an unsigned
+    64-bit integer column (other decimals are real numbers, refused as ids).
+    """
+    if simple in _INT_TYPES or simple == _UINT64_TYPE:
+        return ColumnType(INTEGER, simple.upper())
+    if simple == "string":
+        return ColumnType(TEXT, simple.upper())
+    if simple in ("float", "double") or simple.startswith("decimal("):
+        return ColumnType(REAL, simple.upper())
+    return ColumnType(OTHER, simple.upper())
 
 
 def _size_to_jvm(text: str) -> str:
@@ -99,10 +123,10 @@ def _lit(text: str) -> str:
     return "'" + str(text).replace("\\", "\\\\").replace("'", "\\'") + "'"
 
 
-def _missing_id_sql(expr: str) -> str:
-    """True when an id (as text) is empty or spells a missing value (as in the DuckDB engine)."""
-    spellings = ", ".join(_lit(x) for x in MISSING_ID_SPELLINGS)
-    return f"({expr} IS NULL OR lower(trim({expr})) IN ({spellings}))"
+def _missing_id_sql(expr: str, spellings) -> str:
+    """True when an id (as text) is null, or empty or one of ``spellings`` after trimming spaces (U+0020), any case."""
+    listed = ", ".join(_lit(x) for x in spellings)
+    return f"({expr} IS NULL OR lower(trim(BOTH ' ' FROM {expr})) IN ({listed}))"
 
 
 def _resource_error(exc: Exception):
@@ -178,7 +202,11 @@ class SparkEngine:
         self._prefix = f"aggpub_{secrets.token_hex(4)}_"
         self._cached = []
         self._views = set()
-        self._weighted = False
+        self._staged = None
+        self._last_read = None
+        self._degrees = None
+        self._last_assignment = None
+        self._edges = None
         self._scratch = scratch
         self._cleanup = None
         self._n_scratch = 0
@@ -265,128 +293,80 @@ class SparkEngine:
             table = self._sql(query).toArrow()
         return {name: table.column(name).to_numpy() for name in table.column_names}
 
-    def _read(self, src, what: str, debug: bool):
-        """A DataFrame over a file or an Arrow table, with ``__row`` increasing in input order."""
+    def _read(self, source: Source):
+        """A DataFrame over ``source``, with ``__row`` increasing in input order (the last one is reused)."""
         from pyspark.sql import functions as F
         from pyspark.sql.types import StringType, StructField, StructType
 
+        if self._last_read is not None and self._last_read[0] is source:
+            return self._last_read[1]
         try:
-            if isinstance(src, pa.Table):
-                df = self._from_arrow(src)
-            else:
-                fmt = file_format(src)
-                if fmt == "parquet":
-                    df = self.spark.read.parquet(str(src))
-                else:
-                    delim = "\t" if fmt == "tsv" else ","
-                    names = csv_header(src, delim)
-                    schema = StructType([StructField(n, StringType(), True) for n in names])
-                    df = self.spark.read.csv(str(src), header=True, schema=schema, sep=delim, quote='"',
-                                             escape='"', mode="FAILFAST", encoding="UTF-8")
-        except InputError:
-            raise
+            if source.format == "arrow":
+                df = self._from_arrow(source.table)
+            elif source.format == "parquet":
+                df = self.spark.read.parquet(source.path)
+            else:  # every column as text, verbatim (the header was parsed by ingest)
+                schema = StructType([StructField(n, StringType(), True) for n in source.header])
+                df = self.spark.read.csv(source.path, header=True, schema=schema, sep=source.delimiter, quote='"',
+                                         escape='"', mode="FAILFAST", encoding="UTF-8")
         except Exception as exc:  # analysis errors: unreadable file, not Parquet, ...
-            name = f"{what} table" if isinstance(src, pa.Table) else str(src)
-            raise _input_error(f"{name}: cannot read {what} file", exc, debug) from None
+            raise _input_error(source.unreadable, exc, source.debug) from None
         # monotonically increasing in file order (partition index in the high bits)
-        return df.withColumn("__row", F.monotonically_increasing_id())
+        df = df.withColumn("__row", F.monotonically_increasing_id())
+        self._last_read = (source, df)
+        return df
 
     def _data_row(self, view: str, mono) -> int:
         """1-based data row of the row whose ``__row`` is ``mono`` (rows before it, plus one)."""
         return int(self._one(f"SELECT count(*) FROM {view} WHERE __row < {int(mono)}")[0]) + 1
 
-    # ------------------------------------------------------------------ ingest
+    # ------------------------------------------------------------------ ingest (driven by aggpub.ingest)
 
-    def load(self, edges_src, people_src, *, source, target, node, weight, drop_unknown, attributes,
-             debug=False) -> Network:
-        """Read edges and people (see :func:`aggpub.load_network`); same checks and results as DuckDB."""
-        from ..errors import closest_name
+    def describe(self, source: Source) -> dict:
+        """The columns of ``source`` and their types (see :meth:`aggpub.engines.Engine.describe`)."""
+        return {name: _column_type(simple) for name, simple in self._read(source).dtypes if name != "__row"}
 
-        edge_name = "edge table" if isinstance(edges_src, pa.Table) else str(edges_src)
-        people_name = "person table" if isinstance(people_src, pa.Table) else str(people_src)
-        self._size_shuffles(edges_src)
+    def read_people(self, source: Source, id_column: str, attributes) -> PeopleColumns:
+        """The id and attribute columns as Arrow, in input order (see :meth:`aggpub.engines.Engine.read_people`).
 
-        # ---- people: ids deduplicated, dense index = order of first appearance
-        pdf = self._read(people_src, "person", debug)
-        p_types = {f.name: f.dataType.simpleString() for f in pdf.schema.fields if f.name != "__row"}
-        if node not in p_types:
-            raise InputError(f"{people_name}: no id column '{node}'{closest_name(node, p_types)}")
-        int_ids = p_types[node] in _INT_TYPES
-        if not (int_ids or p_types[node] == "string" or p_types[node].startswith("decimal(")):
-            raise InputError(f"{people_name}: id column '{node}' has type {p_types[node]}; ids must be "
-                             "integers or text")
-        attr_cols = [c for c in p_types if c != node] if attributes is None else list(attributes)
-        for a in attr_cols:
-            if a not in p_types:
-                raise InputError(f"{people_name}: no attribute column '{a}'{closest_name(a, p_types)}")
-        raw = self._register(pdf, "people_in")
-        nid = f", CAST({_q(node)} AS BIGINT) AS __nid" if int_ids else ""
-        attr_sel = "".join(f", CAST({_q(a)} AS STRING) AS {_q(a)}" for a in attr_cols)
-        praw = self._register(self._sql(f"SELECT CAST({_q(node)} AS STRING) AS id{nid}{attr_sel}, __row "
-                                        f"FROM {raw}"), "people_raw")
-        null_attrs = "".join(f", min(CASE WHEN {_q(a)} IS NULL THEN __row END)" for a in attr_cols)
-        missing_p = _missing_id_sql("id")
-        try:  # every check of the person table in one pass
-            stats = self._one(f"SELECT count(*), min(CASE WHEN {missing_p} THEN __row END), "
-                              f"count(CASE WHEN {missing_p} THEN 1 END), count(DISTINCT id){null_attrs} "
-                              f"FROM {praw}")
+        Integer ids (up to 64-bit signed) also come back as BIGINT, for the integer join of the edge mapping.
+        """
+        attributes = list(attributes)
+        df = self._read(source)
+        native = dict(df.dtypes)[id_column] in _INT_TYPES
+        view = self._register(df, "people_in")
+        exprs = ([f"CAST({_q(id_column)} AS STRING)"] + ([f"CAST({_q(id_column)} AS BIGINT)"] if native else [])
+                 + [f"CAST({_q(a)} AS STRING)" for a in attributes])
+        select = ", ".join(f"{e} AS __c{i}" for i, e in enumerate(exprs))  # no clash with any input name
+        try:
+            with self._long("reading people"):
+                table = self._sql(f"SELECT {select} FROM {view} ORDER BY __row").toArrow()
         except Exception as exc:
-            raise _input_error(f"{people_name}: cannot read person file", exc, debug) from None
-        person_rows, bad_row, n_bad, n_ids = int(stats[0]), stats[1], int(stats[2]), int(stats[3])
-        if person_rows == 0:
-            raise InputError(f"{people_name}: the person table has no rows")
-        if bad_row is not None:
-            raise InputError(f"{people_name}: {n_bad:,} row(s) have an empty or missing id (NaN, NA, null) "
-                             f"in column '{node}' (first at data row {self._data_row(praw, bad_row)})")
-        for a, bad in zip(attr_cols, stats[4:]):
-            if bad is not None:
-                raise InputError(f"{people_name}: column '{a}' is empty in data row {self._data_row(praw, bad)}")
-        nid_col = ", __nid" if int_ids else ""
-        attr_sql = "".join(", " + _q(a) for a in attr_cols)
-        if n_ids == person_rows:
-            firsts = praw
-        else:
-            firsts = self._register(self._sql(
-                f"SELECT id{nid_col}{attr_sql}, min(__row) AS __row FROM {praw} GROUP BY id{nid_col}{attr_sql}"),
-                "people_first", cache=True)
-            n_distinct = int(self._one(f"SELECT count(*) FROM {firsts}")[0])
-            if n_distinct != n_ids:
-                row = self._one(f"SELECT min(__row) FROM (SELECT id, min(__row) AS __row, count(*) AS k "
-                                f"FROM {firsts} GROUP BY id) WHERE k > 1")[0]
-                raise InputError(f"{people_name}: {n_distinct - n_ids} person id(s) appear more than once with "
-                                 f"conflicting attributes (first at data row {self._data_row(praw, row)})")
-        ids_view = self._register(self._sql(
-            f"SELECT id{nid_col}{attr_sql}, CAST(row_number() OVER (ORDER BY __row) - 1 AS INT) AS idx "
-            f"FROM {firsts}"), "ids", cache=True)
-        people_all = self._sql(f"SELECT id{attr_sql} FROM {ids_view} ORDER BY idx").toArrow()
-        n_people = people_all.num_rows
-        ids = people_all.column("id").combine_chunks()
-        people = pa.table({a: people_all.column(a).combine_chunks().cast(pa.string()) for a in attr_cols}) \
-            if attr_cols else pa.table({"__none": pa.nulls(n_people)}).select([])
+            raise _input_error(source.unreadable, exc, source.debug) from None
+        first = 2 if native else 1
+        attrs = pa.table([table.column(first + i).combine_chunks().cast(pa.string()) for i in range(len(attributes))],
+                         names=attributes)
+        if not attributes:
+            attrs = pa.table({"_": pa.nulls(table.num_rows)}).select([])
+        return PeopleColumns(ids=table.column(0).combine_chunks().cast(pa.string()),
+                             native_ids=table.column(1).combine_chunks() if native else None, attributes=attrs)
 
-        # ---- edges: mapped to dense ids, canonical u < v, collapsed
-        edf = self._read(edges_src, "edge", debug)
-        e_types = {f.name: f.dataType.simpleString() for f in edf.schema.fields if f.name != "__row"}
-        for c in (source, target) + ((weight,) if weight else ()):
-            if c not in e_types:
-                raise InputError(f"{edge_name}: no column '{c}'{closest_name(c, e_types)}")
-        for c in (source, target):
-            t = e_types[c]
-            if not (t in _INT_TYPES or t == "string" or t.startswith("decimal(")):
-                raise InputError(f"{edge_name}: id column '{c}' has type {t}; ids must be integers or text")
-        if weight and not (e_types[weight] in _NUMERIC_TYPES or e_types[weight] == "string"
-                           or e_types[weight].startswith("decimal(")):
-            raise InputError(f"{edge_name}: weight column '{weight}' is not numeric ({e_types[weight]})")
-        ein = self._register(edf, "edges_in")
-        w_expr = f"try_cast({_q(weight)} AS DOUBLE)" if weight else "CAST(NULL AS DOUBLE)"
-        a_sql, b_sql, key = f"CAST({_q(source)} AS STRING)", f"CAST({_q(target)} AS STRING)", "id"
-        missing = f"({_missing_id_sql('a')} OR {_missing_id_sql('b')})"
-        missing_e = f"({_missing_id_sql('e.a')} OR {_missing_id_sql('e.b')})"
-        if int_ids and e_types[source] in _INT_TYPES and e_types[target] in _INT_TYPES:
+    def stage_edges(self, source: Source, columns: EdgeColumns, ids: pa.Table) -> EdgeCounts:
+        """Map, canonicalise and collapse the edges (see :meth:`aggpub.engines.Engine.stage_edges`)."""
+        self._size_shuffles(source.table if source.format == "arrow" else source.path)
+        ein = self._register(self._read(source), "edges_in")
+        ids_view = self._register(self._from_arrow(ids), "ids", cache=True)
+        w_expr = f"try_cast({_q(columns.weight)} AS DOUBLE)" if columns.weight else "CAST(NULL AS DOUBLE)"
+        a_sql, b_sql, key = f"CAST({_q(columns.source)} AS STRING)", f"CAST({_q(columns.target)} AS STRING)", "id"
+        spellings = columns.missing_spellings
+        missing = f"({_missing_id_sql('a', spellings)} OR {_missing_id_sql('b', spellings)})"
+        missing_e = f"({_missing_id_sql('e.a', spellings)} OR {_missing_id_sql('e.b', spellings)})"
+        if "nid" in ids.column_names and all(t.name.lower() in _INT_TYPES
+                                             for t in (columns.source_type, columns.target_type)):
             # integers on both sides: join on the integers (same pairs as comparing their text)
-            a_sql, b_sql, key = f"CAST({_q(source)} AS BIGINT)", f"CAST({_q(target)} AS BIGINT)", "__nid"
+            a_sql, b_sql, key = (f"CAST({_q(columns.source)} AS BIGINT)", f"CAST({_q(columns.target)} AS BIGINT)",
+                                 "nid")
             missing, missing_e = "(a IS NULL OR b IS NULL)", "(e.a IS NULL OR e.b IS NULL)"
-        bad_w = "(w IS NULL OR isnan(w) OR abs(w) = CAST('Infinity' AS DOUBLE) OR w < 0)"
         e_sel = self._register(self._sql(f"SELECT {a_sql} AS a, {b_sql} AS b, {w_expr} AS w, __row FROM {ein}"),
                                "edges_sel")
         try:
@@ -397,7 +377,7 @@ class SparkEngine:
                            FROM {e_sel} e LEFT JOIN {ids_view} ps ON e.a = ps.{key}
                                           LEFT JOIN {ids_view} pt ON e.b = pt.{key})
                 SELECT least(s, t) AS u, greatest(s, t) AS v, count(*) AS mult, sum(w) AS w,
-                       count(CASE WHEN {bad_w} THEN 1 END) AS bad_w
+                       count(CASE WHEN {_BAD_WEIGHT} THEN 1 END) AS bad_w
                 FROM m GROUP BY least(s, t), greatest(s, t)"""), "mapped", cache=True)
             stats = self._one(f"""
                 SELECT coalesce(sum(mult), 0),
@@ -409,39 +389,32 @@ class SparkEngine:
                        count(CASE WHEN u < v AND u >= 0 THEN 1 END)
                 FROM {mapped}""")
         except Exception as exc:
-            raise _input_error(f"{edge_name}: cannot read edge file", exc, debug) from None
-        rows, n_missing, unknown, n_bad_w, loops, dups, n_edges = (int(x) for x in stats)
-        if rows == 0:
-            raise InputError(f"{edge_name}: the edge table has no rows")
-        known = (f"(NOT {missing} AND a IN (SELECT {key} FROM {ids_view}) "
-                 f"AND b IN (SELECT {key} FROM {ids_view}))")
+            raise _input_error(source.unreadable, exc, source.debug) from None
+        known = f"(NOT {missing} AND a IN (SELECT {key} FROM {ids_view}) AND b IN (SELECT {key} FROM {ids_view}))"
+        self._staged = {"edges": e_sel, "mapped": mapped, "predicates": {
+            RowCondition.MISSING_ID: missing,
+            RowCondition.UNKNOWN_PERSON: f"NOT {missing} AND NOT {known}",
+            RowCondition.BAD_WEIGHT: f"{known} AND {_BAD_WEIGHT}"}}
+        return EdgeCounts(*(int(x) for x in stats))
 
-        def at(predicate):
-            first = self._one(f"SELECT min(__row) FROM {e_sel} WHERE {predicate}")[0]
-            return f" (first at data row {self._data_row(e_sel, first)})" if first is not None else ""
+    def first_staged_row(self, condition: RowCondition):
+        """1-based data row of the first staged edge row matching ``condition`` (error path only)."""
+        view = self._staged["edges"]
+        first = self._one(f"SELECT min(__row) FROM {view} WHERE {self._staged['predicates'][condition]}")[0]
+        return self._data_row(view, first) if first is not None else None
 
-        if n_missing:
-            raise InputError(f"{edge_name}: {n_missing:,} edge row(s) have an empty or missing id (NaN, NA, null) "
-                             f"in '{source}' or '{target}'{at(missing)}")
-        if unknown and not drop_unknown:
-            raise InputError(f"{edge_name}: {unknown:,} edge row(s) name people missing from {people_name}"
-                             f"{at(f'NOT {missing} AND NOT {known}')} (use --drop-unknown to drop them)")
-        if weight and n_bad_w:
-            raise InputError(f"{edge_name}: {n_bad_w:,} edge row(s) have an empty, unparseable, NaN, infinite or "
-                             f"negative '{weight}'{at(f'{known} AND {bad_w}')}")
-        if n_edges == 0:
-            raise InputError(f"{edge_name}: no contacts left after dropping self-loops"
-                             + (" and unknown people" if unknown else ""))
+    def publish_staged_edges(self):
+        """Keep the staged pairs of known, different people as the contacts (inputs already validated)."""
         self._edges = self._register(self._sql(
-            f"SELECT CAST(u AS INT) AS u, CAST(v AS INT) AS v, w FROM {mapped} WHERE u < v AND u >= 0"), "edges")
-        self._weighted = bool(weight)
+            f"SELECT CAST(u AS INT) AS u, CAST(v AS INT) AS v, w FROM {self._staged['mapped']} "
+            f"WHERE u < v AND u >= 0"), "edges")
         self._degrees = self._last_assignment = None
-        report = IngestReport(edge_rows=rows, edges=n_edges, self_loops_dropped=loops,
-                              duplicate_rows_collapsed=dups, unknown_person_rows_dropped=unknown,
-                              person_rows=person_rows, people=n_people,
-                              duplicate_person_rows_collapsed=person_rows - n_people)
-        return Network(people=people, n_people=n_people, n_edges=n_edges, engine=self, report=report,
-                       weighted=bool(weight), ids=ids)
+        self.discard_staged_edges()
+
+    def discard_staged_edges(self):
+        """Forget the staged edges and the last input read (their views go at :meth:`close`)."""
+        self._staged = None
+        self._last_read = None
 
     # ------------------------------------------------------------------ counting
 
@@ -497,10 +470,7 @@ class SparkEngine:
         Returns an int64 array of shape ``(n_groups, cap + 1)``; people with no
         contacts count in bin 0 (one value per person on the driver, as in DuckDB).
         """
-        deg = self.degrees(len(assignment))
-        bins = np.minimum(deg, cap)
-        flat = np.asarray(assignment, dtype=np.int64) * (cap + 1) + bins
-        return np.bincount(flat, minlength=n_groups * (cap + 1)).reshape(n_groups, cap + 1)
+        return degree_histograms_from_degrees(self.degrees(len(assignment)), assignment, n_groups, cap)
 
     def contact_profiles(self, assignment: np.ndarray):
         """Per person and supernode, the number of that person's contacts in the supernode.

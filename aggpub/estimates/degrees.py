@@ -156,20 +156,47 @@ def fit_sorted_degrees(noisy, group, n_people: int, variance_d: float, *, replic
     return np.clip(fit, 0.0, max(int(n_people) - 1, 0))
 
 
-def degree_targets(fit, group, sizes, totals=None) -> np.ndarray:
+def degree_targets(fit, group, sizes, totals=None, cap: float | None = None) -> np.ndarray:
     """Step 4: each supernode's fitted sequence rescaled to its degree total ``totals[A]``.
 
     Without ``totals`` the fit is returned as is. A supernode whose fit sums to 0
-    gives every member ``totals[A] / size[A]``.
+    gives every member ``totals[A] / size[A]``. With ``cap`` (``N - 1``, the most
+    contacts anyone can have) the rescaling is capped: members whose scaled value
+    would pass the cap get the cap and the rest of the total is spread over the
+    others in proportion to their fit (repeated until nobody passes it); what
+    cannot be placed that way (every member with a positive fit at the cap) is
+    shared equally by the members with a fit of 0. The sum stays the total
+    whenever the total is possible (at most ``size * cap``, which the consistent
+    totals are) and the order is kept.
     """
     fit = np.asarray(fit, dtype=np.float64)
     if totals is None:
-        return fit.copy()
+        return fit.copy() if cap is None else np.minimum(fit, cap)
     group = np.asarray(group, dtype=np.int64)
     sizes = np.asarray(sizes, dtype=np.int64)
     totals = np.maximum(np.asarray(totals, dtype=np.float64), 0.0)
     n = len(sizes)
     s = np.bincount(group, weights=fit, minlength=n)
-    factor = np.divide(totals, s, out=np.zeros(n), where=s > 0)
     flat = np.divide(totals, sizes, out=np.zeros(n), where=sizes > 0)
-    return np.where(s[group] > 0, fit * factor[group], flat[group])
+    at_cap = np.zeros(len(fit), dtype=bool)
+    for _ in range(64):  # a few passes: each one caps the members the previous scale pushed over
+        free = np.bincount(group, weights=np.where(at_cap, 0.0, fit), minlength=n)
+        capped = 0.0 if cap is None else np.bincount(group, weights=at_cap * float(cap), minlength=n)
+        factor = np.divide(np.maximum(totals - capped, 0.0), free, out=np.zeros(n), where=free > 0)
+        out = np.where(at_cap, cap if cap is not None else 0.0, fit * factor[group])
+        if cap is None:
+            break
+        over = ~at_cap & (out > cap)
+        if not over.any():
+            break
+        at_cap |= over
+    if cap is not None:
+        # members with a fit of 0 take what the capped ones could not, equally (they are the lowest of their
+        # supernode, so the order holds)
+        free = np.bincount(group, weights=np.where(at_cap, 0.0, fit), minlength=n)
+        left = totals - np.bincount(group, weights=np.minimum(out, cap), minlength=n)
+        room = np.bincount(group, weights=(~at_cap) & (fit == 0), minlength=n)
+        spread = np.divide(left, room, out=np.zeros(n), where=(free == 0) & (left > 0) & (room > 0))
+        out = np.where(~at_cap & (fit == 0), out + spread[group], out)
+    out = np.where(s[group] > 0, out, flat[group])
+    return out if cap is None else np.minimum(out, cap)

@@ -236,6 +236,23 @@ def interval(release, cells, confidence: float = 0.95, *, method: str = "auto") 
     ----------
     A. Ghosh, T. Roughgarden, M. Sundararajan, "Universally utility-maximizing
     privacy mechanisms", STOC 2009 (the geometric mechanism and its pmf).
+
+    Examples
+    --------
+    >>> import networkx as nx, pyarrow as pa
+    >>> import aggpub
+    >>> G = nx.karate_club_graph()  # Zachary's karate club, as networkx ships it
+    >>> edges = pa.table({"source": [str(u) for u, v in G.edges()], "target": [str(v) for u, v in G.edges()]})
+    >>> people = pa.table({"node": [str(n) for n in G], "club": [G.nodes[n]["club"] for n in G]})
+    >>> policy = {"privacy": {"unit": "edge", "epsilon": 1.0},
+    ...           "grouping": {"method": "attributes", "attributes": ["club"], "min_size": 5}}
+    >>> release = aggpub.release_tables(edges, people, policy, seed=1)
+    >>> every_cell = aggpub.cell_mask(release, [0, 1])  # both clubs: all contacts
+    >>> total = aggpub.interval(release, every_cell)
+    >>> total.low <= G.number_of_edges() <= total.high  # 78 true contacts, inside the 95% interval here
+    True
+    >>> total.cells, total.method, total.confidence
+    (3, 'exact', 0.95)
     """
     if isinstance(confidence, bool) or not isinstance(confidence, (int, float)) or not 0 < confidence < 1:
         raise UsageError(f"'confidence' must be a number in (0, 1), got {confidence!r}")

@@ -29,6 +29,21 @@ def supergraph(release, *, include_zero: bool = False):
     Returns
     -------
     networkx.Graph
+
+    Examples
+    --------
+    >>> import networkx as nx, pyarrow as pa
+    >>> import aggpub
+    >>> G = nx.karate_club_graph()  # Zachary's karate club, as networkx ships it
+    >>> edges = pa.table({"source": [str(u) for u, v in G.edges()], "target": [str(v) for u, v in G.edges()]})
+    >>> people = pa.table({"node": [str(n) for n in G], "club": [G.nodes[n]["club"] for n in G]})
+    >>> policy = {"privacy": {"unit": "edge", "epsilon": 1.0},
+    ...           "grouping": {"method": "attributes", "attributes": ["club"], "min_size": 5}}
+    >>> g = aggpub.supergraph(aggpub.release_tables(edges, people, policy, seed=1), include_zero=True)
+    >>> sorted(g.nodes(data="club"))
+    [(0, 'Mr. Hi'), (1, 'Officer')]
+    >>> g.number_of_edges()  # two cells inside the clubs (self-loops) and one between them
+    3
     """
     import networkx as nx
 

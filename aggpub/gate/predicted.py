@@ -61,13 +61,13 @@ class StandIn:
 
 def _stand_in_people(policy, assumptions: Assumptions):
     """Person unit: ``assumptions.people`` persons spread evenly over the declared domains (public)."""
-    from ..grouping.noisy_cells import _domain_rows, declared_domains
+    from ..grouping.noisy_cells import domain_rows, declared_domains
 
     if assumptions.people is None:
         raise PolicyError("the pre-flight under unit 'person' needs 'assumptions.people' (a public figure for "
                           "the population size, e.g. from a census); the person file is private and is not read")
     g = policy.grouping
-    cells = _domain_rows(g.attributes, declared_domains(policy))
+    cells = domain_rows(g.attributes, declared_domains(policy))
     reps = np.full(cells.num_rows, assumptions.people // max(cells.num_rows, 1), dtype=np.int64)
     reps[: assumptions.people - int(reps.sum())] += 1
     return cells.take(pa.array(np.repeat(np.arange(cells.num_rows), reps)))
@@ -162,6 +162,20 @@ def _stand_in_histograms(sizes, c: float, cap: int) -> pa.Table:
                      "people": people.reshape(-1)})
 
 
+def _noise_of(policy) -> list:
+    """Each budgeted statistic's epsilon, sensitivity and scale (the policy alone)."""
+    from ..policy import epsilon_shares
+
+    unit, D = policy.privacy.unit, policy.privacy.max_contacts
+    shares = epsilon_shares(policy)
+    out = []
+    for name in ("supernode_sizes", "superedge_counts", "degree_histograms"):
+        if name in shares and getattr(policy.components, name).enabled:
+            sens = sensitivity(unit, name, D)
+            out.append({"name": name, "epsilon": shares[name], "sensitivity": sens, "scale": sens / shares[name]})
+    return out
+
+
 def predicted_metrics(policy, people: pa.Table | None = None) -> dict:
     """The gate's figures predicted before any noise (see the module docstring).
 
@@ -169,8 +183,19 @@ def predicted_metrics(policy, people: pa.Table | None = None) -> dict:
     -------
     dict
         A metrics table (:func:`aggpub.gate.released.released_metrics`) with ``notes``,
-        ``supernodes`` (count and sizes of the stand-in) and ``grouping_exact``.
+        ``supernodes`` (count and sizes of the stand-in), ``grouping_exact`` and ``noise``.
     """
+    from . import gate_attribute
+
+    if policy.privacy.unit == "person" and _assumptions(policy).people is None:
+        why = ("needs 'assumptions.people' (a public figure for the population, e.g. a census): under unit "
+               "'person' the person file is private and is not read before the noise")
+        out = {k: None for k in ("superedge_median_relative_error", "contact_matrix_median_relative_error",
+                                 "degree_ks", "degree_wasserstein1")}
+        out.update(why={k: why for k in out}, contact_matrix_attribute=gate_attribute(policy),
+                   supernodes={"count": None, "note": "not formed: the sizes are private under unit 'person'"},
+                   grouping_exact=False, notes=[], noise=_noise_of(policy))
+        return out
     stand = stand_in_release(policy, people)
     if "superedges" in stand.tables:
         out = released_metrics(stand.tables, stand.manifest, policy)
@@ -180,13 +205,11 @@ def predicted_metrics(policy, people: pa.Table | None = None) -> dict:
         out = {k: None for k in ("superedge_median_relative_error", "contact_matrix_median_relative_error",
                                  "degree_ks", "degree_wasserstein1")}
         out["why"] = {k: why for k in out}
-        from . import gate_attribute
-
         out["contact_matrix_attribute"] = gate_attribute(policy)
     sizes = np.asarray(stand.tables["supernodes"].column("size").to_numpy())
     out["supernodes"] = {"count": int(len(sizes)), "size_min": int(sizes.min()), "size_median": float(np.median(sizes)),
                          "size_max": int(sizes.max()), "people": stand.n_people}
     out["grouping_exact"] = stand.grouping_exact
     out["notes"] = stand.notes
-    out["noise"] = [dict(c, scale=c["sensitivity"] / c["epsilon"]) for c in stand.manifest["components"]]
+    out["noise"] = _noise_of(policy)
     return out

@@ -143,21 +143,21 @@ def group_by_attributes(people: pa.Table, attributes, min_size: int, hierarchies
             small = [g for g, t in totals.items() if t < min_size]
             if not small:
                 break
-            uncovered = 0
+            uncovered = set()
             for g in small:
                 for i in groups[g]:
                     if level[i, j] != step:
                         continue
                     value = current[i][j]
                     if value not in mapping:
-                        uncovered += 1
+                        uncovered.add(value)
                         continue
                     current[i][j] = mapping[value]
                     level[i, j] += 1
                     generalised_cells += 1
             if uncovered:
                 raise PolicyError(f"'grouping.hierarchies.{attr}.levels[{step}]' does not cover "
-                                  f"{uncovered} value(s) of attribute '{attr}' found in small cells")
+                                  f"{len(uncovered)} value(s) of attribute '{attr}' found in small cells")
 
     groups, totals = group_totals()
     released = {g: idx for g, idx in groups.items() if totals[g] >= min_size}

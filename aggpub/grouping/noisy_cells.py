@@ -79,7 +79,7 @@ def public_domain(people: pa.Table, policy, on_refusal=None) -> list:
     return domains
 
 
-def _domain_rows(attributes, domains) -> pa.Table:
+def domain_rows(attributes, domains) -> pa.Table:
     """One row for every combination of domain values (the public fine cells)."""
     grids = np.meshgrid(*[np.arange(len(d)) for d in domains], indexing="ij")
     return pa.table({a: pa.array(np.asarray(d, dtype=object)[grid.reshape(-1)], type=pa.string())
@@ -100,8 +100,8 @@ def group_by_noisy_cells(network, policy, budget, source, epsilon: float, on_ref
     people = network.people.select(list(g.attributes))
     domains = public_domain(people, policy, on_refusal)
     # The public cells go first, so the cell order (first appearance) is the domain's, not the data's.
-    domain_rows = _domain_rows(g.attributes, domains).cast(people.schema)
-    padded = pa.concat_tables([domain_rows, people])
+    cells = domain_rows(g.attributes, domains).cast(people.schema)
+    padded = pa.concat_tables([cells, people])
     sens = sensitivity("person", "supernode_sizes")
     planned = Spend(name="supernode_sizes", epsilon=epsilon, sensitivity=sens, mechanism="discrete_laplace",
                     scale=sens / epsilon)
@@ -117,5 +117,5 @@ def group_by_noisy_cells(network, policy, budget, source, epsilon: float, on_ref
 
     grouping = group_by_attributes(padded, g.attributes, g.min_size, g.hierarchies, g.merge_order,
                                    cell_counts=noisy_counts)
-    return dataclasses.replace(grouping, assignment=grouping.assignment[domain_rows.num_rows:], spends=spends,
+    return dataclasses.replace(grouping, assignment=grouping.assignment[cells.num_rows:], spends=spends,
                                public=False)

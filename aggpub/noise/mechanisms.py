@@ -13,6 +13,7 @@ __all__ = ["GeometricMechanism"]
 import math
 import numbers
 from dataclasses import dataclass
+from fractions import Fraction
 from typing import ClassVar
 
 import numpy as np
@@ -20,9 +21,8 @@ import numpy as np
 from aggpub.noise.sampler import (
     DEFAULT_CHUNK_SIZE,
     RandomSource,
-    _MAX_GEOMETRIC,
-    _MAX_NEG_LOG_U,
-    _sample_log_alpha,
+    sample_dyadic,
+    dyadic_rate,
 )
 
 
@@ -64,11 +64,18 @@ class GeometricMechanism:
 
     Notes
     -----
-    The sampler works from :math:`\log\alpha = -\varepsilon/\Delta` directly
-    (see :attr:`log_alpha`), so even when :attr:`alpha` rounds to 1 or
-    underflows to 0 as a double the draws follow the intended law; the
-    floating-point caveats are listed in
-    :func:`aggpub.noise.sampler.sample_discrete_laplace`.
+    Noise is drawn exactly (integer arithmetic and random bytes only, no
+    floating point, unbounded tails) by the method of Canonne, Kamath and
+    Steinke [3]_ in :mod:`aggpub.noise.sampler`.  The rate it uses is
+    :attr:`rate`, the largest dyadic rational ``s / 2**k`` (``k, log2(s) <=
+    62``) not above the exact rational ``epsilon / sensitivity`` (both floats
+    are exact dyadic rationals): equal to it when that ratio is itself such a
+    dyadic (e.g. ``epsilon = 0.1`` with sensitivity 1, 2 or 4), else below it
+    by a relative amount under ``max(2**-61, scale * 2**-62)``.  A lower rate
+    means more noise, so the release is :attr:`effective_epsilon`-DP, which
+    is never above :attr:`epsilon`.  The closed forms (:meth:`variance`,
+    :meth:`pmf`, ...) use ``epsilon / sensitivity`` in binary64; they differ
+    from the law of :attr:`rate` by that relative amount.
 
     References
     ----------
@@ -78,6 +85,8 @@ class GeometricMechanism:
     .. [2] I. Mironov, "On significance of the least significant bits for
        differential privacy", Proceedings of the ACM Conference on Computer
        and Communications Security (CCS), 2012.
+    .. [3] C. L. Canonne, G. Kamath, T. Steinke, "The Discrete Gaussian for
+       Differential Privacy", NeurIPS 2020.
     """
 
     epsilon: float
@@ -93,15 +102,42 @@ class GeometricMechanism:
                 f"'epsilon' / 'sensitivity' underflows to 0 (epsilon={epsilon!r}, "
                 f"sensitivity={sensitivity!r}): the noise would be unbounded"
             )
-        if _MAX_NEG_LOG_U / ratio > _MAX_GEOMETRIC:
+        try:
+            s, k = dyadic_rate(Fraction(epsilon) / Fraction(sensitivity))  # exact rational ratio
+        except ValueError:
             raise ValueError(
                 f"noise scale sensitivity/epsilon = {sensitivity / epsilon!r} is too large "
                 f"(epsilon={epsilon!r}, sensitivity={sensitivity!r}): draws could leave the int64 range"
-            )
+            ) from None
         object.__setattr__(self, "epsilon", epsilon)
         object.__setattr__(self, "sensitivity", sensitivity)
+        object.__setattr__(self, "_rate_sk", (s, k))
 
     # ----------------------------------------------------------------- params
+    @property
+    def rate(self) -> Fraction:
+        r"""The exact rate ``s / 2**k`` of the noise drawn: :math:`\alpha = e^{-\mathrm{rate}}`.
+
+        The largest dyadic rational with ``k <= 62`` and ``s <= 2**62`` not
+        above ``Fraction(epsilon) / Fraction(sensitivity)``; see the class notes.
+        """
+        s, k = self._rate_sk
+        return Fraction(s, 1 << k)
+
+    @property
+    def rate_is_exact(self) -> bool:
+        """True when :attr:`rate` equals ``epsilon / sensitivity`` exactly (as rationals)."""
+        return self.rate == Fraction(self.epsilon) / Fraction(self.sensitivity)
+
+    @property
+    def effective_epsilon(self) -> float:
+        """``rate * sensitivity`` rounded down to a float: the epsilon the noise drawn gives (``<= epsilon``)."""
+        exact = self.rate * Fraction(self.sensitivity)
+        out = float(exact)
+        if Fraction(out) > exact:
+            out = math.nextafter(out, 0.0)
+        return min(out, self.epsilon)
+
     @property
     def log_alpha(self) -> float:
         r""":math:`\log\alpha = -\varepsilon/\Delta`, exact to one rounding."""
@@ -271,7 +307,10 @@ class GeometricMechanism:
         else:
             shape = None
             count = size
-        out = _sample_log_alpha(self.log_alpha, count, source, chunk_size=chunk_size)
+        if not isinstance(source, RandomSource):
+            raise TypeError(f"'source' must be a RandomSource, got {type(source).__name__}")
+        s, k = self._rate_sk
+        out = sample_dyadic(s, k, count, source, chunk_size=chunk_size)
         return out.reshape(shape) if shape is not None else out
 
     def randomise(self, values, source: RandomSource, *, chunk_size: int = DEFAULT_CHUNK_SIZE) -> np.ndarray:

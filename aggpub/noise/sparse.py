@@ -20,34 +20,44 @@ kept, because every zero cell follows the same law:
   over :math:`z \ge \theta`). So the number that pass is
   :math:`\mathrm{Binomial}(n_0, p)` and, given that number, the passing cells are
   a uniform random subset of the zero cells [1]_. This module draws that same
-  set with *geometric skips* [2]_: walking the zero cells in order, the gap
-  before the next passing cell is :math:`\mathrm{Geometric}(p)` (failures before
-  a success), so the positions of the passing cells are cumulative sums of
-  independent gaps. This is exactly independent Bernoulli(p) selection of each
-  zero cell, hence the Binomial count and the uniform subset hold by
-  construction, with no rejection loop and no separate binomial sampler (exact
-  binomial sampling from uniforms is much harder than a geometric by
-  inversion). The expected number of draws is :math:`n_0 p + 1`.
+  set exactly, without touching the other zero cells, in two steps:
+
+  1. *candidates by geometric skips* [2]_: each zero cell is a candidate with
+     probability :math:`1 - e^{-\lambda}`, for a dyadic rational
+     :math:`\lambda` chosen so that :math:`1 - e^{-\lambda} \ge p` (checked with
+     rigorous rational bounds). Walking the zero cells in order, the gap before
+     the next candidate is geometric with :math:`P(\mathrm{gap} \ge g) =
+     e^{-\lambda g}`, which the exact sampler of :mod:`aggpub.noise.sampler`
+     draws with integer arithmetic only; positions are cumulative sums of the
+     gaps (exact int64 sums);
+  2. *thinning*: each candidate is kept with probability
+     :math:`\rho = p / (1 - e^{-\lambda}) \le 1` (close to 1), by comparing a
+     uniform revealed 64 bits at a time with rigorous rational bounds on
+     :math:`\rho` that are tightened until the comparison is certain.
+
+  Each zero cell then passes independently with probability exactly
+  :math:`(1 - e^{-\lambda})\rho = p`, hence the Binomial count and the uniform
+  subset. The expected number of gaps drawn is about :math:`n_0 p + 1`.
 * **Values of passing zero cells** follow :math:`Z` conditioned on
   :math:`Z \ge \theta`: :math:`P(Z = \theta + j \mid Z \ge \theta) =
   (1 - \alpha)\alpha^{j}`, i.e. :math:`\theta + G` with :math:`G` geometric
   on :math:`\{0, 1, \dots\}`, :math:`P(G \ge k) = \alpha^k` (memorylessness of
-  the geometric tail).
+  the geometric tail), drawn by the same exact geometric sampler.
 
 The rank of a passing cell among the zero cells is turned into its position in
 the whole table with one ``searchsorted`` over the sorted non-zero positions,
 so the zero cells are never enumerated.
 
-Randomness: every draw is a uniform of the caller's
-:class:`~aggpub.noise.sampler.RandomSource` (``os.urandom`` for a release),
-turned into geometrics by inversion, :math:`\lfloor \log U / \log q \rfloor`,
-exactly as in :func:`aggpub.noise.sampler.sample_discrete_laplace`; no
-pseudo-random generator is seeded from the source. The floating-point caveats
-of that sampler apply unchanged (events of probability below about
-:math:`2^{-52}` are truncated). The gaps are computed in binary64, which is
-exact for integer positions below :math:`2^{53}`; tables above that are
-refused. When :math:`p` underflows to 0 (below about :math:`10^{-308}`), no
-zero cell is kept.
+Exactness: every law above is the one of the mechanism's
+:attr:`~aggpub.noise.mechanisms.GeometricMechanism.rate` (:math:`\alpha =
+e^{-\mathrm{rate}}`), the same for zero and non-zero cells, and every random
+decision is made from the caller's
+:class:`~aggpub.noise.sampler.RandomSource` bytes (``os.urandom`` for a
+release) with exact integer or rational arithmetic; no floating-point value
+enters a decision (floats only size the batches). Nothing is truncated: a
+passing zero cell can take any value :math:`\ge \theta`, and a gap longer than
+the table simply ends the walk. Tables are limited to :math:`2^{53} - 1` cells
+(positions and cumulative sums stay far inside int64).
 
 References
 ----------
@@ -65,13 +75,24 @@ from __future__ import annotations
 __all__ = ["SparseCells", "pass_probability", "default_threshold", "sparse_threshold_release",
            "choose_method", "flat_to_pair", "MAX_CELLS"]
 
+import functools
 import math
 from dataclasses import dataclass
+from fractions import Fraction
 
 import numpy as np
 
 from .mechanisms import GeometricMechanism
-from .sampler import RandomSource, _geometric_chunk
+from .sampler import (
+    MIN_RATE,
+    RandomSource,
+    bernoulli_bounded,
+    ByteStream,
+    exp_neg_bounds,
+    geometric_exact,
+    one_minus_exp_neg_bounds,
+    dyadic_rate,
+)
 
 #: Largest table handled: positions must be exact integers in binary64.
 MAX_CELLS = 2 ** 53 - 1
@@ -143,35 +164,113 @@ def flat_to_pair(flat, n: int):
     return a.astype(np.int64), b.astype(np.int64)
 
 
-def _zero_cell_ranks(n_zero: int, p: float, source: RandomSource) -> np.ndarray:
-    """Ranks (0-based, increasing) of the zero cells that pass: each independently with probability ``p``.
+@functools.lru_cache(maxsize=256)
+def _pass_probability_bounds(threshold: int, s: int, k: int, bits: int) -> tuple[Fraction, Fraction]:
+    r"""Rigorous rational bounds on :math:`p = P(Z \ge \theta) = a^\theta / (1 + a)`, :math:`a = e^{-s/2^k}`.
 
-    Geometric skips: gap = failures before the next success, ``floor(log U / log(1 - p))``.
+    This is the pass probability of a zero cell under the law the sampler
+    actually draws (the mechanism's :attr:`~aggpub.noise.mechanisms.GeometricMechanism.rate`),
+    so that zero and non-zero cells see the same noise law.
     """
-    if n_zero == 0 or p <= 0.0:
+    rate = Fraction(s, 1 << k)
+    top_lo, top_hi = exp_neg_bounds(threshold * rate, bits + 4)
+    a_lo, a_hi = exp_neg_bounds(rate, bits + 4)
+    return top_lo / (1 + a_hi), top_hi / (1 + a_lo)
+
+
+@functools.lru_cache(maxsize=64)
+def _candidate_rate(threshold: int, s: int, k: int, bounds_fn) -> tuple[int, int]:
+    """A dyadic ``lam = s / 2**k >= MIN_RATE`` with ``1 - exp(-lam) >= p`` for sure.
+
+    ``p`` is bounded by ``bounds_fn(threshold, s, k, bits)`` (passed explicitly
+    so that the cache never mixes bound functions).
+
+    Starts just above ``-log(1 - p)`` (binary64) and steps up by ``2**-k`` until
+    the rigorous bounds confirm it; the thinning factor ``p / (1 - exp(-lam))``
+    is then at most 1 and, for ``lam`` near its target, close to 1.
+    """
+    _, p_hi = bounds_fn(threshold, s, k, 64)
+    guess = -math.log1p(-min(float(p_hi), 0.75)) * (1.0 + 2.0 ** -30)
+    lam_s, lam_k = dyadic_rate(max(Fraction(guess), MIN_RATE))
+    while one_minus_exp_neg_bounds(Fraction(lam_s, 1 << lam_k), 64)[0] < p_hi:
+        lam_s += 1
+    return lam_s, lam_k
+
+
+@dataclass(frozen=True)
+class _ZeroCellLaw:
+    """What decides a zero cell's fate: the threshold and the sampled rate ``s / 2**k``."""
+
+    threshold: int
+    s: int
+    k: int
+
+
+def _zero_cell_ranks(n_zero: int, law: _ZeroCellLaw, source: RandomSource) -> np.ndarray:
+    r"""Ranks (0-based, increasing) of the zero cells that pass: each independently with probability ``p``.
+
+    ``p = P(Z >= threshold)`` for the discrete Laplace law with
+    :math:`a = e^{-s/2^k}` (``law``).  Exact, in two steps:
+
+    1. *Candidates*: each zero cell is a candidate independently with
+       probability :math:`1 - e^{-\lambda}` for a dyadic :math:`\lambda` chosen
+       with :math:`1 - e^{-\lambda} \ge p` (:func:`_candidate_rate`).  The gap
+       before the next candidate is then geometric with
+       :math:`P(\mathrm{gap} \ge g) = e^{-\lambda g}`, a rate of the form the exact
+       sampler draws (:func:`aggpub.noise.sampler.geometric_exact`), so the
+       candidates are walked with exact skips.
+    2. *Thinning*: each candidate is kept with probability
+       :math:`\rho = p / (1 - e^{-\lambda}) \le 1`, by an exact Bernoulli
+       against rigorous rational bounds on :math:`\rho`
+       (:func:`aggpub.noise.sampler.bernoulli_bounded`).
+
+    A cell passes with probability :math:`(1 - e^{-\lambda})\rho = p`,
+    independently of the others (independent thinning of independent
+    Bernoulli trials).
+    """
+    if n_zero == 0:
         return np.empty(0, dtype=np.int64)
-    log_q = math.log1p(-p)  # < 0 since 0 < p < 1/2 (log1p keeps it accurate for tiny p)
+    threshold, s, k = law.threshold, law.s, law.k
+    bounds_fn = _pass_probability_bounds
+    p_bounds = lambda bits: bounds_fn(threshold, s, k, bits)  # noqa: E731
+    lam_s, lam_k = _candidate_rate(threshold, s, k, bounds_fn)
+    lam = Fraction(lam_s, 1 << lam_k)
+    q_bounds = lambda bits: one_minus_exp_neg_bounds(lam, bits)  # noqa: E731
+
+    def rho_bounds(bits):
+        p_lo, p_hi = p_bounds(bits + 8)
+        q_lo, q_hi = q_bounds(bits + 8)
+        return p_lo / q_hi, min(Fraction(1), p_hi / q_lo)
+
+    p_candidate = -math.expm1(-float(lam))
+    stream = ByteStream(source, 4096)
     out = []
-    pos = -1.0  # rank of the last passing cell found so far
-    limit = float(n_zero)
+    pos = -1  # rank of the last candidate found so far
     while True:
-        expected_left = (limit - pos) * p
-        m = int(min(max(_MIN_BATCH, 1.1 * expected_left + 6.0 * math.sqrt(expected_left + 1.0)), 1 << 22))
-        u = source.uniform(m)
-        u = np.asarray(u, dtype=np.float64)
-        if u.shape != (m,) or not bool(np.all((u > 0.0) & (u < 1.0))):
-            raise RuntimeError(f"{type(source).__name__}.uniform returned values outside the open interval (0, 1)")
-        gaps = np.floor(np.log(u) / log_q)
-        np.minimum(gaps, limit, out=gaps)  # any gap >= n_zero ends the walk; keeps sums finite and exact
-        gaps += 1.0
-        ranks = pos + np.cumsum(gaps)
-        inside = ranks < limit
-        n_in = int(np.count_nonzero(inside))  # ranks increase, so the inside ones are a prefix
-        out.append(ranks[:n_in].astype(np.int64))
+        expected_left = (n_zero - 1 - pos) * p_candidate
+        m = int(min(max(_MIN_BATCH, 1.1 * expected_left + 6.0 * math.sqrt(expected_left + 1.0)), 1 << 22,
+                    n_zero - pos))  # never more gaps than the cells left, plus one to leave the table
+        steps = geometric_exact(stream, lam_s, lam_k, m, cap=n_zero) + 1  # any gap >= n_zero ends the walk
+        # Exact int64 cumulative sums on a prefix that provably stays far from overflow: cut at the
+        # first step where the (float, relative error < 2**-30) running sum passes 2 * n_zero + 2.
+        cut = int(np.searchsorted(np.cumsum(steps, dtype=np.float64), 2.0 * n_zero + 2.0, side="left"))
+        ranks = pos + np.cumsum(steps[:cut + 1])
+        n_in = int(np.count_nonzero(ranks < n_zero))  # ranks increase, so the inside ones are a prefix
+        if n_in == ranks.size < m:  # the float cut is off by more than its proven error: cannot happen
+            raise RuntimeError("skip walk: prefix cut before leaving the table")
+        out.append(ranks[:n_in])
         if n_in < m:
             break
-        pos = float(ranks[-1])
-    return np.concatenate(out) if len(out) > 1 else out[0]
+        pos = int(ranks[-1])
+    candidates = np.concatenate(out) if len(out) > 1 else out[0]
+    keep = bernoulli_bounded(stream, rho_bounds, candidates.size)
+    return candidates[keep]
+
+
+def _zero_cell_values(threshold: int, rate: tuple[int, int], count: int, source: RandomSource) -> np.ndarray:
+    """Values of passing zero cells: ``threshold + G``, ``G`` exactly geometric, ``P(G >= j) = a**j``."""
+    s, k = rate
+    return threshold + geometric_exact(ByteStream(source, 64 * max(count, 1)), s, k, count)
 
 
 def sparse_threshold_release(nz_flat, nz_count, n_cells: int, mechanism: GeometricMechanism, threshold: int,
@@ -225,15 +324,17 @@ def sparse_threshold_release(nz_flat, nz_count, n_cells: int, mechanism: Geometr
     keep = noisy >= threshold
     kept_flat, kept_value = nz_flat[keep], noisy[keep]
 
-    # Zero cells: independent Bernoulli(p) selection by geometric skips, values from the conditional tail.
+    # Zero cells: exact independent Bernoulli(p) selection (candidates by exact geometric skips, then
+    # exact thinning), values from the conditional tail; all under the rate the sampler draws.
     n_zero = n_cells - len(nz_flat)
-    p = pass_probability(threshold, mechanism.log_alpha)
-    ranks = _zero_cell_ranks(n_zero, p, source)
+    rate = mechanism.rate
+    rate_sk = (rate.numerator, rate.denominator.bit_length() - 1)
+    ranks = _zero_cell_ranks(n_zero, _ZeroCellLaw(threshold, *rate_sk), source)
     k = len(ranks)
     if k:
         zeros_before = nz_flat - np.arange(len(nz_flat), dtype=np.int64)  # zero cells before each non-zero cell
         zero_flat = ranks + np.searchsorted(zeros_before, ranks, side="right")
-        zero_value = threshold + _geometric_chunk(mechanism.log_alpha, k, source)
+        zero_value = _zero_cell_values(threshold, rate_sk, k, source)
         flat = np.concatenate([kept_flat, zero_flat])
         value = np.concatenate([kept_value, zero_value])
         order = np.argsort(flat, kind="stable")

@@ -263,5 +263,5 @@ def post_process(run: StatisticsRun, sizes, *, people: int) -> None:
         fit = dest.fit_sorted_degrees(noisy, group, people, v_d)
         if totals is None:
             totals = np.maximum(z, 0.0)
-        target = np.clip(dest.degree_targets(fit, group, sizes, totals), 0.0, max(people - 1, 0))
+        target = dest.degree_targets(fit, group, sizes, totals, cap=max(people - 1, 0))
         run.tables["degree_sequences"] = seq.add_column(3, "degree_estimate", pa.array(target, type=pa.float64()))

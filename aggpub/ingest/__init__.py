@@ -24,107 +24,35 @@ naming the file and the row, line or column, never a value from the file):
   nested types are refused. An empty id, or one spelling a missing value
   (:data:`MISSING_ID_SPELLINGS`), is refused.
 * Weights must be finite and non-negative numbers; text weights are parsed.
+* A missing column names the columns found when they are column names (a
+  Parquet or Arrow schema, a CSV first line that reads as a header); a CSV first
+  line that may be data (a file without a header) is never quoted.
+
+Where the rules live: ``_files`` (file checks, format, CSV header, the missing-id
+spellings, the engine's :class:`~aggpub.engines.interface.Source`), ``_columns``
+(missing columns, id and weight types), ``_people`` (person checks and the dense
+ids, in Python over Arrow), ``_edges`` (edge checks and counts). The engine
+(:class:`aggpub.engines.Engine`) only reads, maps and counts in its own SQL: this
+package hands it plain values and words every message, the same for every engine.
 """
 
 from __future__ import annotations
 
-__all__ = ["Network", "IngestReport", "load_network", "load_policy_inputs", "policy_attributes", "policy_weight_column",
-           "file_format", "csv_header", "MISSING_ID_SPELLINGS"]
-
-from pathlib import Path
+__all__ = ["Network", "IngestReport", "load_network", "load_people", "load_policy_inputs", "policy_attributes",
+           "policy_weight_column", "file_format", "csv_header", "MISSING_ID_SPELLINGS"]
 
 import pyarrow as pa
 
-from .errors import InputError
-from .network import IngestReport, Network
-
-
-def file_format(path: Path) -> str:
-    """``'csv'``, ``'tsv'`` or ``'parquet'`` from the name, else from the first bytes."""
-    suffixes = [s.lower() for s in path.suffixes]
-    if suffixes and suffixes[-1] in (".parquet", ".pq"):
-        return "parquet"
-    if suffixes and suffixes[-1] == ".tsv":
-        return "tsv"
-    if suffixes and suffixes[-1] in (".csv", ".txt"):
-        return "csv"
-    try:
-        with open(path, "rb") as fh:
-            head = fh.read(4)
-    except OSError as exc:
-        raise InputError(f"{path}: cannot read ({exc.strerror})") from None
-    return "parquet" if head == b"PAR1" else "csv"
-
-
-#: id spellings treated as a missing id (what spreadsheet and dataframe exports write for an empty cell);
-#: compared after trimming spaces, case-insensitively
-MISSING_ID_SPELLINGS = ("", "nan", "na", "n/a", "null", "none")
-
-
-def csv_header(path: Path, delimiter: str) -> list[str]:
-    """Column names from the first line of a CSV or TSV file.
-
-    A UTF-8 byte-order mark is accepted (and dropped). The header must be UTF-8
-    and its names non-empty and distinct.
-
-    Raises
-    ------
-    InputError
-        The header is unreadable, not UTF-8, has an empty or a repeated name.
-    """
-    import csv
-
-    try:
-        with open(path, "rb") as fh:
-            head = b""
-            while b"\n" not in head and len(head) < (4 << 20):
-                block = fh.read(1 << 16)
-                if not block:
-                    break
-                head += block
-    except OSError as exc:
-        raise InputError(f"{path}: cannot read ({exc.strerror})") from None
-    line = head.split(b"\n", 1)[0].rstrip(b"\r")
-    try:
-        text = line.decode("utf-8-sig")
-    except UnicodeDecodeError as exc:
-        raise InputError(f"{path}: line 1 (the header) is not UTF-8 text (byte {exc.start + 1})") from None
-    if "\x00" in text:
-        raise InputError(f"{path}: line 1 (the header) contains a NUL byte; is this a text file?")
-    try:
-        names = next(csv.reader([text], delimiter=delimiter, quotechar='"'), [])
-    except csv.Error:
-        raise InputError(f"{path}: line 1 (the header) is not valid CSV") from None
-    if not names:
-        raise InputError(f"{path}: line 1 (the header) is empty")
-    seen = {}
-    for i, name in enumerate(names):  # no names in these messages: a headerless file's first line is data
-        if not name.strip():
-            raise InputError(f"{path}: header field {i + 1} has no name")
-        if name in seen:
-            raise InputError(f"{path}: header fields {seen[name] + 1} and {i + 1} have the same name")
-        seen[name] = i
-    return names
-
-
-def _check_input_path(path, what) -> Path:
-    path = Path(path)
-    if not path.exists():
-        raise InputError(f"{path}: {what} file not found")
-    if path.is_dir():
-        raise InputError(f"{path}: {what} path is a folder, expected a file")
-    try:
-        with open(path, "rb") as fh:
-            first = fh.read(1)
-    except OSError as exc:
-        raise InputError(f"{path}: cannot read {what} file ({exc.strerror})") from None
-    if not first:
-        raise InputError(f"{path}: {what} file is empty")
-    return path
+from ..engines import make_engine
+from ..errors import PolicyError
+from ..network import IngestReport, Network
+from ._edges import read_edges
+from ._files import MISSING_ID_SPELLINGS, check_input_path, csv_header, file_format, input_source
+from ._people import read_people
 
 
 def load_network(edges, people, *, source="source", target="target", node="node", weight=None,
-                 drop_unknown=False, attributes=None, engine=None, debug=False) -> Network:
+                 drop_unknown=False, attributes=None, engine=None, debug=False, show_counts=True) -> Network:
     """Read edges and person attributes into a :class:`Network`.
 
     Parameters
@@ -139,29 +67,55 @@ def load_network(edges, people, *, source="source", target="target", node="node"
         Drop edges naming people missing from the person table instead of failing.
     attributes : sequence of str, optional
         Attribute columns to keep (default: all but the id column).
-    engine : object, optional
-        A counting engine (default: a new embedded DuckDB engine).
+    engine : aggpub.engines.Engine, optional
+        A counting engine (default: a new embedded DuckDB engine). It keeps the
+        contacts; an earlier load's are replaced.
     debug : bool
         Allow private values (ids) in error messages.
+    show_counts : bool
+        Count the offending rows in refusals (off under unit ``person``, where the
+        number of people or contacts in any condition is a private figure).
 
     Returns
     -------
     Network
     """
-    from .engines import make_engine
-
+    edges = edges if isinstance(edges, pa.Table) else check_input_path(edges, "edge")
+    people = people if isinstance(people, pa.Table) else check_input_path(people, "person")
     if engine is None:
         engine = make_engine("duckdb")
-    edges_src = edges if isinstance(edges, pa.Table) else _check_input_path(edges, "edge")
-    people_src = people if isinstance(people, pa.Table) else _check_input_path(people, "person")
-    return engine.load(edges_src, people_src, source=source, target=target, node=node, weight=weight,
-                       drop_unknown=drop_unknown, attributes=attributes, debug=debug)
+    people_src = input_source(people, "person", debug)
+    persons = read_people(engine, people_src, node, attributes, show_counts)
+    counts = read_edges(engine, input_source(edges, "edge", debug), source_col=source, target_col=target,
+                        weight=weight, ids=persons.id_table, drop_unknown=drop_unknown, people_label=people_src.label,
+                        show_counts=show_counts)
+    n_people = len(persons.ids)
+    report = IngestReport(edge_rows=counts.rows, edges=counts.edges, self_loops_dropped=counts.self_loops,
+                          duplicate_rows_collapsed=counts.duplicates,
+                          unknown_person_rows_dropped=counts.unknown_person, person_rows=persons.rows,
+                          people=n_people, duplicate_person_rows_collapsed=persons.rows - n_people)
+    return Network(people=persons.attributes, n_people=n_people, n_edges=counts.edges, engine=engine, report=report,
+                   weighted=bool(weight), ids=persons.ids)
+
+
+def load_people(people, *, node="node", attributes=None, engine=None, debug=False) -> pa.Table:
+    """Read the person table alone (no edge is read): one row per person, attribute columns as text.
+
+    For the pre-flight under unit ``edge``, where the person table is public. The
+    same rules as :func:`load_network` (ids, repeated rows, conflicts).
+    """
+    people = people if isinstance(people, pa.Table) else check_input_path(people, "person")
+    own = engine is None
+    engine = engine or make_engine("duckdb")
+    try:
+        return read_people(engine, input_source(people, "person", debug), node, attributes).attributes
+    finally:
+        if own:
+            engine.close()
 
 
 def policy_weight_column(policy, given=None):
     """The edge weight column to read: ``components.weight_totals.column`` when weight totals are on."""
-    from .errors import PolicyError
-
     wt = policy.components.weight_totals
     if not wt.enabled:
         return given
@@ -196,4 +150,5 @@ def load_policy_inputs(policy, edges, people, *, source=None, target=None, node=
     return load_network(edges, people, source=source or inp.source, target=target or inp.target,
                         node=node or inp.node, weight=policy_weight_column(policy, weight or inp.weight),
                         drop_unknown=inp.drop_unknown if drop_unknown is None else drop_unknown,
-                        attributes=policy_attributes(policy), engine=engine, debug=debug)
+                        attributes=policy_attributes(policy), engine=engine, debug=debug,
+                        show_counts=debug or policy.privacy.unit != "person")

@@ -1,0 +1,99 @@
+"""The edge table: its checks, mapped through the id table and collapsed by the engine."""
+
+from __future__ import annotations
+
+__all__ = ["read_edges", "refuse_bad_edges"]
+
+import pyarrow as pa
+
+from ..engines.interface import EdgeColumns, EdgeCounts, RowCondition, Source
+from ..errors import InputError
+from ._columns import missing_column_error, require_id_type, require_weight_type
+from ._files import MISSING_ID_SPELLINGS
+
+
+def read_edges(engine, source: Source, *, source_col: str, target_col: str, weight: str | None, ids: pa.Table,
+               drop_unknown: bool, people_label: str, show_counts: bool = True) -> EdgeCounts:
+    """Check the edge input's columns, have ``engine`` map and collapse the edges, refuse bad rows, keep the rest.
+
+    Parameters
+    ----------
+    engine : aggpub.engines.Engine
+    source : Source
+    source_col, target_col : str
+        The id columns of the two ends.
+    weight : str or None
+        The weight column.
+    ids : pyarrow.Table
+        The id table (dense id contract, :mod:`aggpub.engines.interface`).
+    drop_unknown : bool
+        Drop rows naming people absent from the person table instead of refusing them.
+    people_label : str
+        How messages name the person input.
+
+    Returns
+    -------
+    EdgeCounts
+        The engine's counts; the contacts are published in the engine.
+
+    Raises
+    ------
+    InputError
+        A missing column, an id column of another type than integers or text,
+        a weight column that is not numeric, or anything :func:`refuse_bad_edges` refuses.
+    """
+    columns = engine.describe(source)
+    expected = [source_col, target_col] + ([weight] if weight else [])
+    options = {source_col: "--source-column or [input] source", target_col: "--target-column or [input] target",
+               weight: "--weight-column or [input] weight"}
+    for c in expected:
+        if c not in columns:
+            raise missing_column_error(source, c, columns, expected, "column", options.get(c, ""))
+    for c in (source_col, target_col):
+        require_id_type(source, c, columns[c])
+    if weight:
+        require_weight_type(source, weight, columns[weight])
+    spec = EdgeColumns(source=source_col, target=target_col, weight=weight, source_type=columns[source_col],
+                       target_type=columns[target_col], weight_type=columns[weight] if weight else None,
+                       missing_spellings=MISSING_ID_SPELLINGS)
+    counts = engine.stage_edges(source, spec, ids)
+    try:
+        refuse_bad_edges(engine, source.label, spec, counts, drop_unknown=drop_unknown, people_label=people_label,
+                         show_counts=show_counts)
+    except InputError:
+        engine.discard_staged_edges()
+        raise
+    engine.publish_staged_edges()
+    return counts
+
+
+def refuse_bad_edges(engine, label: str, spec: EdgeColumns, counts: EdgeCounts, *, drop_unknown: bool,
+                     people_label: str, show_counts: bool = True) -> None:
+    """Refuse an edge input without rows, with missing ids, unknown people, bad weights, or no contact left.
+
+    Each message names the first offending row (asked of the engine only on this
+    error path), never a value, and counts the rows unless ``show_counts`` is off
+    (unit ``person``, where such a count is a private figure).
+    """
+    def many(n):
+        return f"{n:,} " if show_counts else "some "
+
+    def first(condition):
+        row = engine.first_staged_row(condition)
+        return f" (first at data row {row})" if row else ""
+
+    if counts.rows == 0:
+        raise InputError(f"{label}: the edge table has no rows")
+    if counts.missing_id:
+        raise InputError(f"{label}: {many(counts.missing_id)}edge row(s) have an empty '{spec.source}' or "
+                         f"'{spec.target}' (or an id spelling a missing value: NaN, NA, null)"
+                         f"{first(RowCondition.MISSING_ID)}")
+    if counts.unknown_person and not drop_unknown:
+        raise InputError(f"{label}: {many(counts.unknown_person)}edge row(s) name people missing from {people_label}"
+                         f"{first(RowCondition.UNKNOWN_PERSON)} (use --drop-unknown to drop them)")
+    if spec.weight and counts.bad_weight:
+        raise InputError(f"{label}: {many(counts.bad_weight)}edge row(s) have an empty, unparseable, NaN, infinite "
+                         f"or negative '{spec.weight}'{first(RowCondition.BAD_WEIGHT)}")
+    if counts.edges == 0:
+        raise InputError(f"{label}: no contacts left after dropping self-loops"
+                         + (" and unknown people" if counts.unknown_person else ""))
