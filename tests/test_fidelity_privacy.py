@@ -16,6 +16,7 @@ from __future__ import annotations
 
 import itertools
 import math
+from fractions import Fraction
 
 import networkx as nx
 import numpy as np
@@ -189,7 +190,7 @@ def test_rungs_needed_leaves_out_less_than_two_to_the_minus_sixty():
 
 
 def test_tiny_networks_release_zero_triangles():
-    """With fewer than 3 people (public) no triangle exists: the release is 0, and it still draws its uniforms."""
+    """With fewer than 3 people (public) no triangle exists: the release is 0 (nothing private is read)."""
     src = SeededRandomSource(1)
     fields, spend, mech = release_triangle_count(TriangleTruth(count=0, second_degree=1, n_people=2), 0.5, src)
     assert fields == {"triangle_count": 0}
@@ -199,18 +200,21 @@ def test_tiny_networks_release_zero_triangles():
 # --------------------------------------------------------------------------- the sampler's law
 
 
+@pytest.mark.heavy
 def test_ladder_sampler_follows_its_exact_law():
-    """20,000 draws on the karate club (45 triangles, second largest degree 16, 34 people) at epsilon 1:
-    the frequency of every rung up to 8 (and beyond, pooled) against the exact law (chi-square), the two signs
-    equally likely, and the values inside rung 1 uniform."""
+    """8,000 draws on the karate club (45 triangles, second largest degree 16, 34 people) at epsilon 1 (rate
+    1/2 per rung, a dyadic: exact): the frequency of every rung up to 8 (and beyond, pooled) against the exact
+    law (chi-square), the two signs equally likely, and the values inside rung 1 uniform."""
     g = nx.karate_club_graph()
     q, n = _triangles(g), g.number_of_nodes()
     assert q == 45 and _second_degree(g) == 16
     eps = 1.0
     mech = LadderMechanism(epsilon=eps)
+    assert mech.rate == 0.5 and mech.effective_epsilon == eps
     I = ladder_widths(16, n, rungs_needed(n - 2, eps))
     src = SeededRandomSource(20261202)
-    draws = np.array([mech.sample(q, I, src) for _ in range(20_000)])
+    width = lambda t: np.minimum(16 + np.asarray(t), n - 2)  # noqa: E731
+    draws = np.array([mech.sample(q, width, n - 2, src) for _ in range(8_000)])
     rung = mech.rung_of(draws, q, I)
     w = mech.rung_weights(I)
     p = w / w.sum()
@@ -226,6 +230,13 @@ def test_ladder_sampler_follows_its_exact_law():
     inside = draws[rung == 1] - q
     counts = np.bincount(np.abs(inside) - 1 + I[0] * (inside > 0), minlength=2 * I[0])
     assert stats.chisquare(counts).pvalue > 1e-4
+
+
+def test_ladder_rate_is_dyadic_and_never_above_half_epsilon():
+    for eps in (0.1, 0.2, 1.0 / 3.0, 0.5, 2.0, 7.3):
+        mech = LadderMechanism(epsilon=eps)
+        assert mech.rate <= Fraction(eps) / 2 and mech.rate.denominator & (mech.rate.denominator - 1) == 0
+        assert mech.effective_epsilon <= eps and mech.effective_epsilon > eps * (1 - 1e-15)
 
 
 def test_a_release_publishes_the_ladder_output_and_never_its_widths():

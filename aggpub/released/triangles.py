@@ -57,7 +57,7 @@ import numpy as np
 from scipy import sparse
 
 from ..budget import Spend
-from ..noise.ladder import LadderMechanism, rungs_needed
+from ..noise.ladder import LadderMechanism
 
 #: Rows of the oriented adjacency multiplied at once (bounds the temporary memory).
 ROW_BATCH = 65_536
@@ -133,8 +133,7 @@ def release_triangle_count(truth: TriangleTruth, epsilon: float, source):
     cap = max(truth.n_people - 2, 0)
     if cap == 0:  # fewer than 3 people (public): no triangle can exist, nothing is read
         k = 0
-        source.uniform(3)  # the same draws as a release, so every release draws alike
     else:
-        widths = ladder_widths(truth.second_degree, truth.n_people, rungs_needed(cap, epsilon))
-        k = mech.sample(truth.count, widths, source)
+        k = mech.sample(truth.count, lambda t: np.minimum(truth.second_degree + np.asarray(t, np.int64), cap),
+                        cap, source)
     return {"triangle_count": int(k)}, Spend.of("triangle_count", mech), mech
