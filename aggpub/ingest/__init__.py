@@ -52,7 +52,8 @@ from ._people import read_people
 
 
 def load_network(edges, people, *, source="source", target="target", node="node", weight=None,
-                 drop_unknown=False, attributes=None, engine=None, debug=False) -> Network:
+                 drop_unknown=False, attributes=None, engine=None, debug=False, layer=None, layer_values=(),
+                 private_counts=False, on_refusal=None) -> Network:
     """Read edges and person attributes into a :class:`Network`.
 
     Parameters
@@ -72,6 +73,12 @@ def load_network(edges, people, *, source="source", target="target", node="node"
         contacts; an earlier load's are replaced.
     debug : bool
         Allow private values (ids) in error messages.
+    layer : str, optional
+        The edge column holding each contact's layer; ``layer_values`` its declared values in the order
+        of the one-layer rule (issue 13).
+    private_counts : bool
+        Refusals that depend on the contacts say no figure (unit ``person``); ``on_refusal()`` runs
+        before them (the pipeline charges the ledger).
 
     Returns
     -------
@@ -84,19 +91,29 @@ def load_network(edges, people, *, source="source", target="target", node="node"
     people_src = input_source(people, "person", debug)
     persons = read_people(engine, people_src, node, attributes)
     counts = read_edges(engine, input_source(edges, "edge", debug), source_col=source, target_col=target,
-                        weight=weight, ids=persons.id_table, drop_unknown=drop_unknown, people_label=people_src.label)
+                        weight=weight, ids=persons.id_table, drop_unknown=drop_unknown, people_label=people_src.label,
+                        layer=layer, layer_values=layer_values, private_counts=private_counts, on_refusal=on_refusal)
     n_people = len(persons.ids)
     report = IngestReport(edge_rows=counts.rows, edges=counts.edges, self_loops_dropped=counts.self_loops,
                           duplicate_rows_collapsed=counts.duplicates,
                           unknown_person_rows_dropped=counts.unknown_person, person_rows=persons.rows,
                           people=n_people, duplicate_person_rows_collapsed=persons.rows - n_people)
     return Network(people=persons.attributes, n_people=n_people, n_edges=counts.edges, engine=engine, report=report,
-                   weighted=bool(weight), ids=persons.ids)
+                   weighted=bool(weight), ids=persons.ids, layers=tuple(layer_values) if layer else ())
 
 
 def policy_weight_column(policy, given=None):
     """The edge weight column to read: ``components.weight_totals.column`` when weight totals are on."""
     wt = policy.components.weight_totals
+    cv = policy.components.contact_views
+    if cv.enabled and cv.weighted:  # issue 13: weighted views read the weight column too
+        if given and given != cv.column:
+            raise PolicyError(f"'components.contact_views.column' = '{cv.column}' differs from the weight column "
+                              f"given for input ('{given}'); name one column")
+        if wt.enabled and wt.column != cv.column:
+            raise PolicyError(f"'components.contact_views.column' = '{cv.column}' differs from "
+                              f"'components.weight_totals.column' = '{wt.column}'; name one column")
+        given = cv.column
     if not wt.enabled:
         return given
     if given and given != wt.column:
@@ -111,11 +128,14 @@ def policy_attributes(policy) -> list:
     gate_attr = policy.gate.contact_matrix_attribute
     if gate_attr and gate_attr not in attrs:
         attrs.append(gate_attr)
+    from ..policy import view_attributes
+
+    attrs += [a for a in view_attributes(policy) if a not in attrs]  # issue 13: the views' attributes
     return attrs
 
 
 def load_policy_inputs(policy, edges, people, *, source=None, target=None, node=None, weight=None,
-                       drop_unknown=None, engine=None, debug=False) -> Network:
+                       drop_unknown=None, engine=None, debug=False, on_refusal=None) -> Network:
     """Read the inputs of a release, sweep or plan the way ``policy`` says.
 
     Column options left as ``None`` come from the policy's ``[input]`` section;
@@ -130,4 +150,6 @@ def load_policy_inputs(policy, edges, people, *, source=None, target=None, node=
     return load_network(edges, people, source=source or inp.source, target=target or inp.target,
                         node=node or inp.node, weight=policy_weight_column(policy, weight or inp.weight),
                         drop_unknown=inp.drop_unknown if drop_unknown is None else drop_unknown,
-                        attributes=policy_attributes(policy), engine=engine, debug=debug)
+                        attributes=policy_attributes(policy), engine=engine, debug=debug,
+                        layer=policy.layers.column, layer_values=policy.layers.values,
+                        private_counts=policy.privacy.unit == "person", on_refusal=on_refusal)
