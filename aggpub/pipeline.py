@@ -210,7 +210,8 @@ def run_release(policy, edges, people, out, *, seed=None, overwrite=False, sourc
     eng = make_engine(engine, memory_limit=memory_limit, spill_parent=out.parent, progress=progress)
     try:
         network = load_policy_inputs(policy, edges, people, source=source, target=target, node=node,
-                                     weight=weight, drop_unknown=drop_unknown, debug=debug, engine=eng)
+                                     weight=weight, drop_unknown=drop_unknown, debug=debug, engine=eng,
+                                     on_refusal=ledger.charge if ledger is not None else None)
         for line in network.report.lines(private_counts=policy.privacy.unit != "person"):
             progress(line)
         preflight = preflight_gate(policy, network, progress)

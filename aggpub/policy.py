@@ -616,7 +616,9 @@ POLICY_KEYS: tuple[PolicyKey, ...] = (
         "explicit shares lists every component it wants: add this table with a `share` to release views "
         "there. Off by default for groupings without attributes.",
         "[components.contact_views]\nenabled = false\n",
-        default_doc="`true` when the grouping has attributes and no `components.*.share` is set; else `false`"),
+        default_doc="on (`true`) when there are views to release (the grouping has attributes, or `attributes` / "
+                    "`combinations` list some) and either this table sets a `share` or no other component does; "
+                    "else `false`"),
     PolicyKey(
         "components.contact_views", "share", "number", None, "share of `privacy.epsilon` spent on all views",
         "Split equally among the views (and their weighted variants). Without it the views take an equal part "
@@ -1264,6 +1266,10 @@ def _view_sections(top: "_Section", base_dir: Path) -> dict:
         out["layers"] = LayersPolicy(**_section_values(layers_sec, "layers", base_dir))
     domains_sec = top.section("domains")
     if domains_sec is not None:
+        for attr, spec in domains_sec.data.items():
+            if not isinstance(spec, Mapping):
+                raise PolicyError(f"unknown key 'domains.{attr}': [domains] holds one table per attribute, "
+                                  f"[domains.{attr}] with its 'values'")
         out["domains"] = {attr: _section_values(domains_sec.section(attr), "domains.<attribute>", base_dir)["values"]
                           for attr in domains_sec.data}
     return out
@@ -1306,8 +1312,8 @@ def _resolve_views(policy: "ReleasePolicy"):
     if v.attributes is None:
         object.__setattr__(v, "attributes", tuple(g.attributes))
     if v.enabled is None:  # the documented default: the plainest policy gets a view of every grouping attribute
-        object.__setattr__(v, "enabled", bool(v.attributes or v.combinations) and v.share is None
-                           and not explicit_shares)
+        object.__setattr__(v, "enabled", bool(v.attributes or v.combinations)
+                           and (v.share is not None or not explicit_shares))
     if not v.enabled:
         return
     attrs = _distinct_strings(v.attributes, "components.contact_views.attributes")
@@ -1325,18 +1331,18 @@ def _resolve_views(policy: "ReleasePolicy"):
     if not attrs and not combos:
         raise PolicyError("'components.contact_views': enabled but no view: list 'attributes' or 'combinations' "
                           "(the grouping has no attributes to default to)")
-    if policy.privacy.unit == "person":
+    if policy.privacy.unit == "person":  # (a grouping attribute's hierarchy is demanded by the grouping itself)
         for a in view_attributes(policy):
-            if a not in policy.domains and not (a in g.attributes and g.hierarchies.get(a)):
+            if a not in policy.domains and a not in g.attributes:
                 raise PolicyError(f"'components.contact_views': under unit 'person' the view attribute '{a}' needs "
                                   f"a declared domain: [domains.{a}] values, or the first level of "
                                   f"[grouping.hierarchies.{a}] (the values present in the data are private)")
 
 
 _VIEW_RULE_TEXT = ("`components.contact_views` is resolved first: `attributes` defaults to the grouping attributes; "
-                   "`enabled` defaults to true when the grouping has attributes and no `components.*.share` is "
-                   "set; combinations name two or more different attributes; under unit `person` every view "
-                   "attribute has a declared domain.")
+                   "`enabled` defaults to true when there are views to release and either the table sets a "
+                   "`share` or no other component does; combinations name two or more different attributes; under unit `person` every view "
+                   "attribute outside the grouping has a declared domain (`[domains.<attribute>]`).")
 # resolved before the rules that read `enabled` (shares of disabled components, shares adding up)
 POLICY_RULES.insert(next(i for i, r in enumerate(POLICY_RULES) if r.section == ""),
                     PolicyRule("", _VIEW_RULE_TEXT, _resolve_views))
@@ -1600,19 +1606,30 @@ levels = [
 enabled = true           # exact and free under unit "edge"
 
 [components.superedge_counts]
-share = 0.5              # half of epsilon: contacts within and between supernodes
+share = 0.4              # contacts within and between supernodes
 method = "auto"          # dense below 10 million cells, sparse above
 
 [components.degree_histograms]
 enabled = true
-share = 0.3
+share = 0.2
 max_degree = 40          # public cap; the top bin counts "40 or more"
 
 [components.weight_totals]
 enabled = true
-share = 0.2
+share = 0.1
 column = "minutes"       # contact duration
 clip = 120               # each contact counts for at most 120 minutes
+
+[components.contact_views]
+share = 0.3              # complete contact matrices, split equally among the three views
+attributes = ["age_band", "neighbourhood", "role"]
+
+[layers]
+column = "setting"       # the setting of each contact, matrices per setting
+values = ["household", "school", "work", "community"]   # a pair met in several settings counts in the first
+
+[domains.role]
+values = ["preschool", "pupil", "worker", "retired", "other"]
 
 [ledger]
 path = "quennet-vale.ledger"          # one ledger file per dataset, relative to this file

@@ -58,7 +58,8 @@ def test_grid_rows_and_truth_counted_once_per_grouping(town, monkeypatch):
     assert {(r["min_size"], r["epsilon"]) for r in res.rows} == {(k, e) for k in (20, 40) for e in (0.5, 1, 2, 4)}
     assert len(calls) == 2 and res.timings["groupings"] == 2  # edge unit, public grouping: once per min_size
     for r in res.rows:
-        assert r["noise_scale"] == pytest.approx(1.0 / r["epsilon"])  # edge unit, sensitivity 1, one component
+        # edge unit, sensitivity 1; issue 13: half of epsilon, the other half goes to the default views
+        assert r["noise_scale"] == pytest.approx(2.0 / r["epsilon"])
         assert r["draws"] == 2
 
 
@@ -132,7 +133,7 @@ def test_sweep_agrees_with_separate_releases(town, histograms):
     res = S.run_sweep(policy, network=network, epsilons=[1.0], min_sizes=[20], draws=6, seed=2)
     row = res.rows[0]
     assert row["degree_basis"] == ("histograms" if histograms else "block_model")
-    assert row["superedge_epsilon"] == pytest.approx(0.5 if histograms else 1.0)
+    assert row["superedge_epsilon"] == pytest.approx(1 / 3 if histograms else 0.5)  # issue 13: default views
     pol = S._policy_at(policy, "edge", 1.0, 20, None)
     figs = {"contact_matrix_median_relative_error": [], "degree_ks": [], "degree_wasserstein1": [],
             "superedge_mean_absolute_error": []}

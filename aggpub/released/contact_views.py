@@ -64,7 +64,7 @@ def view_domains(policy, people: pa.Table, on_refusal=None) -> dict:
             present = set(str(x) for x in pc.unique(col).to_pylist())
             levels = policy.grouping.hierarchies.get(a) or ({},)
             listed = [v for v in levels[0] if v in present]
-            out[a] = listed + sorted(present - set(listed))
+            out[a] = listed + sorted(present - set(listed), key=_natural_key)
             continue
         inside = pc.is_in(col, value_set=pa.array(domain, type=pa.string()))
         if not bool(pc.all(inside).as_py()):
@@ -80,6 +80,13 @@ def view_domains(policy, people: pa.Table, on_refusal=None) -> dict:
                               "hold another value")
         out[a] = domain
     return out
+
+
+def _natural_key(text: str):
+    """Sort key reading runs of digits as numbers (``5-9`` before ``10-14``)."""
+    import re
+
+    return [(0, int(t), "") if t.isdigit() else (1, 0, t) for t in re.findall(r"\d+|\D+", str(text))]
 
 
 def _value_names(name: str, domains: dict) -> list:
