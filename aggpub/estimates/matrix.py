@@ -1059,7 +1059,7 @@ def contact_matrix(supernodes: pa.Table, superedges, views, attribute: str, *, d
     out[quantity] = pa.array(flat)
     out[f"{quantity}_clamped"] = pa.array(np.maximum(flat, 0.0))
     out["lower"] = pa.array(np.maximum(flat - hw.reshape(-1), 0.0))
-    out["upper"] = pa.array(flat + hw.reshape(-1))
+    out["upper"] = pa.array(np.maximum(flat + hw.reshape(-1), 0.0))  # the truth is >= 0: never an empty interval
     out["noise_sd"] = pa.array(np.sqrt(np.maximum(var.reshape(-1), 0.0)))
     if per_person:
         if noisy_people:
@@ -1067,7 +1067,7 @@ def contact_matrix(supernodes: pa.Table, superedges, views, attribute: str, *, d
         else:
             p_hw = np.zeros(k)
         lo_c = np.maximum(flat - hw_level.reshape(-1), 0.0)
-        hi_c = flat + hw_level.reshape(-1)
+        hi_c = np.maximum(flat + hw_level.reshape(-1), 0.0)
         rate = cols["per_person"]
         diag = np.tile(np.where(a_idx == b_idx, 2.0, 1.0), rows)
         for side, idx in (("a", np.tile(a_idx, rows)), ("b", np.tile(b_idx, rows))):
@@ -1108,7 +1108,7 @@ def _by_labels(supernodes, superedges, attribute, cols, quantity, confidence):
     out = {"value_a": pa.array(cats[a_idx[keep]].astype(object), pa.string()),
            "value_b": pa.array(cats[b_idx[keep]].astype(object), pa.string()),
            quantity: pa.array(est), f"{quantity}_clamped": pa.array(np.maximum(est, 0.0)),
-           "lower": pa.array(np.maximum(est - hw, 0.0)), "upper": pa.array(est + hw),
+           "lower": pa.array(np.maximum(est - hw, 0.0)), "upper": pa.array(np.maximum(est + hw, 0.0)),
            "noise_sd": pa.array(np.sqrt(n_cells[keep] * _dl_variance(fine.scale)))}
     meta = {"method": "supernodes", "interval_method": "exact", "confidence": str(confidence)}
     return pa.table(out).replace_schema_metadata(meta)
