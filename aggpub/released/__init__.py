@@ -36,6 +36,7 @@ class _Context:
     sizes: np.ndarray  # public or already-released supernode sizes
     source: object
     progress: Callable
+    budget: object = None  # the release's budget (a statistic of several spends splits its share against it)
 
 
 @dataclass(frozen=True)
@@ -171,7 +172,7 @@ def release_statistics(network, grouping, policy, sizes, epsilons: dict, source,
     StatisticsRun
     """
     ctx = _Context(network=network, grouping=grouping, policy=policy, sizes=sizes, source=source,
-                   progress=progress)
+                   progress=progress, budget=budget)
     unit, D = policy.privacy.unit, policy.privacy.max_contacts
     run = StatisticsRun()
     for stat in STATISTICS:

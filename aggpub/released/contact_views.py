@@ -137,6 +137,24 @@ def count_contact_views(ctx, option, on_refusal=None):
     return truth, extra
 
 
+def _split_within(epsilon: float, parts: int, spent: float) -> list:
+    """``epsilon`` in equal parts whose running sum after ``spent`` (as the budget adds them, one by one)
+    never passes ``spent + epsilon``: the views never take more than their share through rounding."""
+    import math
+
+    out = equal_split(epsilon, parts)
+
+    def running(ps):
+        x = spent
+        for p in ps:
+            x += p
+        return x
+
+    while running(out) > spent + epsilon:
+        out[-1] = math.nextafter(out[-1], 0.0)
+    return out
+
+
 def _people_from_fine_cells(grouping, policy, name, domains):
     """People per value of a view of grouping attributes under unit ``person``: sums of noisy fine cells."""
     labels, counts = grouping.noisy_fine_cells
@@ -173,7 +191,7 @@ def release_contact_views(ctx, truth, option, epsilon: float):
     if option.weighted:
         jobs += [("contact_view_weights", n) for n in names]
     jobs += [("view_people", n) for n in own_people]
-    parts = equal_split(epsilon, len(jobs))
+    parts = _split_within(epsilon, len(jobs), ctx.budget.spent() if ctx.budget is not None else 0.0)
     sens = {"contact_views": sensitivity(unit, "contact_views", d_cap),
             "contact_view_weights": (sensitivity(unit, "contact_view_weights", d_cap, option.clip)
                                      if option.weighted else None),
