@@ -51,7 +51,7 @@ def _complete_levels(domain, levels):
 
 def contact_matrix(release, by: str, *, layer: str | None = None, per_person: bool = False, weight: bool = False,
                    confidence: float = 0.95, method: str = "consistent", draws: int = 2000,
-                   seed=None) -> pa.Table:
+                   seed=None, every_layer: bool = False) -> pa.Table:
     """The contact matrix of a released view, with intervals.
 
     Parameters
@@ -81,6 +81,8 @@ def contact_matrix(release, by: str, *, layer: str | None = None, per_person: bo
         Monte Carlo draws of the noise law (``consistent``).
     seed : int, optional
         For the Monte Carlo draws only (post-processing; OS entropy by default).
+    every_layer : bool
+        One row per value pair and layer, every layer at once (instead of ``layer``).
 
     Returns
     -------
@@ -118,6 +120,8 @@ def contact_matrix(release, by: str, *, layer: str | None = None, per_person: bo
         raise UsageError(f"no view '{by}' in the release; released views: {', '.join(released)}")
     domains = manifest.get("view_domains") or {}
     layers = matrix_layers(release) or None
+    if every_layer and (layer is not None or layers is None):
+        raise UsageError("'every_layer' needs a layered release and no 'layer'")
     if layer is not None and (layers is None or layer not in layers):
         raise UsageError(f"no layer '{layer}' in the release; layers: {', '.join(layers or ['(none)'])}")
     supernodes = tables["supernodes"]
@@ -130,7 +134,8 @@ def contact_matrix(release, by: str, *, layer: str | None = None, per_person: bo
         raise BundleError(f"the release has no people per value of view '{name}' (a combination with an attribute "
                           "outside the grouping under unit 'person'): per-person rates are not available")
     quantity = "weight_total" if weight else "contacts"
-    kw = dict(domains=domains, layers=layers, hierarchies=hierarchies, people=people, by_layer=layer is not None,
+    kw = dict(domains=domains, layers=layers, hierarchies=hierarchies, people=people,
+              by_layer=layer is not None or every_layer,
               per_person=per_person, quantity=quantity, confidence=confidence, draws=draws, seed=seed)
     note = fine_note
     try:
@@ -143,7 +148,7 @@ def contact_matrix(release, by: str, *, layer: str | None = None, per_person: bo
         note = f"least squares not run ({exc}); the raw view"
     if layer is not None:
         out = out.filter(pc.equal(out.column("layer"), layer))
-    else:
+    elif not every_layer:
         out = out.add_column(2, "layer", pa.array(["all"] * out.num_rows, pa.string()))
     meta = {k.decode(): v.decode() for k, v in (out.schema.metadata or {}).items()}
     meta.update(view=name, note=note or "", quantity=quantity, privacy_unit=str(manifest.get("privacy_unit")),
