@@ -74,7 +74,7 @@ from __future__ import annotations
 
 __all__ = ["FineTable", "ViewRelease", "ConsistentEstimate", "consistent_estimates", "possible_values_from_labels",
            "possible_values_from_people", "contact_matrix", "contact_matrix_square", "RESIDUAL",
-           "MAX_VIEW_CELLS", "MAX_BLOCK_ATOMS", "MAX_EXACT_GROUPS"]
+           "MAX_VIEW_CELLS", "MAX_BLOCK_ATOMS", "MAX_EXACT_GROUPS", "MAX_GROUP_DIRECTIONS"]
 
 import math
 from dataclasses import dataclass
@@ -96,6 +96,9 @@ MAX_VIEW_CELLS = 6000
 MAX_BLOCK_ATOMS = 6000
 #: Groups of supernode cells whose noise sums the Monte Carlo draws exactly (the rest: Gaussian).
 MAX_EXACT_GROUPS = 2000
+#: Largest (groups of supernode cells) x (view directions) combined with the supernode table (dense
+#: arrays of that size are built: 20 million doubles, 160 MB); above, only the views are combined.
+MAX_GROUP_DIRECTIONS = 20_000_000
 
 
 def _dl_variance(scale: float) -> float:
@@ -684,6 +687,9 @@ def consistent_estimates(possible, views, fine: FineTable | None = None, n_layer
         n_m = np.bincount(m_inv, weights=n_g)
         y_m = np.bincount(m_inv, weights=y_g)
         mb = group_base[m_first]
+        if len(mb) * max(k0, 1) > MAX_GROUP_DIRECTIONS:  # dense (groups x directions) arrays below
+            raise ValueError(f"{len(mb):,} groups of supernode cells x {k0:,} view directions is more than "
+                             f"{MAX_GROUP_DIRECTIONS:,}: combine the views without the supernode table")
         merged_p = sparse.csr_matrix((np.ones(mb.size), (np.repeat(np.arange(len(mb)), mb.shape[1]),
                                                          mb.reshape(-1))), shape=(len(mb), n_base))
         pz = (merged_p @ z0) if k0 else np.zeros((len(mb), 0))    # groups x k0

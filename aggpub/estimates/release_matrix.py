@@ -138,14 +138,28 @@ def contact_matrix(release, by: str, *, layer: str | None = None, per_person: bo
               by_layer=layer is not None or every_layer,
               per_person=per_person, quantity=quantity, confidence=confidence, draws=draws, seed=seed)
     note = fine_note
+    if method == "consistent":  # public sizes decide how much of the least squares is affordable
+        plan = _plan(supernodes, superedges, released, domains, hierarchies)
+        if plan == "views" and superedges is not None:
+            superedges, note = None, ("the supernode table was left out of the least squares (too many groups of "
+                                      "supernode cells for the dense solver); the views alone")
+        elif plan == "raw":
+            method, note = "view", ("least squares not run (more than "
+                                    f"{MAX_LS_SUPERNODE_CELLS:,} supernode cells); the raw view")
     try:
         out = _matrix(supernodes, superedges if method == "consistent" else None, views, name, method=method,
                       **kw)
-    except ValueError as exc:  # too many view cells or atoms for the dense least squares
+    except ValueError as exc:  # too large for the dense least squares (sizes of public tables and labels)
         if method != "consistent":
             raise BundleError(f"view '{name}': {exc}") from None
-        out = _matrix(supernodes, None, views, name, method="view", **kw)
-        note = f"least squares not run ({exc}); the raw view"
+        try:  # the views alone (consistent with each other), then the raw view
+            if superedges is None:
+                raise
+            out = _matrix(supernodes, None, views, name, method="consistent", **kw)
+            note = f"the supernode table was left out of the least squares ({exc}); the views alone"
+        except ValueError as exc2:
+            out = _matrix(supernodes, None, views, name, method="view", **kw)
+            note = f"least squares not run ({exc2}); the raw view"
     if layer is not None:
         out = out.filter(pc.equal(out.column("layer"), layer))
     elif not every_layer:
@@ -154,6 +168,42 @@ def contact_matrix(release, by: str, *, layer: str | None = None, per_person: bo
     meta.update(view=name, note=note or "", quantity=quantity, privacy_unit=str(manifest.get("privacy_unit")),
                 epsilon_total=str(manifest.get("epsilon_total")), seeded=str(bool(manifest.get("seeded"))))
     return out.replace_schema_metadata(meta)
+
+
+#: Above this many supernode cells whose groups are too many to combine, the raw view is read (least squares
+#: over the views alone still scans every cell).
+MAX_LS_SUPERNODE_CELLS = 1_000_000
+
+
+def _plan(supernodes, superedges, views, domains, hierarchies) -> str:
+    """``full``, ``views`` (leave the supernode table out) or ``raw``, from public sizes only.
+
+    The least squares builds dense arrays of (groups of interchangeable supernode cells) x (view
+    directions); the groups are at most the product over the viewed attributes of the pairs of supernode
+    *kinds* (distinct sets of allowed values, from the labels), and at most the number of cells.
+    """
+    from .matrix import MAX_GROUP_DIRECTIONS, possible_values_from_labels
+
+    g = supernodes.num_rows
+    cells = g * (g + 1) // 2
+    attrs = list(dict.fromkeys(a for v in views for a in v.split(",")))
+    bound, directions = 1.0, 0
+    for v in views:
+        k = 1
+        for a in v.split(","):
+            k *= len(domains.get(a, ()))
+        directions += k * (k + 1) // 2
+    for a in attrs:
+        if a in supernodes.column_names:
+            poss = possible_values_from_labels(supernodes.column(a).to_pylist(), domains[a], hierarchies.get(a))
+            kinds = len(np.unique(poss, axis=0))
+        else:
+            kinds = 1
+        bound *= kinds * (kinds + 1) / 2
+    groups = min(float(cells), bound)
+    if groups * max(directions, 1) <= MAX_GROUP_DIRECTIONS:
+        return "full"
+    return "raw" if cells > MAX_LS_SUPERNODE_CELLS else "views"
 
 
 def _fine_table(tables, manifest, weight):
