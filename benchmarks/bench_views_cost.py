@@ -46,17 +46,27 @@ def _run(cmd, env=None):
     return took, res.stdout + res.stderr
 
 
+#: Progress lines (their start) -> stage name; a stage lasts until the next progress line.
+STAGES = (("reading edges", "ingest"), ("grouping people", "grouping"), ("counting superedges", "count superedges"),
+          ("adding noise to 2,", "noise superedges"), ("counting contact views", "count views"),
+          ("adding noise to 2 contact", "noise views, manifest, gate"), ("auditing the release", "audit start"),
+          ("audit: degree", "audit degrees"), ("audit: query", "audit workloads"), ("audit: 3 fresh", "audit MC"),
+          ("audit: contact views", "audit views"), ("audit: structure", "audit structure"),
+          ("drawing the figures", "report"), ("confidential report written", "report written"),
+          ("writing bundle", "bundle"))
+
+
 def _stages(log: str) -> dict:
     """Seconds between progress lines (the Progress printer stamps each line with its elapsed time)."""
     stamps = [(float(m.group(1)), m.group(2)) for m in re.finditer(r"^\[\s*([\d.]+)s\]\s*(.*)$", log, flags=re.M)]
     out = {}
     for (t0, what), (t1, _) in zip(stamps, stamps[1:]):
-        for key, pattern in (("count views", "counting contact views"), ("noise views", "contact view"),
-                             ("audit views", "audit: contact views"), ("audit", "auditing the release"),
-                             ("count superedges", "counting superedges")):
-            if what.startswith(pattern) or (key == "noise views" and what.startswith("adding noise to")
-                                           and pattern in what):
+        for pattern, key in STAGES:
+            if what.startswith(pattern):
                 out[key] = out.get(key, 0.0) + (t1 - t0)
+                break
+    if not ("adding noise to 2 contact" in log):  # without views the gate follows the superedges' noise
+        pass
     return out
 
 
@@ -96,10 +106,12 @@ def main(argv=None):
         print(f"  {name:16s} {min(times):7.1f}  {min(times) / base:5.2f}x")
     added = min(results["release"]) - min(results["release-noviews"])
     print(f"  views add {added:.1f} s to the whole release ({added / base:.2f}x the bare GROUP BY)")
-    for name in ("release", "release-noviews"):
-        keys = sorted({k for s in stages[name] for k in s})
-        text = ", ".join(f"{k} {min(s.get(k, 0.0) for s in stages[name]):.1f}s" for k in keys)
-        print(f"  stages of {name} (best of runs): {text}")
+    print("  stages (best of runs, seconds):      with views   without")
+    for _, key in STAGES:
+        a = [s.get(key) for s in stages["release"] if s.get(key) is not None]
+        b = [s.get(key) for s in stages["release-noviews"] if s.get(key) is not None]
+        if a or b:
+            print(f"    {key:32s} {min(a) if a else float('nan'):10.1f} {min(b) if b else float('nan'):9.1f}")
 
 
 if __name__ == "__main__":
