@@ -611,3 +611,61 @@ def test_audit_reports_the_views_and_decides_nothing(tmp_path):
     html = render_html(audit)
     assert "3b. Contact matrices by attribute (views)" in html and 'alt="true and released contact matrices"' in html
     assert "decides" in audit and "decide nothing" in audit["decides"]
+
+
+def _rehash(path):
+    """Update every SHA-256 and the manifest's own digest (a careful forger): only the invariants catch it."""
+    import json
+
+    from aggpub.bundle._files import MANIFEST, manifest_digest, sha256_file
+
+    m = json.loads((path / MANIFEST).read_text())
+    m["files"] = {name: sha256_file(path / name) for name in m["files"]}
+    m["manifest_sha256"] = manifest_digest(m)
+    (path / MANIFEST).write_text(json.dumps(m, indent=2, sort_keys=True) + "\n")
+
+
+@pytest.mark.parametrize("damage", ["drop_row", "clamped", "scale", "people"])
+def test_check_finds_a_damaged_view_table(tmp_path, damage):
+    """``aggpub check`` verifies the views against the manifest: every (layer, value pair) cell once, the
+    clamped column, the noise scale of the spend, and exact people adding up to the sizes under unit edge."""
+    import shutil
+
+    import pyarrow.parquet as pq
+
+    from aggpub.bundle import check_bundle
+    from aggpub.bundle.write import PARQUET_META_KEY
+    from aggpub.pipeline import publish
+
+    G, rows = _graph("karate")
+    people = pa.table({"node": [f"n{n}" for n in G.nodes()], "band": [G.nodes[n]["band"] for n in G.nodes()]})
+    edges = pa.table({"source": [f"n{a}" for a, _, _ in rows], "target": [f"n{b}" for _, b, _ in rows],
+                      "setting": [LAYERS[lay] for _, _, lay in rows]})
+    r = release_tables(edges, people, {"privacy": {"epsilon": 1.0}, "grouping": {"attributes": ["band"],
+                                       "min_size": 5}, "layers": {"column": "setting", "values": list(LAYERS[:3])}},
+                       seed=1)
+    path = publish(r, tmp_path / "b")
+    assert check_bundle(path).ok
+    stem = "view_people" if damage == "people" else "contact_views"
+    t = pq.read_table(path / f"{stem}.parquet")
+    meta = t.schema.metadata
+    if damage == "drop_row":
+        t = t.slice(1)
+    elif damage == "clamped":
+        t = t.set_column(4, "contacts", pa.array(np.asarray(t.column("contacts").to_numpy()) + 1))
+    elif damage == "scale":
+        t = t.set_column(6, "noise_scale", pa.array(np.asarray(t.column("noise_scale").to_numpy()) * 0.5))
+    else:
+        t = t.set_column(2, "people", pa.array(np.asarray(t.column("people").to_numpy()) + 1))
+    pq.write_table(t.replace_schema_metadata(meta), path / f"{stem}.parquet")
+    assert meta and PARQUET_META_KEY in meta
+    if damage == "drop_row":  # the manifest's row count would catch it first: keep it in step
+        import json
+
+        m = json.loads((path / "manifest.json").read_text())
+        m["rows"][stem] = t.num_rows
+        (path / "manifest.json").write_text(json.dumps(m, indent=2, sort_keys=True) + "\n")
+    _rehash(path)
+    res = check_bundle(path)
+    assert not res.ok and any(stem in p for p in res.problems), res.problems
+    shutil.rmtree(path)
