@@ -34,7 +34,7 @@ def test_minimal_policy(tmp_path):
     assert p.privacy.unit == "edge" and p.privacy.epsilon == 1.0
     assert p.grouping.attributes == ("age_band", "district")
     assert p.grouping.merge_order == ("district", "age_band")
-    assert epsilon_shares(p) == {"superedge_counts": 1.0}
+    assert epsilon_shares(p) == {"superedge_counts": 0.5, "contact_views": 0.5}  # issue 13: views by default
 
 
 @pytest.mark.parametrize("text, key", [

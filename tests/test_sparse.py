@@ -347,7 +347,7 @@ def test_auto_switches_at_sparse_above_cells():
     assert auto.manifest["superedges_sparse"] is True
     # default threshold rule: expected chance cells at most one per supernode
     t = auto.manifest["superedges_sparse_threshold"]
-    assert t == sparse.default_threshold(820, 40, -1.0)
+    assert t == sparse.default_threshold(820, 40, -0.5)  # issue 13: half of epsilon beside the default views
 
 
 def test_check_flags_sparse_rows_below_the_threshold():

@@ -36,6 +36,7 @@ class _Context:
     sizes: np.ndarray  # public or already-released supernode sizes
     source: object
     progress: Callable
+    budget: object = None  # the release's budget (a statistic of several spends splits its share against it)
 
 
 @dataclass(frozen=True)
@@ -103,6 +104,26 @@ def _release_weights(ctx, truth, option, eps, sens, extra):
     return release_weight_totals(truth, ctx.sizes, option.clip, eps, sens, ctx.source)
 
 
+def _count_views(ctx, option, eps, sens):
+    from .contact_views import count_contact_views
+
+    return count_contact_views(ctx, option)
+
+
+def _release_views(ctx, truth, option, eps, sens, extra):
+    from .contact_views import release_contact_views
+
+    return release_contact_views(ctx, truth, option, eps)
+
+
+def _describe_views(ctx, truth, eps, sens, extra):
+    cells = sum(int(t.size) for t in truth["counts"].values())
+    layers = f" over {len(ctx.network.layers)} layers" if ctx.network.layers else ""
+    return (f"adding noise to {len(truth['counts'])} contact view(s){layers}, {cells:,} cells"
+            f"{' and their weight totals' if 'weights' in truth else ''} (epsilon {eps:g} in all, sensitivity "
+            f"{sens:g} each)")
+
+
 #: The statistics a release can hold, in the order they are counted and noised.
 STATISTICS = (
     Statistic("superedge_counts", "superedges", "counting superedges", _count_superedges, _release_superedges,
@@ -113,6 +134,9 @@ STATISTICS = (
     Statistic("weight_totals", "weight_totals", "summing clipped weights per superedge", _count_weights, _release_weights,
               lambda ctx, t, eps, sens, extra: f"adding noise to {len(t.count):,} weight totals "
                                                f"(epsilon {eps:g}, sensitivity {sens:g})"),
+    # issue 13: views by attribute (several tables and spends: aggpub.released.contact_views)
+    Statistic("contact_views", "contact_views", "counting contact views", _count_views, _release_views,
+              _describe_views),
 )
 
 
@@ -148,7 +172,7 @@ def release_statistics(network, grouping, policy, sizes, epsilons: dict, source,
     StatisticsRun
     """
     ctx = _Context(network=network, grouping=grouping, policy=policy, sizes=sizes, source=source,
-                   progress=progress)
+                   progress=progress, budget=budget)
     unit, D = policy.privacy.unit, policy.privacy.max_contacts
     run = StatisticsRun()
     for stat in STATISTICS:
@@ -163,8 +187,9 @@ def release_statistics(network, grouping, policy, sizes, epsilons: dict, source,
         run.manifest.update(extra)
         progress(stat.describe(ctx, truth, eps, sens, extra))
         table, spend, mech = stat.release(ctx, truth, option, eps, sens, extra)
-        budget.spend(spend)
-        run.spends.append(spend)
-        run.tables[stat.table] = table
-        run.mechanisms[stat.name] = mech
+        for one in (spend if isinstance(spend, list) else [spend]):  # a statistic of several tables and spends
+            budget.spend(one)
+            run.spends.append(one)
+        run.tables.update(table if isinstance(table, dict) else {stat.table: table})
+        run.mechanisms.update(mech if isinstance(mech, dict) else {stat.name: mech})
     return run
