@@ -1,4 +1,8 @@
-"""Scale benchmark (issue 6, and the performance part of issue 2).
+"""Tool comparison at scale (issue 6, and the performance part of issue 2).
+
+This was ``bench_scale.py`` until issue 15 (``benchmarks/results/scale-2026-12-02.txt``
+is its output); ``bench_scale.py`` now reproduces issue 15's table, and this script
+keeps the comparison with other tools and with the Spark engine.
 
 Times whole processes, each in its own subprocess, on generated graphs of 1M,
 10M and 100M edges (people = edges / 10, about 2,000 attribute cells; see
@@ -29,8 +33,8 @@ fine for timing) so the DuckDB and Spark bundles can be compared cell by cell.
 
 Usage::
 
-    python benchmarks/bench_scale.py --sizes 1M,10M
-    python benchmarks/bench_scale.py --sizes 1M,10M,100M --memory-limit 2500MB --spark-max 10M
+    python benchmarks/bench_tools.py --sizes 1M,10M
+    python benchmarks/bench_tools.py --sizes 1M,10M,100M --memory-limit 2500MB --spark-max 10M
 """
 
 from __future__ import annotations
@@ -38,19 +42,17 @@ from __future__ import annotations
 import argparse
 import json
 import math
-import os
-import re
 import shutil
 import subprocess
 import sys
 import tempfile
-import threading
 import time
 from pathlib import Path
 
 HERE = Path(__file__).resolve().parent
 sys.path.insert(0, str(HERE))
 
+from _procs import progress_lines, run_child  # noqa: E402
 from gen_graph import generate, parse_size, size_label  # noqa: E402
 
 BARE_DUCKDB = r"""
@@ -103,93 +105,6 @@ print(f"cells={Q.number_of_edges() + Q.number_of_nodes()}")
 """
 
 
-def _tree_rss_kb(pid: int) -> int:
-    """Resident memory (kB) summed over a process and its descendants, from /proc."""
-    total, stack, seen = 0, [pid], set()
-    while stack:
-        p = stack.pop()
-        if p in seen:
-            continue
-        seen.add(p)
-        try:
-            with open(f"/proc/{p}/status") as fh:
-                for line in fh:
-                    if line.startswith("VmRSS:"):
-                        total += int(line.split()[1])
-                        break
-            for task in os.listdir(f"/proc/{p}/task"):
-                with open(f"/proc/{p}/task/{task}/children") as fh:
-                    stack.extend(int(x) for x in fh.read().split())
-        except (OSError, ValueError):
-            continue
-    return total
-
-
-def _spill_bytes(folder) -> int:
-    """Bytes in the engines' spill folders (``.aggpub-spill-*``) directly under ``folder``."""
-    total = 0
-    if folder is None:
-        return 0
-    for spill in Path(folder).glob(".aggpub-spill-*"):
-        for root, _, files in os.walk(spill):
-            for f in files:
-                try:
-                    total += os.path.getsize(os.path.join(root, f))
-                except OSError:
-                    pass
-    return total
-
-
-def run_child(cmd, *, timeout=None, env=None, log=None, spill_dir=None):
-    """Run ``cmd``; return (seconds, ru_maxrss MB, sampled tree peak MB, exit code, stdout, stderr).
-
-    With ``spill_dir``, the peak size of the spill folders there is kept in ``run_child.spill_peak_mb``.
-    """
-    out = tempfile.TemporaryFile()
-    err = tempfile.TemporaryFile()
-    t0 = time.perf_counter()
-    proc = subprocess.Popen(cmd, stdout=out, stderr=err, env=env, start_new_session=True)
-    peak = [0]
-    spill = [0]
-    done = threading.Event()
-
-    def sample():
-        while not done.is_set():
-            peak[0] = max(peak[0], _tree_rss_kb(proc.pid))
-            if spill_dir is not None:
-                spill[0] = max(spill[0], _spill_bytes(spill_dir))
-            done.wait(0.25)
-
-    sampler = threading.Thread(target=sample, daemon=True)
-    sampler.start()
-    timed_out = False
-    deadline = None if timeout is None else t0 + timeout
-    while True:
-        pid, status, usage = os.wait4(proc.pid, os.WNOHANG)
-        if pid:
-            break
-        if deadline is not None and time.perf_counter() > deadline:
-            timed_out = True
-            os.killpg(proc.pid, 9)
-            pid, status, usage = os.wait4(proc.pid, 0)
-            break
-        time.sleep(0.05)
-    seconds = time.perf_counter() - t0
-    done.set()
-    sampler.join()
-    proc.returncode = os.waitstatus_to_exitcode(status)
-    try:  # leftover grandchildren (a JVM) of this session
-        os.killpg(proc.pid, 9)
-    except OSError:
-        pass
-    out.seek(0)
-    err.seek(0)
-    stdout, stderr = out.read().decode(errors="replace"), err.read().decode(errors="replace")
-    code = "timeout" if timed_out else proc.returncode
-    run_child.spill_peak_mb = spill[0] / 2**20
-    return seconds, usage.ru_maxrss / 1024, peak[0] / 1024, code, stdout, stderr
-
-
 def run_median(cmd, repeat: int, **kw):
     """:func:`run_child` ``repeat`` times (alternating with nothing else); the run of median time.
 
@@ -209,23 +124,19 @@ def run_median(cmd, repeat: int, **kw):
     return (mid[0], max(r[1] for r in runs), max(r[2] for r in runs)) + mid[3:]
 
 
-STAGE_RE = re.compile(r"^\[\s*([\d.]+)s\] (.*)$")
-
-
 STAGES = (("reading edges", "ingest"), ("grouping people", "grouping"), ("counting", "counting"),
           ("adding noise", "noise"), ("auditing", "audit"), ("drawing the figures", "report"),
           ("writing bundle", "bundle"))
 
 
 def stage_times(stderr: str):
-    """Seconds per release stage, from the ``[  t s] message`` progress lines.
+    """Seconds per release stage, from the progress lines (either format, see ``_procs.progress_lines``).
 
     A stage runs from its first message to the next stage's first message; the
     last one (writing the bundle) is left out (its end has no timestamp).
     """
-    lines = [(float(m.group(1)), m.group(2)) for m in map(STAGE_RE.match, stderr.splitlines()) if m]
     starts = []
-    for t, msg in lines:
+    for t, msg in progress_lines(stderr):
         for prefix, name in STAGES:
             if msg.startswith(prefix) and (not starts or starts[-1][1] != name):
                 starts.append((t, name))
@@ -271,7 +182,7 @@ def _bundles_equal(a: Path, b: Path) -> str:
 
 
 def main(argv=None):
-    ap = argparse.ArgumentParser(description="aggpub scale benchmark (whole processes)")
+    ap = argparse.ArgumentParser(description="aggpub against other tools at scale (whole processes)")
     ap.add_argument("--sizes", default="1M,10M", help="edge counts, e.g. 1M,10M,100M (default 1M,10M)")
     ap.add_argument("--data", type=Path, default=HERE.parent / "bench-data", help="graph cache folder")
     ap.add_argument("--tools", default="release,duckdb,pandas,networkx,spark,noise",
