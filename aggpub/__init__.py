@@ -17,6 +17,7 @@ from .pipeline import Release, build_release, publish, release_tables, run_relea
 from .policy import ReleasePolicy, parse_policy, read_policy
 from .estimates.intervals import SumInterval, cell_mask, interval
 from .estimates.supergraph import supergraph
+from .estimates.release_matrix import contact_matrix, plot_contact_matrix
 from .synthesis import sample_network, synthetic_people, write_sample
 from .audit.sweep import SweepResult, run_sweep, write_sweep
 
@@ -30,4 +31,5 @@ __all__ = [
     "ReleasePolicy", "parse_policy", "read_policy",
     "SumInterval", "cell_mask", "interval", "sample_network", "supergraph", "synthetic_people", "write_sample",
     "SweepResult", "run_sweep", "write_sweep",
+    "contact_matrix", "plot_contact_matrix",
 ]

@@ -71,6 +71,9 @@ def build_parser() -> argparse.ArgumentParser:
                         "its budget")
     p.add_argument("--report", type=Path, metavar="DIR",
                    help="folder for the CONFIDENTIAL audit report (report.html, audit.json; true statistics, never for researchers); default: <out>.report beside the bundle")
+    p.add_argument("--layer-column", metavar="NAME",
+                   help="edge column holding each contact's layer (setting); its values are declared in the "
+                        "policy's [layers] values (default: the policy's layers.column)")
     p.add_argument("--audit-draws", type=int, default=None, metavar="N",
                    help="fresh noise draws of the audit's Monte Carlo error spread (default: 20 on tables up to "
                         "300,000 cells, fewer above, at least 3; 0 skips the spread)")
@@ -178,7 +181,34 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--out", required=True, type=Path, help="policy file to write (TOML)")
     p.add_argument("--overwrite", action="store_true", help="replace an existing file at --out")
     _add_common(p)
+    _add_matrix_parser(sub)
     return parser
+
+
+def _add_matrix_parser(sub):
+    """``aggpub matrix`` (issue 13): the contact matrix of a released view, with intervals."""
+    p = sub.add_parser("matrix", help="contact matrix of a bundle's view, with intervals (researcher view)",
+                       description="Verify a bundle, then write the contact matrix of one released view: one row "
+                       "per pair of values with the estimated contacts (unbiased), a confidence interval, and "
+                       "with --per-person the people of each value and the contacts per person of each side. The "
+                       "estimate combines every released table by least squares (the most precise consistent "
+                       "estimate). Post-processing of public data: costs no privacy budget.",
+                       epilog=EXIT_CODES_HELP, formatter_class=argparse.RawDescriptionHelpFormatter)
+    p.add_argument("bundle", type=Path, help="bundle folder")
+    p.add_argument("--by", required=True, metavar="ATTR",
+                   help="the view: an attribute, or attributes joined by commas as the policy named them")
+    p.add_argument("--layer", metavar="NAME", help="one layer (setting); default: all layers together")
+    p.add_argument("--per-person", action="store_true", help="add people per value and contacts per person")
+    p.add_argument("--weight", action="store_true", help="totals of clipped weights (e.g. minutes) instead of counts")
+    p.add_argument("--confidence", type=float, default=0.95, help="level of the intervals (default 0.95)")
+    p.add_argument("--method", default="consistent", choices=("consistent", "view"),
+                   help="least squares over every released table (default), or the raw view alone")
+    p.add_argument("--draws", type=int, default=2000, help="Monte Carlo draws of the noise law (default 2000)")
+    p.add_argument("--seed", type=int, help="seed of the Monte Carlo draws (reproducible; costs no privacy)")
+    p.add_argument("--out", required=True, type=Path, help="CSV file to write")
+    p.add_argument("--plot", type=Path, metavar="FILE.png", help="also draw the matrix as a heat map (PNG)")
+    p.add_argument("--overwrite", action="store_true", help="replace existing output files")
+    _add_common(p)
 
 
 def _print_release(run):
@@ -223,7 +253,17 @@ def cmd_release(args):
     check_outside_inputs(args.out, inputs, "bundle")  # an output folder never swallows an input
     if args.report is not None:
         check_outside_inputs(args.report, inputs, "report")
-    run = run_release(args.policy, args.edges, args.nodes, args.out, seed=args.seed,
+    policy = args.policy
+    if args.layer_column:  # issue 13: the column from the command line, the declared values from the policy
+        import dataclasses
+
+        from .policy import read_policy
+
+        policy = read_policy(args.policy)
+        if not policy.layers.values:
+            raise UsageError("'--layer-column' needs the layers declared in the policy ([layers] values)")
+        policy = policy.replace(layers=dataclasses.replace(policy.layers, column=args.layer_column))
+    run = run_release(policy, args.edges, args.nodes, args.out, seed=args.seed,
                       overwrite=args.overwrite, source=args.source_column, target=args.target_column,
                       node=args.node_column, weight=args.weight_column, drop_unknown=args.drop_unknown,
                       engine=args.engine, progress=Progress(args.quiet), debug=args.debug,
@@ -442,8 +482,40 @@ def cmd_draft_policy(args):
     return 0
 
 
+def cmd_matrix(args):
+    """``aggpub matrix`` (issue 13)."""
+    from .bundle import check_bundle, read_bundle
+    from .errors import BundleError, OutputError
+    from .estimates.release_matrix import contact_matrix, plot_contact_matrix, write_matrix_csv
+
+    if args.draws < 100:
+        raise UsageError(f"'--draws' must be >= 100, got {args.draws}")
+    res = check_bundle(args.bundle)
+    if not res.ok:
+        raise BundleError(f"{args.bundle}: bundle check failed ({len(res.problems)} problem(s), first: "
+                          f"{res.problems[0]}); run 'aggpub check' for the list")
+    for w in res.warnings:
+        print(f"warning: {w}", file=sys.stderr)
+    for path in (args.out, args.plot):
+        if path is not None and path.exists() and not args.overwrite:
+            raise OutputError(f"{path}: output file already exists (use --overwrite to replace it)")
+    table = contact_matrix(read_bundle(args.bundle), args.by, layer=args.layer, per_person=args.per_person,
+                           weight=args.weight, confidence=args.confidence, method=args.method, draws=args.draws,
+                           seed=args.seed)
+    out = write_matrix_csv(table, args.out, overwrite=args.overwrite)
+    meta = {k.decode(): v.decode() for k, v in (table.schema.metadata or {}).items()}
+    print(f"wrote the contact matrix by {meta['view']} ({table.num_rows:,} value pairs, layer "
+          f"{args.layer or 'all'}, method {meta['method']}, {float(meta['confidence']):.0%} intervals) to {out}")
+    if meta.get("note"):
+        print(f"  note: {meta['note']}")
+    if args.plot is not None:
+        print(f"wrote the heat map to {plot_contact_matrix(table, args.plot, overwrite=args.overwrite)}")
+    return 0
+
+
 COMMANDS = {"release": cmd_release, "check": cmd_check, "demo": cmd_demo, "ledger": cmd_ledger,
-            "sample": cmd_sample, "plan": cmd_plan, "sweep": cmd_sweep, "draft-policy": cmd_draft_policy}
+            "sample": cmd_sample, "plan": cmd_plan, "sweep": cmd_sweep, "draft-policy": cmd_draft_policy,
+            "matrix": cmd_matrix}
 
 
 def main(argv=None) -> int:

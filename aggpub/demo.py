@@ -704,6 +704,12 @@ levels = [
   {nb_levels}
 ]
 
+# Contact matrices by age band and by neighbourhood (the grouping attributes, by default), per setting:
+# each contact's setting is declared, in the order that places a pair met in several settings.
+[layers]
+column = "setting"
+values = [{", ".join(f'"{x}"' for x in SETTINGS)}]
+
 [input]
 source = "source"
 target = "target"

@@ -75,3 +75,4 @@ class Network:
     report: IngestReport
     weighted: bool = False
     ids: pa.Array | None = None
+    layers: tuple = ()  # issue 13: the declared layers (empty: no layer column); layer i of each contact

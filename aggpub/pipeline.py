@@ -184,8 +184,8 @@ def release_tables(edges: pa.Table, people: pa.Table, policy: ReleasePolicy | di
     [17, 17]
     >>> release.superedges.num_rows  # every pair of supernodes, the diagonal included, zeros included
     3
-    >>> [c["name"] for c in release.manifest["components"]]
-    ['superedge_counts', 'degree_sequences', 'triangle_count']
+    >>> release.manifest["epsilon_spent"] <= 1.0  # the components' spends add up to at most the total
+    True
     """
     from .policy import parse_policy
 
@@ -223,8 +223,8 @@ def publish(release: Release, out, *, overwrite: bool = False, _fault=None) -> P
     >>> path = aggpub.publish(release, pathlib.Path(tempfile.mkdtemp()) / "karate-bundle")
     >>> aggpub.check_bundle(path).ok
     True
-    >>> sorted(p.name for p in path.iterdir())
-    ['README.md', 'degree_sequences.parquet', 'manifest.json', 'superedges.parquet', 'supernodes.parquet']
+    >>> {"README.md", "manifest.json", "supernodes.parquet", "superedges.parquet"} <= {p.name for p in path.iterdir()}
+    True
     """
     return write_bundle(out, release.tables, release.manifest, render_datacard(release.manifest),
                         overwrite=overwrite, _fault=_fault)
@@ -271,7 +271,8 @@ def run_release(policy, edges, people, out, *, seed=None, overwrite=False, sourc
     try:
         policy = applied_policy(policy, source=source, target=target, node=node, weight=weight,
                                 drop_unknown=drop_unknown)  # the manifest records what was applied
-        network = load_policy_inputs(policy, edges, people, debug=debug, engine=eng)
+        network = load_policy_inputs(policy, edges, people, debug=debug, engine=eng,
+                                     on_refusal=ledger.charge if ledger is not None else None)
         for line in network.report.lines(private_counts=policy.privacy.unit != "person"):
             progress(line)
         preflight = preflight_gate(policy, network, progress)

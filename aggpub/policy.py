@@ -64,6 +64,10 @@ __all__ = [
     "policy_key",
     "check_value",
     "policy_reference",
+    "LayersPolicy",
+    "VIEW_COMPONENT",
+    "view_names",
+    "view_attributes",
 ]
 
 import dataclasses
@@ -82,8 +86,10 @@ PRIVACY_UNITS = ("edge", "person")
 GROUPING_METHODS = ("attributes", "structure", "attributes+structure", "given", "random")
 PRIVATE_GROUPING_METHODS = ("structure", "attributes+structure")
 ATTRIBUTE_GROUPING_METHODS = ("attributes", "attributes+structure")
-COMPONENT_NAMES = ("supernode_sizes", "superedge_counts", "degree_histograms", "weight_totals", "degree_sequences",
-                   "triangle_count")
+#: The contact views component (issue 13): contact matrices released by attribute value, optionally per layer.
+VIEW_COMPONENT = "contact_views"
+COMPONENT_NAMES = ("supernode_sizes", "superedge_counts", "degree_histograms", "weight_totals", VIEW_COMPONENT,
+                   "degree_sequences", "triangle_count")
 #: Components on by default under unit ``edge`` only (no sensitivity is derived for them under ``person``).
 EDGE_ONLY_COMPONENTS = ("degree_sequences", "triangle_count")
 #: ``triangle_count`` is on by default (unit ``edge``) for up to this many people: counting triangles costs
@@ -349,6 +355,35 @@ POLICY_SECTIONS: tuple[PolicySection, ...] = (
         "components.weight_totals", "The clipped total weight (e.g. minutes) of the contacts of each cell.",
         "Each contact's weight is clipped to `[0, clip]` and rounded; L1 sensitivity `clip` under `edge`, "
         "`max_contacts * clip` under `person`."),
+    # ---- contact views, layers and domains (issue 13)
+    PolicySection(
+        "components.contact_views", "Contact matrices: contacts between the values of attributes, every "
+        "contact placed by its exact values.",
+        "One *view* per attribute (or combination of attributes): the number of contacts between people of "
+        "value `a` and people of value `b`, for every pair of declared values, zeros included, per layer when "
+        "`[layers]` is declared. A view places every contact by the exact values of its two people, also when "
+        "their supernodes are labelled with a generalised value or `*`. L1 sensitivity of one view (all of its "
+        "layers together): 1 under `edge`, `max_contacts` under `person` (`docs/privacy.md` section 3.3). The "
+        "share of the component is split equally among its views. `aggpub matrix` and "
+        "`aggpub.contact_matrix` combine the views with the superedge counts by least squares."),
+    PolicySection(
+        "layers", "The layer (setting) of each contact: an edge column and its declared values.",
+        "For example the setting of a contact: household, school, work, community. The values are declared "
+        "(the edges are private under both units, so the values present in them are never read to shape the "
+        "release), and their order is the public rule for a pair of people recorded in several layers: the "
+        "contact counts once, in the first of its layers in this order. Input with a layer value that is not "
+        "declared is refused. Views are released per layer; the layers of one view share its epsilon "
+        "(parallel composition, `docs/privacy.md` section 3.3). `aggpub release --layer-column NAME` names the "
+        "column from the command line."),
+    PolicySection(
+        "domains", "Declared value domains of view attributes outside the grouping.",
+        "Holds one table per attribute, e.g. `[domains.role]`. Under unit `person` the values present in the "
+        "person table are private, so every view attribute needs a declared domain: a grouping attribute's is "
+        "the first level of its hierarchy, any other attribute's is declared here. Under unit `edge` the person "
+        "table is public and a view attribute's domain is the values present, unless declared here."),
+    PolicySection(
+        "domains.<attribute>", "The declared values of one attribute.",
+        "`<attribute>` is a column of the person file. Data holding a value outside the domain are refused."),
     PolicySection(
         "components.degree_sequences", "For each supernode, its members' numbers of contacts, sorted.",
         "Every person's number of contacts, sorted within their supernode, with discrete Laplace noise on every "
@@ -620,6 +655,77 @@ POLICY_KEYS: tuple[PolicyKey, ...] = (
         '[components.weight_totals]\nenabled = true\ncolumn = "minutes"\nclip = 120\n',
         range=Range(1, None),
         needed_when=When("enabled", (True,), "weight totals need the edge weight column and the clip bound")),
+    # ---------------------------------------------------------------- contact views, layers, domains (issue 13)
+    PolicyKey(
+        "components.contact_views", "enabled", "boolean", None, "release contact matrices (views) by attribute",
+        "On by default for a policy that groups by attributes and sets no component `share` of its own (the "
+        "plainest policy): every grouping attribute then gets a complete view, so that every contact is placed "
+        "by its exact value even when supernodes are generalised or merged. A policy that splits epsilon by "
+        "explicit shares lists every component it wants: add this table with a `share` to release views "
+        "there. Off by default for groupings without attributes.",
+        "[components.contact_views]\nenabled = false\n",
+        default_doc="on (`true`) when there are views to release (the grouping has attributes, or `attributes` / "
+                    "`combinations` list some) and either this table sets a `share` or no other component does; "
+                    "else `false`"),
+    PolicyKey(
+        "components.contact_views", "share", "number", None, "share of `privacy.epsilon` spent on all views",
+        "Split equally among the views (and their weighted variants). Without it the views take an equal part "
+        "with the other components that have no share: half of epsilon beside the superedge counts in the "
+        "plainest policy (measured choice: `docs/contact-matrices.md` section 7). " + _SHARE_DETAILS,
+        "[components.superedge_counts]\nshare = 0.6\n\n[components.contact_views]\nshare = 0.4\n",
+        range=Range(0, 1, low_open=True)),
+    PolicyKey(
+        "components.contact_views", "attributes", "strings", None, "the attributes that each get a view",
+        "Columns of the person file, each once. Under unit `person` each must be a grouping attribute (its "
+        "domain is its hierarchy's first level) or be declared in `[domains.<attribute>]`. An empty list "
+        "releases only `combinations`.",
+        '[components.contact_views]\nattributes = ["age_band"]\n',
+        default_doc="the grouping attributes", allowed_doc="person-file columns, each once"),
+    PolicyKey(
+        "components.contact_views", "combinations", "strings", (), "combinations of attributes that get a view",
+        "Each entry names two or more attributes joined by commas (`\"age_band,neighbourhood\"`): one view of "
+        "their combined value. Each combination is one more view and takes an equal part of the share, so "
+        "every view becomes noisier.",
+        '[components.contact_views]\ncombinations = ["age_band,neighbourhood"]\n',
+        allowed_doc="attributes joined by commas, each combination once"),
+    PolicyKey(
+        "components.contact_views", "weighted", "boolean", False,
+        "also release the clipped weight totals (e.g. minutes) by view",
+        "Each view then has a weighted twin with the total of `round(min(max(w, 0), clip))` over its contacts, "
+        "released in `contact_view_weights.parquet`; it takes an equal part of the share. L1 sensitivity "
+        "`clip` under `edge`, `max_contacts * clip` under `person`.",
+        '[components.contact_views]\nweighted = true\ncolumn = "minutes"\nclip = 120\n'),
+    PolicyKey(
+        "components.contact_views", "column", "string", None, "the edge column of the weights of weighted views",
+        "A numeric column of the edge file. Must agree with `components.weight_totals.column`, `input.weight` "
+        "or `--weight-column` when those are set.",
+        '[components.contact_views]\nweighted = true\ncolumn = "minutes"\nclip = 120\n',
+        nonempty=True,
+        needed_when=When("weighted", (True,), "weighted views need the edge weight column and the clip bound")),
+    PolicyKey(
+        "components.contact_views", "clip", "integer", None, "weighted views: each weight is clipped to `[0, clip]`",
+        "The L1 sensitivity of a weighted view (times `max_contacts` under `person`).",
+        '[components.contact_views]\nweighted = true\ncolumn = "minutes"\nclip = 120\n',
+        range=Range(1, None),
+        needed_when=When("weighted", (True,), "weighted views need the edge weight column and the clip bound")),
+    PolicyKey(
+        "layers", "column", "string", None, "the edge column holding each contact's layer (setting)",
+        "Read as text and compared with `values` exactly. `--layer-column` on the command line overrides it.",
+        '[layers]\ncolumn = "setting"\nvalues = ["household", "school", "work", "community"]\n',
+        nonempty=True),
+    PolicyKey(
+        "layers", "values", "strings", (), "the declared layers, in the order that assigns a repeated contact",
+        "Every value the layer column may hold, each once. A pair of people recorded in several layers counts "
+        "once, in the first of its layers in this order (a public rule that reads only that pair's own rows). "
+        "Take the values from the study design, never from the data.",
+        '[layers]\ncolumn = "setting"\nvalues = ["household", "school", "work", "community"]\n',
+        allowed_doc="distinct non-empty strings; required with `layers.column`"),
+    PolicyKey(
+        "domains.<attribute>", "values", "strings", REQUIRED, "every possible value of the attribute",
+        "In the order the views list them. Take them from a public codebook (the survey form, a published "
+        "classification), never from the data.",
+        '[domains.age_band]\nvalues = ["0-19", "20-39", "40-59", "60-79", "80+"]\n',
+        allowed_doc="distinct non-empty strings"),
     # ---------------------------------------------------------------- ledger
     PolicyKey(
         "ledger", "path", "path", REQUIRED, "the ledger file (SQLite), relative to the policy file's folder",
@@ -902,6 +1008,10 @@ class ComponentPolicy:
     method: str = _default("components.superedge_counts", "method")  # superedge counts: dense, sparse or auto
     sparse_threshold: float | None = None  # sparse release: noisy cells below are dropped
     sparse_above_cells: int = _default("components.superedge_counts", "sparse_above_cells")
+    # contact views (issue 13): attributes with a view (None: the grouping attributes), combinations, weights
+    attributes: tuple[str, ...] | None = None
+    combinations: tuple[str, ...] = ()
+    weighted: bool = False
 
     def __post_init__(self):
         if self.name not in COMPONENT_NAMES:
@@ -926,10 +1036,13 @@ class ComponentsPolicy:
     superedge_counts: ComponentPolicy
     degree_histograms: ComponentPolicy
     weight_totals: ComponentPolicy
+    contact_views: ComponentPolicy | None = None  # None: the defaults (resolved with the whole policy)
     degree_sequences: ComponentPolicy | None = None  # None: default (resolved with the privacy unit)
     triangle_count: ComponentPolicy | None = None
 
     def __post_init__(self):
+        if self.contact_views is None:
+            object.__setattr__(self, "contact_views", ComponentPolicy(VIEW_COMPONENT, None))
         for name in EDGE_ONLY_COMPONENTS:
             if getattr(self, name) is None:
                 object.__setattr__(self, name, ComponentPolicy(name, None))
@@ -999,6 +1112,25 @@ class InputPolicy:
         _validate_fields(self, "input")
 
 
+@dataclass(frozen=True)
+class LayersPolicy:
+    """``[layers]``: the edge column holding each contact's layer and its declared values (issue 13).
+
+    Not declared when ``column`` is ``None``. ``values`` are in the order of the
+    public one-layer rule: a pair recorded in several layers counts in the first.
+    """
+
+    column: str | None = _default("layers", "column")
+    values: tuple[str, ...] = _default("layers", "values")
+
+    def __post_init__(self):
+        _validate_fields(self, "layers")
+
+    @property
+    def declared(self) -> bool:
+        return self.column is not None
+
+
 _SECTION_CLASSES = {"privacy": PrivacyPolicy, "grouping": GroupingPolicy, "components": ComponentsPolicy,
                     "ledger": LedgerPolicy, "gate": GatePolicy, "assumptions": AssumptionsPolicy,
                     "input": InputPolicy}
@@ -1022,6 +1154,8 @@ class ReleasePolicy:
     title: str = _default("", "title")
     assumptions: AssumptionsPolicy = field(default_factory=AssumptionsPolicy)
     source_path: Path | None = None
+    layers: "LayersPolicy" = field(default_factory=lambda: LayersPolicy())  # issue 13: the layer column
+    domains: Mapping[str, tuple[str, ...]] = field(default_factory=dict)  # issue 13: declared view domains
 
     def __post_init__(self):
         for name, cls in _SECTION_CLASSES.items():
@@ -1191,6 +1325,111 @@ def _gate_attribute(policy: ReleasePolicy):
                           f"{closest_name(attr, policy.grouping.attributes)}, got {attr!r}")
 
 
+# ---- contact views, layers and domains (issue 13)
+
+def _view_sections(top: "_Section", base_dir: Path) -> dict:
+    """``layers`` and ``domains`` keyword arguments of :class:`ReleasePolicy` from decoded TOML."""
+    out = {}
+    layers_sec = top.section("layers")
+    if layers_sec is not None:
+        out["layers"] = LayersPolicy(**_section_values(layers_sec, "layers", base_dir))
+    domains_sec = top.section("domains")
+    if domains_sec is not None:
+        for attr, spec in domains_sec.data.items():
+            if not isinstance(spec, Mapping):
+                raise PolicyError(f"unknown key 'domains.{attr}': [domains] holds one table per attribute, "
+                                  f"[domains.{attr}] with its 'values'")
+        out["domains"] = {attr: _section_values(domains_sec.section(attr), "domains.<attribute>", base_dir)["values"]
+                          for attr in domains_sec.data}
+    return out
+
+
+def _distinct_strings(values, key: str) -> tuple:
+    values = tuple(values)
+    if any(not isinstance(v, str) or not v.strip() for v in values):
+        raise PolicyError(f"'{key}' must hold non-empty strings")
+    if len(set(values)) != len(values):
+        raise PolicyError(f"'{key}' lists a value twice")
+    return values
+
+
+@_rule("layers", "`column` and `values` are set together; `values` lists distinct, non-empty strings.")
+def _layers_declared(lay: LayersPolicy):
+    if (lay.column is None) != (not lay.values):
+        raise PolicyError("'layers.column' and 'layers.values' must be set together: the layer column and "
+                          "every layer it may hold")
+    object.__setattr__(lay, "values", _distinct_strings(lay.values, "layers.values"))
+
+
+def view_names(views: ComponentPolicy) -> list[str]:
+    """The views of a (resolved) ``components.contact_views``: its attributes, then its combinations."""
+    return list(views.attributes or ()) + list(views.combinations)
+
+
+def view_attributes(policy: "ReleasePolicy") -> list[str]:
+    """Every person attribute a release's views read (empty when views are off)."""
+    v = policy.components.contact_views
+    if not v.enabled:
+        return []
+    return list(dict.fromkeys(a for name in view_names(v) for a in name.split(",")))
+
+
+def _resolve_views(policy: "ReleasePolicy"):
+    v = policy.components.contact_views
+    g = policy.grouping
+    explicit_shares = any(c.share is not None for c in policy.components.all() if c.name != VIEW_COMPONENT)
+    if v.attributes is None:
+        object.__setattr__(v, "attributes", tuple(g.attributes))
+    if v.enabled is None:  # the documented default: the plainest policy gets a view of every grouping attribute
+        object.__setattr__(v, "enabled", bool(v.attributes or v.combinations)
+                           and (v.share is not None or not explicit_shares))
+    if not v.enabled:
+        return
+    attrs = _distinct_strings(v.attributes, "components.contact_views.attributes")
+    object.__setattr__(v, "attributes", attrs)
+    combos = []
+    for c in _distinct_strings(v.combinations, "components.contact_views.combinations"):
+        parts = tuple(x.strip() for x in c.split(","))
+        if len(parts) < 2 or len(set(parts)) != len(parts) or not all(parts):
+            raise PolicyError(f"'components.contact_views.combinations': {c!r} must name two or more different "
+                              "attributes joined by commas")
+        combos.append(",".join(parts))
+    if len(set(combos)) != len(combos):
+        raise PolicyError("'components.contact_views.combinations' lists a combination twice")
+    object.__setattr__(v, "combinations", tuple(combos))
+    if not attrs and not combos:
+        raise PolicyError("'components.contact_views': enabled but no view: list 'attributes' or 'combinations' "
+                          "(the grouping has no attributes to default to)")
+    if policy.privacy.unit == "person":  # (a grouping attribute's hierarchy is demanded by the grouping itself)
+        for a in view_attributes(policy):
+            if a not in policy.domains and a not in g.attributes:
+                raise PolicyError(f"'components.contact_views': under unit 'person' the view attribute '{a}' needs "
+                                  f"a declared domain: [domains.{a}] values, or the first level of "
+                                  f"[grouping.hierarchies.{a}] (the values present in the data are private)")
+
+
+_VIEW_RULE_TEXT = ("`components.contact_views` is resolved first: `attributes` defaults to the grouping attributes; "
+                   "`enabled` defaults to true when there are views to release and either the table sets a "
+                   "`share` or no other component does; combinations name two or more different attributes; under unit `person` every view "
+                   "attribute outside the grouping has a declared domain (`[domains.<attribute>]`).")
+# resolved before the rules that read `enabled` (shares of disabled components, shares adding up)
+POLICY_RULES.insert(next(i for i, r in enumerate(POLICY_RULES) if r.section == ""),
+                    PolicyRule("", _VIEW_RULE_TEXT, _resolve_views))
+
+
+@_rule("", "Each `[domains.<attribute>]` lists distinct, non-empty values.")
+def _domains_values(policy: "ReleasePolicy"):
+    if not isinstance(policy.domains, Mapping):
+        raise PolicyError(f"'domains' must be a table attribute -> values, got {_typename(policy.domains)}")
+    out = {}
+    for attr, values in policy.domains.items():
+        vals = _distinct_strings(values, f"domains.{attr}.values")
+        if not vals:
+            raise PolicyError(f"'domains.{attr}.values' must not be empty")
+        out[str(attr)] = vals
+    object.__setattr__(policy, "domains", out)
+
+
 def _check_cross_rules(policy: ReleasePolicy) -> None:
     """The rules tying sections together (run when a :class:`ReleasePolicy` is built)."""
     for rule in POLICY_RULES:
@@ -1291,7 +1530,7 @@ def parse_policy(data: Mapping[str, Any], base_dir=None, source_path=None) -> Re
     input_policy = InputPolicy(**_section_values(input_sec, "input", base_dir)) if input_sec is not None \
         else InputPolicy()
     policy = ReleasePolicy(privacy=privacy, grouping=grouping, components=components, ledger=ledger, gate=gate,
-                           input=input_policy, assumptions=assumptions,
+                           input=input_policy, assumptions=assumptions, **_view_sections(top, base_dir),
                            source_path=Path(source_path) if source_path is not None else None,
                            **title_kw)
     if policy.privacy.epsilon > EPSILON_WARN_ABOVE:
@@ -1479,7 +1718,7 @@ levels = [
 enabled = true           # exact and free under unit "edge"
 
 [components.superedge_counts]
-share = 0.35             # contacts within and between supernodes
+share = 0.3              # contacts within and between supernodes
 method = "auto"          # dense below 10 million cells, sparse above
 
 [components.degree_histograms]
@@ -1493,11 +1732,22 @@ share = 0.1
 column = "minutes"       # contact duration
 clip = 120               # each contact counts for at most 120 minutes
 
+[components.contact_views]
+share = 0.2              # complete contact matrices, split equally among the three views
+attributes = ["age_band", "neighbourhood", "role"]
+
 [components.degree_sequences]
-share = 0.3              # on by default under unit "edge": every supernode's sorted numbers of contacts
+share = 0.2              # on by default under unit "edge": every supernode's sorted numbers of contacts
 
 [components.triangle_count]
-share = 0.15             # on by default under unit "edge" (up to 100,000 people): for clustering in samples
+share = 0.1              # on by default under unit "edge" (up to 100,000 people): for clustering in samples
+
+[layers]
+column = "setting"       # the setting of each contact, matrices per setting
+values = ["household", "school", "work", "community"]   # a pair met in several settings counts in the first
+
+[domains.role]
+values = ["preschool", "pupil", "worker", "retired", "other"]
 
 [ledger]
 path = "quennet-vale.ledger"          # one ledger file per dataset, relative to this file

@@ -32,6 +32,13 @@ demo town and on a 100,000-person town grouped by age band and an invented stree
 supernodes), as a ratio to counting the three true views in numpy (the baseline, same run).
 
 Run: ``.venv/bin/python benchmarks/contact_matrix_error.py [--releases 20] [--draws 1000] [--json F]``
+
+``--pipeline`` measures the same through the real pipeline instead of the simulation (issue 13's closing
+note): releases built by ``aggpub.build_release`` from the policy (fresh OS-entropy noise), matrices from
+``aggpub.contact_matrix``; the reported attribute's view alone, the default views (one per grouping
+attribute) and the default plus extra views (the attributes outside the grouping), each
+read raw and by least squares, overall and per layer, at epsilon 0.5, 1 and 2; and the default views'
+share of epsilon against the superedge table's (0.25, 0.5, 0.75) on the demo town.
 """
 
 from __future__ import annotations
@@ -46,6 +53,7 @@ from pathlib import Path
 import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
+import pyarrow.csv  # noqa: F401  (pa.csv)
 
 from aggpub.demo import (AGE_BANDS, AGE_HIERARCHY, NEIGHBOURHOOD_HIERARCHY, NEIGHBOURHOODS, ROLES, SETTINGS,
                          generate_town)
@@ -244,12 +252,185 @@ def print_rows(rows):
               f"{lost:>5s}")
 
 
+# --------------------------------------------------------------------------- through the real pipeline (issue 13)
+
+#: View sets measured through the pipeline: the reported attribute's view alone, the default (one view per
+#: grouping attribute), and the default with extra views (attributes outside the grouping).
+PIPELINE_CONFIGS = ("own view only", "default views", "default + extra views")
+
+
+def _pipeline_policy(grouping, attribute, config, *, epsilon, min_size, layers=None, hierarchies=None,
+                     extra=(), view_share=None):
+    from aggpub.policy import parse_policy
+
+    views = {"own view only": {"attributes": [attribute]},
+             "default views": {},
+             "default + extra views": {"attributes": list(grouping) + [a for a in extra if a not in grouping]}}[config]
+    if view_share is not None:
+        views = dict(views, share=view_share)
+    pol = {"privacy": {"epsilon": epsilon},
+           "grouping": {"attributes": list(grouping), "min_size": min_size,
+                        "hierarchies": {a: {"levels": lv} for a, lv in (hierarchies or {}).items()},
+                        "merge_order": list(reversed(grouping))},
+           "components": {"contact_views": views}}
+    if view_share is not None:
+        pol["components"]["superedge_counts"] = {"share": 1.0 - view_share}
+    if layers:
+        pol["layers"] = {"column": "setting", "values": list(layers)}
+    return parse_policy(pol)
+
+
+def _score_matrix(est_table, true, sanity):
+    est = np.asarray(est_table.column("contacts").to_numpy(), dtype=float)
+    lo = np.asarray(est_table.column("lower").to_numpy(), dtype=float)
+    hi = np.asarray(est_table.column("upper").to_numpy(), dtype=float)
+    true = np.asarray(true, dtype=float).reshape(-1)
+    return _rel_error(est, true, sanity), (lo <= true) & (true <= hi)
+
+
+def pipeline_network(label, network, grouping, attribute, *, releases, draws, min_size, layers=None,
+                     hierarchies=None, extra=(), epsilons=EPSILONS, configs=PIPELINE_CONFIGS):
+    """Median relative error and 95% coverage of ``attribute``'s matrix from real releases (build_release)."""
+    from aggpub.estimates.release_matrix import contact_matrix as bundle_matrix
+    from aggpub.pipeline import build_release
+
+    rows = []
+    sanity = max(1.0, 0.001 * network.n_edges)
+    from aggpub.policy import view_names
+
+    for eps in epsilons:
+        seen = set()
+        for config in configs:
+            pol = _pipeline_policy(grouping, attribute, config, epsilon=eps, min_size=min_size, layers=layers,
+                                   hierarchies=hierarchies, extra=extra)
+            names = tuple(view_names(pol.components.contact_views))
+            if names in seen:  # the same views as a configuration measured already (no extra attribute)
+                continue
+            seen.add(names)
+            acc = {(m, scope): ([], []) for m in ("view", "consistent") for scope in ("overall", "per layer")}
+            n_views = 0
+            t0 = time.perf_counter()
+            for r in range(releases):
+                rel = build_release(network, pol)  # OS entropy: fresh noise
+                truth = rel.truth["contact_views"]["counts"][attribute]
+                n_views = len(rel.truth["contact_views"]["counts"])
+                for method in ("view", "consistent"):
+                    m = bundle_matrix(rel, attribute, method=method, draws=draws, seed=r)
+                    for part, x in zip(acc[(method, "overall")], _score_matrix(m, truth.sum(axis=0), sanity)):
+                        part.append(x)
+                    if layers:
+                        m = bundle_matrix(rel, attribute, method=method, draws=draws, seed=r, every_layer=True)
+                        for part, x in zip(acc[(method, "per layer")], _score_matrix(m, truth, sanity)):
+                            part.append(x)
+            seconds = (time.perf_counter() - t0) / releases
+            for (method, scope), (errs, covs) in acc.items():
+                if errs:
+                    rows.append({"network": label, "attribute": attribute, "epsilon": eps, "views": config,
+                                 "n_views": n_views, "estimate": "raw view" if method == "view" else "least squares",
+                                 "scope": scope, "median_relative_error": float(np.median(np.concatenate(errs))),
+                                 "coverage_95": float(np.mean(np.concatenate(covs))), "releases": releases,
+                                 "seconds_per_release": seconds})
+            print(f"  {label} eps {eps:g} {config}: done", file=sys.stderr)
+    return rows
+
+
+def share_rows(network, *, releases, draws, layers, hierarchies, shares=(0.25, 0.5, 0.75), epsilon=1.0):
+    """The default views' share against the superedge table's: age-band matrix and superedge cell errors."""
+    from aggpub.estimates.release_matrix import contact_matrix as bundle_matrix
+    from aggpub.pipeline import build_release
+
+    rows = []
+    sanity = max(1.0, 0.001 * network.n_edges)
+    for share in shares:
+        pol = _pipeline_policy(["age_band", "neighbourhood"], "age_band", "default views", epsilon=epsilon,
+                               min_size=20, layers=layers, hierarchies=hierarchies, view_share=share)
+        errs, covs, cell_errs, cell_abs, sq = [], [], [], [], []
+        for r in range(releases):
+            rel = build_release(network, pol)
+            truth = rel.truth["contact_views"]["counts"]["age_band"].sum(axis=0)
+            m = bundle_matrix(rel, "age_band", draws=draws, seed=r)
+            e, c = _score_matrix(m, truth, sanity)
+            errs.append(e)
+            covs.append(c)
+            sq.append((np.asarray(m.column("contacts").to_numpy(), dtype=float) - truth) ** 2)
+            st = rel.truth["superedges"]
+            est = np.asarray(rel.tables["superedges"].column("edge_count").to_numpy(), dtype=float)
+            cell_errs.append(_rel_error(est, st.count.astype(float), sanity))
+            cell_abs.append(np.abs(est - st.count))
+        rows.append({"view_share": share, "epsilon": epsilon,
+                     "age_matrix_median_relative_error": float(np.median(np.concatenate(errs))),
+                     "age_matrix_coverage_95": float(np.mean(np.concatenate(covs))),
+                     "age_matrix_rmse": float(np.sqrt(np.mean(np.concatenate(sq)))),
+                     "superedge_cell_mean_absolute_error": float(np.mean(np.concatenate(cell_abs))),
+                     "superedge_cell_median_relative_error": float(np.median(np.concatenate(cell_errs))),
+                     "superedge_cell_mean_relative_error": float(np.mean(np.concatenate(cell_errs)))})
+        print(f"  share {share}: done", file=sys.stderr)
+    return rows
+
+
+def pipeline_main(releases, draws, out_json=None):
+    """Every figure of the closing note of issue 13, through ``aggpub.build_release`` (the real pipeline)."""
+    from aggpub.demo import demo_policy_text, generate_town
+    from aggpub.ingest import load_network
+
+    t_start = time.perf_counter()
+    edges, people = generate_town(30_000)
+    net = load_network(edges, people, attributes=["age_band", "neighbourhood", "role"], layer="setting",
+                       layer_values=SETTINGS)
+    rows = pipeline_network("demo town 30k, min size 20", net, ["age_band", "neighbourhood"], "age_band",
+                            releases=releases, draws=draws, min_size=20, layers=SETTINGS, hierarchies=HIER,
+                            extra=["role"])
+    shares = share_rows(net, releases=releases, draws=draws, layers=SETTINGS, hierarchies=HIER)
+    net.engine.close()
+    if REAL.is_dir():
+        for folder, attribute, grouping, extra, source in REAL_NETWORKS:
+            path = REAL / folder
+            people_t = pa.csv.read_csv(path / "people.csv", convert_options=pa.csv.ConvertOptions(
+                column_types={c: pa.string() for c in ["node"] + grouping + extra}))
+            edges_t = pa.csv.read_csv(path / "contacts.csv", convert_options=pa.csv.ConvertOptions(
+                column_types={"source": pa.string(), "target": pa.string()}))
+            grouping_all = list(dict.fromkeys(grouping))
+            net = load_network(edges_t.select(["source", "target"]), people_t,
+                               attributes=list(dict.fromkeys(grouping_all + extra)))
+            rows += pipeline_network(f"{folder} ({source})", net, grouping_all, attribute, releases=releases,
+                                     draws=draws, min_size=REAL_MIN_SIZE, extra=extra)
+            net.engine.close()
+    else:
+        print(f"(no {REAL}: real networks skipped)")
+    _print_pipeline(rows, shares)
+    print(f"total {time.perf_counter() - t_start:.0f} s")
+    if out_json:
+        Path(out_json).write_text(json.dumps({"rows": rows, "shares": shares}, indent=1))
+
+
+def _print_pipeline(rows, shares):
+    print(f"{'network':50s} {'eps':>4s} {'views':22s} {'n':>2s} {'estimate':14s} {'scope':9s} "
+          f"{'med rel err':>11s} {'cov95':>6s} {'s/rel':>6s}")
+    for r in rows:
+        print(f"{r['network'][:50]:50s} {r['epsilon']:4g} {r['views']:22s} {r['n_views']:2d} {r['estimate']:14s} "
+              f"{r['scope']:9s} {r['median_relative_error']:11.4f} {r['coverage_95']:6.3f} "
+              f"{r['seconds_per_release']:6.2f}")
+    print()
+    print("default views' share (demo town 30k, age band and neighbourhood views, epsilon 1):")
+    print(f"{'view share':>10s} {'age matrix med rel err':>23s} {'rmse':>7s} {'cov95':>6s} "
+          f"{'superedge cell mean abs err':>28s} {'mean rel err':>13s}")
+    for r in shares:
+        print(f"{r['view_share']:10g} {r['age_matrix_median_relative_error']:23.4f} {r['age_matrix_rmse']:7.2f} "
+              f"{r['age_matrix_coverage_95']:6.3f} {r['superedge_cell_mean_absolute_error']:28.3f} "
+              f"{r['superedge_cell_mean_relative_error']:13.4f}")
+
+
 def main(argv=None):
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--releases", type=int, default=20)
     ap.add_argument("--draws", type=int, default=1000)
     ap.add_argument("--json")
+    ap.add_argument("--pipeline", action="store_true",
+                    help="measure through the real pipeline (aggpub.build_release and aggpub.contact_matrix)")
     args = ap.parse_args(argv)
+    if args.pipeline:
+        pipeline_main(args.releases, args.draws, args.json)
+        return
     rows = demo_rows(args.releases, args.draws)
     print_rows(rows)
     if REAL.is_dir():

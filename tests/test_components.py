@@ -205,8 +205,9 @@ def test_all_components_release_and_bundle_check(unit, tmp_path):
     r = release_tables(edges, people, _policy(unit), seed=5)  # weight column comes from the policy
     m = r.manifest
     names = [c["name"] for c in m["components"]]
-    expected = ["superedge_counts", "degree_histograms", "weight_totals"]
-    # issue 12: under unit edge degree sequences and the triangle count are on by default (off under person)
+    # issue 13: a policy without shares releases a view of every grouping attribute by default; issue 12: under
+    # unit edge degree sequences and the triangle count are on by default too (off under person)
+    expected = ["superedge_counts", "degree_histograms", "weight_totals", "contact_views:age", "contact_views:zone"]
     assert names == (["supernode_sizes"] + expected if unit == "person"
                      else expected + ["degree_sequences", "triangle_count"])
     for c in m["components"]:
@@ -216,7 +217,7 @@ def test_all_components_release_and_bundle_check(unit, tmp_path):
             continue
         assert c["mechanism"] == "discrete_laplace" and c["scale"] == pytest.approx(c["sensitivity"] / c["epsilon"])
         D = 40 if unit == "person" else None
-        assert c["sensitivity"] == budget.sensitivity(unit, c["name"], max_contacts=D, clip=60)
+        assert c["sensitivity"] == budget.sensitivity(unit, c["name"].split(":")[0], max_contacts=D, clip=60)
     total = sum(c["epsilon"] for c in m["components"])
     assert total <= m["epsilon_total"] and total == pytest.approx(m["epsilon_total"], rel=1e-12)
     assert m["epsilon_spent"] == pytest.approx(m["epsilon_total"], rel=1e-12)
@@ -289,7 +290,9 @@ def test_person_shares_split_across_four_components():
 
     p = parse_policy(_policy("person"))
     shares = epsilon_shares(p)
-    assert set(shares) == {"supernode_sizes", "superedge_counts", "degree_histograms", "weight_totals"}
+    # issue 13: the views are a fifth budgeted component by default
+    assert set(shares) == {"supernode_sizes", "superedge_counts", "degree_histograms", "weight_totals",
+                           "contact_views"}
     assert sum(shares.values()) <= 3.0 and math.isclose(sum(shares.values()), 3.0)
     p = parse_policy(_policy("person", superedge_counts={"share": 0.7}))
     shares = epsilon_shares(p)
@@ -336,9 +339,11 @@ clip = 30
 """)
     release, path = run_release(tmp_path / "policy.toml", tmp_path / "contacts.csv", tmp_path / "people.csv",
                                 tmp_path / "out", seed=2)
-    # issue 12: degree sequences and the triangle count are on by default under unit edge
-    assert [c["name"] for c in release.manifest["components"]] == ["weight_totals", "degree_sequences",
-                                                                     "triangle_count"]
+    # issue 13: plus a view of each grouping attribute (the policy sets no share); issue 12: degree sequences and
+    # the triangle count are on by default under unit edge
+    assert [c["name"] for c in release.manifest["components"]] == ["weight_totals", "contact_views:age",
+                                                                    "contact_views:zone", "degree_sequences",
+                                                                    "triangle_count"]
     assert release.manifest["components"][0]["sensitivity"] == 30
     assert release.truth["weight_totals"].count.sum() > 0
     bundle = read_bundle(path)

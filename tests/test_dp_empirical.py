@@ -115,9 +115,9 @@ def karate_pair():
     u, v = next((a, b) for a in G for b in G if a < b and club[a] != club[b] and not G.has_edge(a, b))
     G2 = G.copy()
     G2.add_edge(u, v)
-    # superedge counts alone, so the whole EPS is theirs (issue 12 added other statistics to the defaults)
-    policy = parse_policy(simple_policy(["club"], min_size=5, epsilon=EPS, components={
-        "degree_sequences": {"enabled": False}, "triangle_count": {"enabled": False}}))
+    # the superedge counts get the whole EPS (an explicit share: no default contact views, issue 13)
+    policy = parse_policy(simple_policy(["club"], min_size=5, epsilon=EPS,
+                                        components={"superedge_counts": {"share": 1.0}}))
     nets, truths = [], []
     for g in (G, G2):
         edges, people = graph_tables(g, {"club": club})

@@ -30,7 +30,7 @@ MEMBERS = set(METHODS) | set(Engine.__annotations__)
 def test_the_protocol_lists_what_the_rest_of_the_code_calls():
     assert {"describe", "read_people", "stage_edges", "first_staged_row", "publish_staged_edges",
             "discard_staged_edges", "superedge_counts", "weight_totals", "degrees", "degree_histograms",
-            "contact_profiles", "edge_arrays", "close"} == set(METHODS)
+            "contact_profiles", "edge_arrays", "close", "view_counts"} == set(METHODS)  # view_counts: issue 13
     assert set(Engine.__annotations__) == {"name"}
     for name in METHODS:
         assert inspect.getdoc(getattr(Engine, name)), f"Engine.{name} is not documented"

@@ -2,7 +2,7 @@
 mechanism, and the policy decisions about degree sequences and the triangle count.
 
 The sorted degree sequences' sensitivity 2 is checked by brute force in ``tests/test_sensitivity.py`` (on the
-engine's own counts, with the other components). Derivations: ``docs/privacy.md`` sections 3.1 and 3.3.
+engine's own counts, with the other components). Derivations: ``docs/privacy.md`` sections 3.1 and 3.4.
 
 Outside references: networkx's triangle counts (``networkx.triangles``) on the classic networks it ships
 (Zachary's karate club, Zachary 1977: 45 triangles, value from networkx; Les Miserables, Knuth 1993; the
@@ -245,8 +245,9 @@ def test_a_release_publishes_the_ladder_output_and_never_its_widths():
     edges, people = graph_tables(g, {"club": club})
     rel = aggpub.release_tables(edges, people, simple_policy(["club"], min_size=5), seed=3)
     spend = next(c for c in rel.manifest["components"] if c["name"] == "triangle_count")
-    assert spend == {"name": "triangle_count", "epsilon": pytest.approx(0.2), "sensitivity": 1.0,
-                     "mechanism": "ladder", "scale": pytest.approx(10.0)}
+    shares = P.epsilon_shares(P.parse_policy(simple_policy(["club"], min_size=5)), 34)
+    assert spend == {"name": "triangle_count", "epsilon": pytest.approx(shares["triangle_count"]),
+                     "sensitivity": 1.0, "mechanism": "ladder", "scale": pytest.approx(2 / shares["triangle_count"])}
     assert isinstance(rel.manifest["triangle_count"], int)
     assert rel.truth["triangle_count"].count == 45
     assert not any("second" in k or "width" in k or "ladder" in k for k in rel.manifest)
@@ -277,7 +278,8 @@ def test_person_unit_releases_neither_by_default():
     policy = P.parse_policy(_person_policy())
     assert not P.component_enabled(policy, "degree_sequences") and not P.component_enabled(policy, "triangle_count")
     rel = aggpub.release_tables(edges, people, policy, seed=2)
-    assert [c["name"] for c in rel.manifest["components"]] == ["supernode_sizes", "superedge_counts"]
+    assert [c["name"] for c in rel.manifest["components"]] == ["supernode_sizes", "superedge_counts",
+                                                                "contact_views:club"]
     assert "degree_sequences" not in rel.tables and "triangle_count" not in rel.manifest
     # explicitly off is fine under person
     P.parse_policy(_person_policy(degree_sequences={"enabled": False}, triangle_count={"enabled": False}))
@@ -286,9 +288,11 @@ def test_person_unit_releases_neither_by_default():
 def test_defaults_depend_on_the_policy_and_the_public_number_of_people(monkeypatch):
     plain = P.parse_policy(simple_policy(["a"], min_size=5))
     limit = P.TRIANGLE_AUTO_MAX_PEOPLE
+    # weights 2 for the superedge counts, the default contact view (issue 13) and the degree sequences, 1 for triangles
     assert P.epsilon_shares(plain, limit) == pytest.approx(
-        {"superedge_counts": 0.4, "degree_sequences": 0.4, "triangle_count": 0.2})
-    assert P.epsilon_shares(plain, limit + 1) == pytest.approx({"superedge_counts": 0.5, "degree_sequences": 0.5})
+        {"superedge_counts": 2 / 7, "contact_views": 2 / 7, "degree_sequences": 2 / 7, "triangle_count": 1 / 7})
+    assert P.epsilon_shares(plain, limit + 1) == pytest.approx(
+        {"superedge_counts": 1 / 3, "contact_views": 1 / 3, "degree_sequences": 1 / 3})
     assert P.epsilon_shares(plain) == P.epsilon_shares(plain, limit)  # before the person table is read
     forced = P.parse_policy(simple_policy(["a"], min_size=5, components={"triangle_count": {"enabled": True}}))
     assert P.component_enabled(forced, "triangle_count", 10 * limit)
@@ -301,9 +305,10 @@ def test_defaults_depend_on_the_policy_and_the_public_number_of_people(monkeypat
     edges, people = graph_tables(g, {"club": nx.get_node_attributes(g, "club")})
     monkeypatch.setattr(P, "TRIANGLE_AUTO_MAX_PEOPLE", 33)
     rel = aggpub.release_tables(edges, people, simple_policy(["club"], min_size=5), seed=4)
-    assert [c["name"] for c in rel.manifest["components"]] == ["superedge_counts", "degree_sequences"]
+    assert [c["name"] for c in rel.manifest["components"]] == ["superedge_counts", "contact_views:club",
+                                                                "degree_sequences"]
     assert "triangle_count" not in rel.manifest
     monkeypatch.setattr(P, "TRIANGLE_AUTO_MAX_PEOPLE", 34)
     rel = aggpub.release_tables(edges, people, simple_policy(["club"], min_size=5), seed=4)
-    assert [c["name"] for c in rel.manifest["components"]] == ["superedge_counts", "degree_sequences",
-                                                                "triangle_count"]
+    assert [c["name"] for c in rel.manifest["components"]] == ["superedge_counts", "contact_views:club",
+                                                                "degree_sequences", "triangle_count"]

@@ -191,8 +191,10 @@ def test_failure_while_writing_the_bundle_keeps_the_charge(setup, monkeypatch):
     assert not (s["dir"] / "crashed").exists() and _leftovers(s["dir"]) == []
     (row,) = Ledger(s["ledger"]).spends()
     assert row.status == "failed" and row.epsilon == 1.0
-    # issue 12: the plainest policy also releases degree sequences and the triangle count (0.4 / 0.4 / 0.2)
-    assert row.components == pytest.approx({"superedge_counts": 0.4, "degree_sequences": 0.4, "triangle_count": 0.2})
+    # issue 13: the view of the grouping attribute by default; issue 12: degree sequences and the triangle count
+    # (weights 2, 2, 2, 1 beside the superedge counts)
+    assert row.components == pytest.approx({"superedge_counts": 2 / 7, "contact_views": 2 / 7,
+                                            "degree_sequences": 2 / 7, "triangle_count": 1 / 7})
     assert row.bundle_path == str(s["dir"] / "crashed") and row.policy_title == "karate club test release"
 
 

@@ -44,7 +44,9 @@ def _policy(town, tmp_path, extra: str):
 
 
 def test_plan_reads_no_edges_draws_no_noise_and_writes_nothing(town, tmp_path, capsys, no_noise):
-    policy = _policy(town, tmp_path, "[gate]\nmax_contact_matrix_median_relative_error = 0.5\n"
+    # 0.75 (was 0.5): issue 12's default split gives the superedge counts 2/7 of epsilon beside the views and the
+    # degree sequences, so epsilon 0.5 with min_size 20 predicts about 0.59 on this 3,000-person town
+    policy = _policy(town, tmp_path, "[gate]\nmax_contact_matrix_median_relative_error = 0.75\n"
                                      "[assumptions]\ncontacts_per_person = 11.0\n")
     before = tree_snapshot(tmp_path)
     code = main(["plan", "--policy", str(policy), "--nodes", str(town["people"]), "--edges",

@@ -34,9 +34,9 @@ def test_minimal_policy(tmp_path):
     assert p.privacy.unit == "edge" and p.privacy.epsilon == 1.0
     assert p.grouping.attributes == ("age_band", "district")
     assert p.grouping.merge_order == ("district", "age_band")
-    # issue 12: under unit edge the plainest policy also releases degree sequences and the triangle count
-    assert epsilon_shares(p) == pytest.approx({"superedge_counts": 0.4, "degree_sequences": 0.4,
-                                               "triangle_count": 0.2})
+    # issue 13: views by default; issue 12: degree sequences and the triangle count (weights 2, 2, 2, 1)
+    assert epsilon_shares(p) == pytest.approx({"superedge_counts": 2 / 7, "contact_views": 2 / 7,
+                                               "degree_sequences": 2 / 7, "triangle_count": 1 / 7})
 
 
 @pytest.mark.parametrize("text, key", [

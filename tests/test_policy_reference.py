@@ -114,6 +114,10 @@ def test_each_documented_example_parses_strictly_and_sets_the_key(key, tmp_path)
         (attr, spec), = example["grouping"]["hierarchies"].items()
         assert policy.grouping.hierarchies[attr] == tuple(spec["levels"])
         return
+    if key.section == "domains.<attribute>":  # issue 13: declared view domains
+        (attr, spec), = example["domains"].items()
+        assert policy.domains[attr] == tuple(spec["values"])
+        return
     written = lookup(example, key.path)
     got = getattr(section_object(policy, key.section), key.field)
     expected = {"path": lambda v: tmp_path / v, "strings": tuple}.get(key.kind, lambda v: v)(written)
@@ -140,7 +144,8 @@ def test_every_dataclass_field_is_a_documented_key():
     internal = {("GroupingPolicy", "seed_note"), ("GroupingPolicy", "hierarchies"), ("ComponentPolicy", "name"),
                 ("ReleasePolicy", "source_path")}
     sections = {P.PrivacyPolicy: "privacy", P.GroupingPolicy: "grouping", P.LedgerPolicy: "ledger",
-                P.GatePolicy: "gate", P.InputPolicy: "input", P.AssumptionsPolicy: "assumptions"}
+                P.GatePolicy: "gate", P.InputPolicy: "input", P.AssumptionsPolicy: "assumptions",
+                P.LayersPolicy: "layers"}
     for cls, section in sections.items():
         for f in dataclasses.fields(cls):
             if (cls.__name__, f.name) in internal:
@@ -148,7 +153,8 @@ def test_every_dataclass_field_is_a_documented_key():
             key = next(k for k in P.POLICY_KEYS if k.section == section and k.field == f.name)
             assert key.path in documented
     for f in dataclasses.fields(P.ReleasePolicy):
-        if f.name in {"privacy", "grouping", "components", "ledger", "gate", "input", "assumptions"}:
+        if f.name in {"privacy", "grouping", "components", "ledger", "gate", "input", "assumptions", "layers",
+                      "domains"}:
             assert f"## `[{f.name}]`" in text
         elif ("ReleasePolicy", f.name) not in internal:
             assert f.name in documented
@@ -188,7 +194,7 @@ def test_documented_defaults_are_what_the_parser_applies(tmp_path):
             continue
         block = text.split(f"### `{key.path}`\n", 1)[1]
         default = re.search(r"^- default: (.*)$", block, flags=re.M).group(1)
-        if key.section in ("ledger", "grouping.hierarchies.<attribute>"):
+        if key.section in ("ledger", "grouping.hierarchies.<attribute>", "domains.<attribute>"):
             assert default == "required"
             continue
         value = getattr(section_object(policy, key.section), key.field)
@@ -217,12 +223,13 @@ def test_complete_example_parses_and_covers_every_section(tmp_path):
     policy = P.read_policy(tmp_path / "policy.toml")
     data = tomllib.loads(example)
     for s in P.POLICY_SECTIONS:
-        if s.name:
-            assert lookup(data, s.name.replace("<attribute>", "age_band")) is not None
+        if s.name:  # the example declares the domain of "role" (issue 13)
+            attr = "role" if s.name.startswith("domains") else "age_band"
+            assert lookup(data, s.name.replace("<attribute>", attr)) is not None
     assert policy.ledger.path == tmp_path / "quennet-vale.ledger"
-    assert P.epsilon_shares(policy) == pytest.approx({"superedge_counts": 0.35, "degree_histograms": 0.1,
-                                                      "weight_totals": 0.1, "degree_sequences": 0.3,
-                                                      "triangle_count": 0.15})
+    assert P.epsilon_shares(policy) == pytest.approx({"superedge_counts": 0.3, "degree_histograms": 0.1,
+                                                      "weight_totals": 0.1, "contact_views": 0.2,
+                                                      "degree_sequences": 0.2, "triangle_count": 0.1})
 
 
 def test_rules_are_documented_and_each_can_fail(tmp_path):
@@ -245,6 +252,10 @@ def test_rules_are_documented_and_each_can_fail(tmp_path):
         {"gate": {"contact_matrix_attribute": "zone"}},
         {"privacy": {"unit": "person", "epsilon": 1.0, "max_contacts": 5},
          "components": {"triangle_count": {"enabled": True}}},
+        # issue 13: layers declared without values; a combination of one attribute; a value listed twice
+        {"layers": {"column": "setting"}},
+        {"components": {"contact_views": {"combinations": ["age_band"]}}},
+        {"domains": {"age_band": {"values": ["a", "a"]}}},
     ]
     assert len(breaking) == len(P.POLICY_RULES)
     for extra in breaking:

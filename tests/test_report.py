@@ -74,7 +74,8 @@ def test_report_html_is_self_contained_and_marked_confidential(released):
     text = (report / REPORT_HTML).read_text()
     p = _Collect()
     p.feed(text)
-    assert len(p.imgs) == 4 and all(src.startswith("data:image/png;base64,") for src in p.imgs)
+    # 5 figures: issue 13 added the contact matrices of the default views
+    assert len(p.imgs) == 5 and all(src.startswith("data:image/png;base64,") for src in p.imgs)
     assert p.links == []  # nothing loaded from outside the file
     assert not re.search(r"""(src|href)=["']https?:""", text)
     assert sorted(p.marks) == ["mark bottom", "mark top"]  # fixed header and footer: on every printed page
@@ -170,8 +171,8 @@ def test_report_opens_in_headless_chromium_and_its_images_load(released):
     m = re.search(r'id="image-check"[^>]*data-images="(\d+)"[^>]*data-images-loaded="(\d+)"', dom)
     assert m, "the report's image check did not run in the browser"
     total, loaded = int(m.group(1)), int(m.group(2))
-    assert total == 4 and loaded == total
-    assert dom.count('data-loaded="yes"') == 4 and 'data-loaded="no"' not in dom
+    assert total == 5 and loaded == total  # issue 13: the views' figure is the fifth
+    assert dom.count('data-loaded="yes"') == 5 and 'data-loaded="no"' not in dom
     assert "CONFIDENTIAL" in dom
 
 

@@ -187,11 +187,12 @@ def test_sample_network_records_the_sampler_and_the_fitted_affinity():
 
 def _old_style_bundle(rel, path):
     """The bundle an earlier aggpub wrote: no estimate column, no degree sequences, no triangle count."""
-    tables = {k: v for k, v in rel.tables.items() if k != "degree_sequences"}
+    tables = {k: v for k, v in rel.tables.items() if k in ("supernodes", "superedges")}
     se = tables["superedges"]
     tables["superedges"] = se.drop_columns(["edge_count_estimate"])
     manifest = {k: v for k, v in rel.manifest.items()
-                if k not in ("triangle_count", "superedge_estimates", "superedge_estimates_max_total_gap")}
+                if k not in ("triangle_count", "superedge_estimates", "superedge_estimates_max_total_gap",
+                             "view_domains", "views")}
     manifest["components"] = [c for c in manifest["components"] if c["name"] == "superedge_counts"]
     manifest["rows"] = {k: t.num_rows for k, t in tables.items()}
     from aggpub.bundle.datacard import render_datacard

@@ -187,6 +187,8 @@ def _plots(audit: dict) -> dict:
         ax.set_title(f"privacy budget of this release (total epsilon {total:g})", fontsize=10)
         ax.legend(fontsize=8, loc="upper center", bbox_to_anchor=(0.5, -0.6), ncol=3)
         out["budget"] = _png(fig)
+    if plot.get("views"):
+        out["views"] = _views_plot(plot["views"], plt)
     if "sizes" in plot:
         sizes = np.asarray(plot["sizes"])
         fig, ax = plt.subplots(figsize=(7, 3.4))
@@ -199,6 +201,66 @@ def _plots(audit: dict) -> dict:
         ax.legend(fontsize=8)
         out["sizes"] = _png(fig)
     return out
+
+
+def _views_plot(views: dict, plt) -> str:
+    """True against released contact matrices of (at most) the first two views, all layers together."""
+    items = list(views.items())[:2]
+    fig, axes = plt.subplots(len(items), 3, figsize=(13, 4.3 * len(items)), squeeze=False)
+    for row, (name, (values, va, vb, true, est)) in zip(axes, items):
+        pos = {v: i for i, v in enumerate(values)}
+        k = len(values)
+        t = np.full((k, k), np.nan)
+        e = np.full((k, k), np.nan)
+        ia = np.array([pos[x] for x in va])
+        ib = np.array([pos[x] for x in vb])
+        t[ia, ib] = t[ib, ia] = true
+        e[ia, ib] = e[ib, ia] = est
+        top = float(np.nanmax(np.abs(t))) or 1.0
+        for ax, data, title, cmap, lim in ((row[0], t, f"true contacts by {name}", "viridis", (0, top)),
+                                           (row[1], e, "released estimate (aggpub matrix)", "viridis", (0, top)),
+                                           (row[2], e - t, "released minus true", "RdBu_r", None)):
+            if lim is None:
+                m = float(np.nanmax(np.abs(data))) or 1.0
+                lim = (-m, m)
+            im = ax.imshow(data, cmap=cmap, vmin=lim[0], vmax=lim[1])
+            ax.set_title(title, fontsize=10)
+            step = max(1, k // 12)
+            ax.set_xticks(range(0, k, step))
+            ax.set_yticks(range(0, k, step))
+            ax.set_xticklabels(values[::step], rotation=90, fontsize=7)
+            ax.set_yticklabels(values[::step], fontsize=7)
+            fig.colorbar(im, ax=ax, fraction=0.046, pad=0.04)
+    fig.tight_layout()
+    return _png(fig)
+
+
+def _views_html(views: dict, plots: dict) -> list:
+    """Section 3b: the released views against the true contact matrices (issue 13)."""
+    parts = ["<h2>3b. Contact matrices by attribute (views)</h2>"]
+    rows = []
+    for name, entry in views.items():
+        for method, label in (("consistent", "least squares (what researchers get)"), ("view", "raw view")):
+            w = entry.get(method, {})
+            if "skipped" in w or not w:
+                rows.append([html.escape(name), label, "all", html.escape(w.get("skipped", "n/a")), "", "", ""])
+                continue
+            rows.append([html.escape(name), label, "all", _fmt(w["mean_absolute_error"]), _fmt(w["rmse"]),
+                         _fmt(w["median_relative_error"]), _fmt(w["coverage"])])
+            for lay, lw in (w.get("per_layer") or {}).items():
+                rows.append([html.escape(name), label, html.escape(lay), _fmt(lw["mean_absolute_error"]),
+                             _fmt(lw["rmse"]), _fmt(lw["median_relative_error"]), _fmt(lw["coverage"])])
+    parts.append(_table(["view", "estimate", "layer", "mean abs. error", "RMSE", "median rel. error",
+                         "share of cells inside their 95% interval"], rows))
+    placed = {n: e["contacts_placed_by_supernode_labels"] for n, e in views.items()
+              if "contacts_placed_by_supernode_labels" in e}
+    if placed:
+        parts.append('<p class="note">Share of the true contacts whose two supernodes are both labelled with an '
+                     "exact value (the rest touch a generalised or <code>*</code> label and cannot be placed by the "
+                     "supernode table alone; the views place them all): "
+                     + ", ".join(f"{html.escape(n)} {_fmt(v)}" for n, v in placed.items()) + ".</p>")
+    parts.append(_img("views", plots, "true and released contact matrices"))
+    return parts
 
 
 # ---------------------------------------------------------------------- HTML
@@ -397,6 +459,9 @@ def render_html(audit: dict) -> str:
         parts.append(_img("errors", plots, "cumulative distribution of relative errors per workload"))
     else:
         parts.append("<p>No superedge counts were released; no query workload was measured.</p>")
+
+    if audit.get("contact_views"):  # issue 13
+        parts += _views_html(audit["contact_views"], plots)
 
     # structure
     parts.append("<h2>4. Structure of networks sampled from the release</h2>")

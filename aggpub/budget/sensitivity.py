@@ -23,7 +23,7 @@ from ..errors import PrivacyError
 #: person x supernode contact profiles (``docs/privacy-grouping.md``). ``degree_sequences`` is the
 #: vector of every supernode's sorted degrees. ``triangle_count`` has no useful bound of its own (one
 #: contact closes up to ``n - 2`` triangles): it is released by the ladder mechanism, and its entry is
-#: the sensitivity of that mechanism's rung score, 1 (``docs/privacy.md`` section 3.3;
+#: the sensitivity of that mechanism's rung score, 1 (``docs/privacy.md`` section 3.4;
 #: :mod:`aggpub.noise.ladder`). Neither has a bound under ``person``; the policy refuses them there.
 SENSITIVITY = {
     ("edge", "superedge_counts"): 1,
@@ -38,6 +38,15 @@ SENSITIVITY = {
     ("person", "superedge_counts"): "D",
     ("person", "degree_histograms"): "2D+1",
     ("person", "weight_totals"): "D*w_max",
+    # contact views (issue 13; docs/privacy.md section 3.3): one view, all of its layers together (each
+    # contact in one layer: parallel composition); weighted views with their own clip bound w_max;
+    # people per value of an attribute outside the grouping under unit person (one person, one value)
+    ("edge", "contact_views"): 1,
+    ("edge", "contact_view_weights"): "w_max",
+    ("edge", "view_people"): 0,
+    ("person", "contact_views"): "D",
+    ("person", "contact_view_weights"): "D*w_max",
+    ("person", "view_people"): 1,
 }
 
 

@@ -33,6 +33,14 @@ SCHEMAS = {
                       "ci95_half_width": pa.int64()},
     "degree_sequences": {"supernode": pa.int64(), "position": pa.int64(), "degree_noisy": pa.int64(),
                          "degree_estimate": pa.float64(), "noise_scale": pa.float64(), "ci95_half_width": pa.int64()},
+    # contact views (issue 13)
+    "contact_views": {"view": pa.string(), "layer": pa.string(), "value_a": pa.string(), "value_b": pa.string(),
+                      "contacts": pa.int64(), "contacts_unclamped": pa.int64(), "noise_scale": pa.float64()},
+    "contact_view_weights": {"view": pa.string(), "layer": pa.string(), "value_a": pa.string(),
+                             "value_b": pa.string(), "weight_total": pa.int64(),
+                             "weight_total_unclamped": pa.int64(), "noise_scale": pa.float64()},
+    "view_people": {"view": pa.string(), "value": pa.string(), "people": pa.int64(), "noise_scale": pa.float64(),
+                    "noise_terms": pa.int64()},
 }
 #: Columns a table may lack (bundles made before they existed) but whose type is checked when present.
 OPTIONAL_COLUMNS = {"superedges": {"edge_count_estimate": pa.float64(), "edge_count_unclamped": pa.int64()}}
@@ -268,6 +276,7 @@ def _check_invariants(manifest, tables, res):
     _check_weight_totals(tables.get("weight_totals"), n, res)
     _check_degree_sequences(manifest, tables.get("degree_sequences"), sizes, res)
     _check_triangle_count(manifest, res)
+    _check_contact_views(manifest, tables, sizes, res)
 
 
 def _spend(manifest, name):
@@ -375,3 +384,94 @@ def _check_weight_totals(wt, n, res):
         res.problems.append(f"weight_totals.parquet: {len(a)} rows, expected every one of the "
                             f"{n * (n + 1) // 2} cells exactly once (zeros included)")
     res.checked.append("weight totals: every cell once, within [0, max_weight_total]")
+
+
+# ---- contact views (issue 13)
+
+def _view_values(name, domains):
+    out = [""]
+    for a in name.split(","):
+        out = [f"{p}|{x}" if p else str(x) for p in out for x in domains.get(a, [])]
+    return out
+
+
+def _check_view_table(stem, column, kind, table, views, domains, layers, spends, res):
+    """Every (layer, value pair) of every listed view once, clamped = max(unclamped, 0), the spend's scale."""
+    name_col = np.asarray(table.column("view").to_pylist(), dtype=object)
+    listed = {v["name"] for v in views}
+    extra = set(name_col.tolist()) - listed
+    if extra:
+        res.problems.append(f"{stem}.parquet: view(s) {sorted(extra)} not listed in the manifest's 'views'")
+    for v in views:
+        name = v["name"]
+        rows = np.flatnonzero(name_col == name)
+        values = _view_values(name, domains)
+        k = len(values)
+        n_l = len(layers) if (layers and v.get("layered")) else 1
+        expected = n_l * k * (k + 1) // 2
+        sub = table.take(pa.array(rows, type=pa.int64()))
+        pos = {x: i for i, x in enumerate(values)}
+        a = np.array([pos.get(x, -1) for x in sub.column("value_a").to_pylist()])
+        b = np.array([pos.get(x, -1) for x in sub.column("value_b").to_pylist()])
+        lay = sub.column("layer").to_pylist()
+        if n_l > 1:
+            lpos = {x: i for i, x in enumerate(layers)}
+            li = np.array([lpos.get(x, -1) for x in lay])
+        else:
+            li = np.array([0 if x is None else -1 for x in lay])
+        if len(rows) != expected or (a < 0).any() or (b < 0).any() or (a > b).any() or (li < 0).any() \
+                or len(np.unique((li * k + a) * k + b)) != len(rows):
+            res.problems.append(f"{stem}.parquet: view '{name}' must list each of its {expected} (layer, value "
+                                "pair) cells once, value_a <= value_b in the declared order, zeros included")
+            continue
+        c = np.asarray(sub.column(column).to_numpy())
+        cu = np.asarray(sub.column(f"{column}_unclamped").to_numpy())
+        if not np.array_equal(c, np.maximum(cu, 0)):
+            res.problems.append(f"{stem}.parquet: view '{name}': '{column}' is not the unclamped value floored at 0")
+        scale = np.unique(np.asarray(sub.column("noise_scale").to_numpy()))
+        spend = spends.get(f"{kind}:{name}")
+        if spend is None:
+            res.problems.append(f"{stem}.parquet: view '{name}' has no '{kind}:{name}' spend in the manifest")
+        elif len(scale) != 1 or not np.isclose(scale[0], spend.get("scale", np.nan), rtol=1e-12):
+            res.problems.append(f"{stem}.parquet: view '{name}': noise_scale differs from its spend's scale")
+
+
+def _check_contact_views(manifest, tables, sizes, res):
+    """Views, their weighted twins and the people per value against the manifest's ``views`` and ``layers``."""
+    cv, cw, vp = tables.get("contact_views"), tables.get("contact_view_weights"), tables.get("view_people")
+    views = manifest.get("views")
+    if cv is None and cw is None and vp is None:
+        if views:
+            res.problems.append(f"{MANIFEST}: 'views' listed but contact_views.parquet is missing")
+        return
+    if not isinstance(views, list) or not views or cv is None:
+        res.problems.append(f"{MANIFEST}: view tables present without a 'views' list (or contact_views.parquet)")
+        return
+    domains = manifest.get("view_domains") or {}
+    layers = (manifest.get("layers") or {}).get("values") or []
+    spends = {c.get("name"): c for c in manifest.get("components", []) if isinstance(c, dict)}
+    for v in views:
+        if not isinstance(v, dict) or not all(a in domains for a in v.get("attributes", [None])):
+            res.problems.append(f"{MANIFEST}: a view lacks its attributes' domains in 'view_domains'")
+            return
+    _check_view_table("contact_views", "contacts", "contact_views", cv, views, domains, layers, spends, res)
+    if cw is not None:
+        _check_view_table("contact_view_weights", "weight_total", "contact_view_weights", cw,
+                          [v for v in views if v.get("weighted")], domains, layers, spends, res)
+    elif any(v.get("weighted") for v in views):
+        res.problems.append(f"{MANIFEST}: weighted views listed but contact_view_weights.parquet is missing")
+    if vp is not None:
+        p = np.asarray(vp.column("people").to_numpy())
+        exact = manifest.get("privacy_unit") == "edge"
+        if exact:
+            names = np.asarray(vp.column("view").to_pylist(), dtype=object)
+            for v in views:
+                if (p < 0).any() or int(p[names == v["name"]].sum()) != int(np.asarray(sizes).sum()):
+                    res.problems.append(f"view_people.parquet: view '{v['name']}': exact people per value must "
+                                        "be non-negative and add up to the people of the supernodes")
+                    break
+            if (np.asarray(vp.column("noise_scale").to_numpy()) != 0).any():
+                res.problems.append("view_people.parquet: people per value are exact under unit 'edge' "
+                                    "(noise_scale 0)")
+    res.checked.append(f"contact views: {len(views)} view(s), every (layer, value pair) cell once, scales as spent"
+                       + (f", {len(layers)} layers" if layers else ""))

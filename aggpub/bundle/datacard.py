@@ -55,11 +55,13 @@ def render_datacard(manifest: dict) -> str:
          "`size` (least-squares projection, then rounding)."),
         ("weight_totals", "`supernode_a`, `supernode_b`, `weight_total`: noisy totals of contact weights, "
          "each weight clipped to the policy's bound and rounded to an integer unit, clamped to "
-         "`[0, max_weight_total]` (the bound times the possible pairs); every cell including zeros."),
+         "`[0, max_weight_total]` (the bound times the possible pairs); every cell including zeros. "
+         "`weight_total_unclamped` is the same noisy value before clamping (unbiased): sum it, not "
+         "`weight_total`, when you add up many cells."),
         ("degree_sequences", "`supernode`, `position`, `degree_noisy`, `degree_estimate`: one row per member of "
          "every supernode, the members' numbers of contacts sorted within the supernode (position 0 has the "
          "fewest), with noise (`degree_noisy`) and as estimated (`degree_estimate`, see below)."),
-    ) if stem in rows)
+    ) if stem in rows) + _views_text(manifest)
     return f"""# Aggregated contact network release
 {seeded_text}
 This folder is a privacy-protected summary of a contact network. People were
@@ -119,3 +121,31 @@ The epsilons add up to epsilon_total = {manifest['epsilon_total']:g} (sequential
 
 {CAUTIONS}
 """
+
+
+def _views_text(manifest: dict) -> str:
+    """The reader's guide to the contact views (issue 13), from the manifest's ``views`` and ``layers``."""
+    views = manifest.get("views")
+    if not views:
+        return ""
+    layers = manifest.get("layers") or {}
+    names = ", ".join(f"`{v['name']}`" for v in views)
+    lay = (f" per layer of `{layers.get('column')}` ({', '.join(f'`{x}`' for x in layers.get('values', []))}; a pair "
+           "of people recorded in several layers counts once, in the first of its layers in this order)"
+           if layers else "")
+    weighted = any(v.get("weighted") for v in views)
+    people = ("exact (the person table is public under this privacy unit)" if manifest.get("privacy_unit") == "edge"
+              else "noisy: `noise_scale` is the scale of each noisy count summed and `noise_terms` how many were "
+                   "summed")
+    return (f"- `contact_views.parquet`: contact matrices by attribute ({names}){lay}. One row per `view`, "
+            "`layer` (empty without layers) and unordered pair of declared values `value_a <= value_b`, every pair "
+            "including zeros: `contacts_unclamped` is the noisy number of contacts between people of the two "
+            "values (unbiased; use it for sums and estimates), `contacts` the same floored at 0, `noise_scale` the "
+            "discrete Laplace scale. A view places every contact by the exact values of its two people, also "
+            "when their supernodes carry a generalised value or `*`. Run `aggpub matrix <this folder> --by "
+            "ATTR [--layer NAME] [--per-person] --out FILE.csv` (or `aggpub.contact_matrix` in Python) for the "
+            "most precise consistent estimate with intervals.\n"
+            + ("- `contact_view_weights.parquet`: the same with `weight_total` (clipped contact weights, e.g. "
+               "minutes) instead of counts; `aggpub matrix --weight`.\n" if weighted else "")
+            + f"- `view_people.parquet`: `view`, `value`, `people`: the people of each value, {people}; the "
+            "denominators of per-person rates.\n")

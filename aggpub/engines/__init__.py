@@ -101,6 +101,16 @@ class Engine(Protocol):
     def contact_profiles(self, assignment: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """Per person and supernode, that person's contacts in the supernode: ``person``, ``supernode``, ``count``."""
 
+    def view_counts(self, codes: Sequence[np.ndarray], n_values: Sequence[int], n_layers: int,
+                    clip: float | None = None) -> list[np.ndarray]:
+        """Contacts (or totals of weights clipped to ``[0, clip]`` and rounded) between every pair of values,
+        per layer, for several views (issue 13).
+
+        ``codes[i][p]`` is person ``p``'s value in view ``i`` (``0 .. n_values[i] - 1``); the layer of a
+        contact is its stored layer (0 without a layer column). Each result has shape
+        ``(n_layers, K (K + 1) / 2)``, cells in the row-major upper triangle of value pairs, zeros included.
+        """
+
     def edge_arrays(self) -> tuple[np.ndarray, np.ndarray]:
         """All contacts as arrays ``u < v`` of dense ids (small networks and the audit)."""
 

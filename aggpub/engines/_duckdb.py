@@ -270,6 +270,18 @@ class DuckDBEngine:
             return f"TRY_CAST(trim({quote_ident(columns.weight)}) AS DOUBLE)"
         return f"CAST({quote_ident(columns.weight)} AS DOUBLE)"
 
+    @staticmethod
+    def _layer_sql(columns: EdgeColumns) -> str:
+        """The layer's position among the declared layers (text compared exactly), NULL when undeclared.
+
+        Without a layer column every contact is in layer 0.
+        """
+        if not columns.layer:
+            return "CAST(0 AS SMALLINT)"
+        col = f"CAST({quote_ident(columns.layer)} AS VARCHAR)"
+        cases = " ".join(f"WHEN {quote_literal(v)} THEN {i}" for i, v in enumerate(columns.layer_values))
+        return f"CAST(CASE {col} {cases} END AS SMALLINT)"
+
     def stage_edges(self, source: Source, columns: EdgeColumns, ids: pa.Table) -> EdgeCounts:
         """Map, canonicalise and collapse the edges in one scan (see :meth:`aggpub.engines.Engine.stage_edges`)."""
         e_sql = self._relation_sql(source)
@@ -284,16 +296,20 @@ class DuckDBEngine:
         if "nid" in ids.column_names and columns.source_type.kind == columns.target_type.kind == INTEGER:
             a_sql, b_sql, id_col = quote_ident(columns.source), quote_ident(columns.target), "nid"
             missing = "(e.a IS NULL OR e.b IS NULL)"
+        # issue 13: the layer's position among the declared layers (NULL when undeclared); the GROUP BY that
+        # collapses a pair's rows keeps its first declared layer (the public one-layer rule)
         q = f"""
             CREATE OR REPLACE TEMP TABLE __mapped AS
-            WITH e AS (SELECT {a_sql} AS a, {b_sql} AS b, {self._weight_sql(columns)} AS w
+            WITH e AS (SELECT {a_sql} AS a, {b_sql} AS b, {self._weight_sql(columns)} AS w,
+                              {self._layer_sql(columns)} AS l
                        FROM {e_sql}),
                  m AS (SELECT CASE WHEN {missing} THEN {MISSING_ID} ELSE coalesce(ps.idx, {UNKNOWN_ID}) END AS s,
                               CASE WHEN {missing} THEN {MISSING_ID} ELSE coalesce(pt.idx, {UNKNOWN_ID}) END AS t,
-                              e.w
+                              e.w, e.l
                        FROM e LEFT JOIN __ids ps ON e.a = ps.{id_col} LEFT JOIN __ids pt ON e.b = pt.{id_col})
             SELECT least(s, t) AS u, greatest(s, t) AS v, count(*) AS mult, sum(w) AS w,
-                   count(*) FILTER (WHERE w IS NULL OR isnan(w) OR isinf(w) OR w < 0) AS bad_w
+                   count(*) FILTER (WHERE w IS NULL OR isnan(w) OR isinf(w) OR w < 0) AS bad_w,
+                   coalesce(min(l), 0) AS layer, count(*) FILTER (WHERE l IS NULL) AS bad_l
             FROM m GROUP BY 1, 2
         """
         try:
@@ -310,7 +326,8 @@ class DuckDBEngine:
                    coalesce(sum(bad_w) FILTER (WHERE u >= 0), 0),
                    coalesce(sum(mult) FILTER (WHERE u = v AND u >= 0), 0),
                    coalesce(sum(mult - 1) FILTER (WHERE u < v AND u >= 0), 0),
-                   count(*) FILTER (WHERE u < v AND u >= 0)
+                   count(*) FILTER (WHERE u < v AND u >= 0),
+                   coalesce(sum(bad_l) FILTER (WHERE u >= 0), 0)
             FROM __mapped""").fetchall()[0]
         return EdgeCounts(*(int(x) for x in stats))
 
@@ -319,12 +336,14 @@ class DuckDBEngine:
         source, columns = self._staged
         spellings = columns.missing_spellings
         select = (f"CAST({quote_ident(columns.source)} AS VARCHAR) AS a, "
-                  f"CAST({quote_ident(columns.target)} AS VARCHAR) AS b, {self._weight_sql(columns)} AS w")
+                  f"CAST({quote_ident(columns.target)} AS VARCHAR) AS b, {self._weight_sql(columns)} AS w, "
+                  f"{self._layer_sql(columns)} AS l")
         missing = f"({_missing_id_sql('a', spellings)} OR {_missing_id_sql('b', spellings)})"
         known = f"(NOT {missing} AND a IN (SELECT id FROM __ids) AND b IN (SELECT id FROM __ids))"
         predicate = {RowCondition.MISSING_ID: missing,
                      RowCondition.UNKNOWN_PERSON: f"NOT {missing} AND NOT {known}",
-                     RowCondition.BAD_WEIGHT: f"{known} AND (w IS NULL OR isnan(w) OR isinf(w) OR w < 0)"}[condition]
+                     RowCondition.BAD_WEIGHT: f"{known} AND (w IS NULL OR isnan(w) OR isinf(w) OR w < 0)",
+                     RowCondition.BAD_LAYER: f"{known} AND l IS NULL"}[condition]
         return self._first_row(self._relation_sql(source), select, predicate)
 
     def _first_row(self, rel_sql, select, predicate):
@@ -352,7 +371,8 @@ class DuckDBEngine:
         """Keep the staged pairs of known, different people as table ``edges`` (inputs already validated)."""
         with self._long("keeping the contacts"):
             self.con.execute("""CREATE OR REPLACE TABLE edges AS
-                                SELECT CAST(u AS INTEGER) AS u, CAST(v AS INTEGER) AS v, w
+                                SELECT CAST(u AS INTEGER) AS u, CAST(v AS INTEGER) AS v, w,
+                                       CAST(layer AS SMALLINT) AS layer
                                 FROM __mapped WHERE u < v AND u >= 0""")
         self.discard_staged_edges()
         self._degrees = None  # new edges: forget degrees of a previous load
@@ -502,6 +522,50 @@ class DuckDBEngine:
         finally:
             self.con.unregister("__assign")
         return (res["person"].astype(np.int64), res["supernode"].astype(np.int64), res["c"].astype(np.int64))
+
+    def view_counts(self, codes, n_values, n_layers: int, clip=None) -> list:
+        """Contacts (or clipped weight totals) between every pair of values, per layer, for several views.
+
+        Parameters
+        ----------
+        codes : sequence of numpy.ndarray
+            One code array per view: the value (``0 .. n_values[i] - 1``) of every person.
+        n_values : sequence of int
+            Number of values of each view.
+        n_layers : int
+            Declared layers (1 without a layer column).
+        clip : float, optional
+            Sum ``round(min(max(w, 0), clip))`` instead of counting (weighted views).
+
+        Returns
+        -------
+        list of numpy.ndarray of int64, shape ``(n_layers, K (K + 1) / 2)``
+            Row-major upper triangle of value pairs (:func:`aggpub.estimates.views.view_cell_index`), every
+            cell (dense). One pass over the edges for all views: Arrow batches streamed out of DuckDB,
+            numpy gathers and ``bincount`` (inputs already validated).
+        """
+        codes = [np.asarray(c, dtype=np.int64) for c in codes]
+        n_values = [int(k) for k in n_values]
+        n_cells = [k * (k + 1) // 2 for k in n_values]
+        weighted = clip is not None
+        totals = [np.zeros(int(n_layers) * c, dtype=np.float64 if weighted else np.int64) for c in n_cells]
+        w_sql = (f"CAST(round(least(greatest(w, 0), {float(clip)})) AS BIGINT)" if weighted else "NULL")
+        n_people = len(codes[0]) if codes else 0
+        reader = self.con.sql(f"SELECT u, v, layer, {w_sql} AS cw FROM edges").to_arrow_reader(
+            max(EDGE_BATCH_ROWS, n_people))
+        step, done = LongStep(self.progress, "counting contact views"), 0
+        for batch in reader:
+            done += batch.num_rows
+            step.tick(f"{done:,} contacts read")
+            u, v = batch.column(0).to_numpy(), batch.column(1).to_numpy()
+            lay = batch.column(2).to_numpy().astype(np.int64)
+            w = batch.column(3).to_numpy(zero_copy_only=False).astype(np.float64) if weighted else None
+            for code, k, c, tot in zip(codes, n_values, n_cells, totals):
+                x, y = code[u], code[v]
+                lo = np.minimum(x, y)
+                cell = lo * k - (lo * (lo - 1)) // 2 + (np.maximum(x, y) - lo) + lay * c
+                tot += np.bincount(cell, weights=w, minlength=len(tot)).astype(tot.dtype)
+        return [np.rint(t).astype(np.int64).reshape(int(n_layers), c) for t, c in zip(totals, n_cells)]
 
     def edge_arrays(self):
         """All edges as numpy arrays ``u``, ``v`` (for small networks and the audit)."""

@@ -367,17 +367,24 @@ class SparkEngine:
             a_sql, b_sql, key = (f"CAST({_q(columns.source)} AS BIGINT)", f"CAST({_q(columns.target)} AS BIGINT)",
                                  "nid")
             missing, missing_e = "(a IS NULL OR b IS NULL)", "(e.a IS NULL OR e.b IS NULL)"
-        e_sel = self._register(self._sql(f"SELECT {a_sql} AS a, {b_sql} AS b, {w_expr} AS w, __row FROM {ein}"),
-                               "edges_sel")
+        # issue 13: the layer's position among the declared layers (NULL when undeclared)
+        if columns.layer:
+            cases = " ".join(f"WHEN {_lit(v)} THEN {i}" for i, v in enumerate(columns.layer_values))
+            l_expr = f"CAST(CASE CAST({_q(columns.layer)} AS STRING) {cases} END AS SMALLINT)"
+        else:
+            l_expr = "CAST(0 AS SMALLINT)"
+        e_sel = self._register(self._sql(f"SELECT {a_sql} AS a, {b_sql} AS b, {w_expr} AS w, {l_expr} AS l, "
+                                         f"__row FROM {ein}"), "edges_sel")
         try:
             mapped = self._register(self._sql(f"""
                 WITH m AS (SELECT CASE WHEN {missing_e} THEN {MISSING_ID} ELSE coalesce(ps.idx, {UNKNOWN_ID}) END AS s,
                                   CASE WHEN {missing_e} THEN {MISSING_ID} ELSE coalesce(pt.idx, {UNKNOWN_ID}) END AS t,
-                                  e.w
+                                  e.w, e.l
                            FROM {e_sel} e LEFT JOIN {ids_view} ps ON e.a = ps.{key}
                                           LEFT JOIN {ids_view} pt ON e.b = pt.{key})
                 SELECT least(s, t) AS u, greatest(s, t) AS v, count(*) AS mult, sum(w) AS w,
-                       count(CASE WHEN {_BAD_WEIGHT} THEN 1 END) AS bad_w
+                       count(CASE WHEN {_BAD_WEIGHT} THEN 1 END) AS bad_w,
+                       coalesce(min(l), 0) AS layer, count(CASE WHEN l IS NULL THEN 1 END) AS bad_l
                 FROM m GROUP BY least(s, t), greatest(s, t)"""), "mapped", cache=True)
             stats = self._one(f"""
                 SELECT coalesce(sum(mult), 0),
@@ -386,7 +393,8 @@ class SparkEngine:
                        coalesce(sum(CASE WHEN u >= 0 THEN bad_w END), 0),
                        coalesce(sum(CASE WHEN u = v AND u >= 0 THEN mult END), 0),
                        coalesce(sum(CASE WHEN u < v AND u >= 0 THEN mult - 1 END), 0),
-                       count(CASE WHEN u < v AND u >= 0 THEN 1 END)
+                       count(CASE WHEN u < v AND u >= 0 THEN 1 END),
+                       coalesce(sum(CASE WHEN u >= 0 THEN bad_l END), 0)
                 FROM {mapped}""")
         except Exception as exc:
             raise _input_error(source.unreadable, exc, source.debug) from None
@@ -394,7 +402,8 @@ class SparkEngine:
         self._staged = {"edges": e_sel, "mapped": mapped, "predicates": {
             RowCondition.MISSING_ID: missing,
             RowCondition.UNKNOWN_PERSON: f"NOT {missing} AND NOT {known}",
-            RowCondition.BAD_WEIGHT: f"{known} AND {_BAD_WEIGHT}"}}
+            RowCondition.BAD_WEIGHT: f"{known} AND {_BAD_WEIGHT}",
+            RowCondition.BAD_LAYER: f"{known} AND l IS NULL"}}
         return EdgeCounts(*(int(x) for x in stats))
 
     def first_staged_row(self, condition: RowCondition):
@@ -406,8 +415,8 @@ class SparkEngine:
     def publish_staged_edges(self):
         """Keep the staged pairs of known, different people as the contacts (inputs already validated)."""
         self._edges = self._register(self._sql(
-            f"SELECT CAST(u AS INT) AS u, CAST(v AS INT) AS v, w FROM {self._staged['mapped']} "
-            f"WHERE u < v AND u >= 0"), "edges")
+            f"SELECT CAST(u AS INT) AS u, CAST(v AS INT) AS v, w, CAST(layer AS SMALLINT) AS layer "
+            f"FROM {self._staged['mapped']} WHERE u < v AND u >= 0"), "edges")
         self._degrees = self._last_assignment = None
         self.discard_staged_edges()
 
@@ -483,6 +492,31 @@ class SparkEngine:
             SELECT ends.p AS person, g.g AS supernode, count(*) AS c
             FROM ends JOIN {g} g ON ends.q = g.idx GROUP BY ends.p, g.g ORDER BY person, supernode""")
         return _int64(res, "person", "supernode", "c")
+
+    def view_counts(self, codes, n_values, n_layers: int, clip=None) -> list:
+        """Contacts (or clipped weight totals) per pair of values and layer, one query per view (issue 13).
+
+        The same dense tables as :meth:`aggpub.engines._duckdb.DuckDBEngine.view_counts`: each view's
+        codes go to Spark as a small table, a join and GROUP BY count the non-zero cells, and the driver
+        scatters them into every cell (inputs already validated).
+        """
+        out = []
+        w_sql = (f"CAST(round(least(greatest(e.w, 0D), {float(clip)!r}D)) AS BIGINT)" if clip is not None else "1")
+        for code, k in zip(codes, n_values):
+            k = int(k)
+            n_c = k * (k + 1) // 2
+            table = pa.table({"idx": pa.array(np.arange(len(code), dtype=np.int32)),
+                              "x": pa.array(np.asarray(code, dtype=np.int64))})
+            view = self._register(self._from_arrow(table), f"codes{self._n_scratch}")
+            res = self._numpy(f"""
+                SELECT least(ca.x, cb.x) AS lo, greatest(ca.x, cb.x) AS hi, e.layer AS layer, sum({w_sql}) AS c
+                FROM {self._edges} e JOIN {view} ca ON e.u = ca.idx JOIN {view} cb ON e.v = cb.idx
+                GROUP BY least(ca.x, cb.x), greatest(ca.x, cb.x), e.layer""")
+            lo, hi, lay, c = _int64(res, "lo", "hi", "layer", "c")
+            dense = np.zeros(int(n_layers) * n_c, dtype=np.int64)
+            dense[lay * n_c + lo * k - (lo * (lo - 1)) // 2 + (hi - lo)] = c
+            out.append(dense.reshape(int(n_layers), n_c))
+        return out
 
     def edge_arrays(self):
         """All edges as numpy arrays ``u``, ``v`` (for small networks and the audit), ordered."""

@@ -151,6 +151,10 @@ class EdgeColumns:
     target_type: ColumnType
     weight_type: ColumnType | None
     missing_spellings: tuple
+    #: issue 13: the layer column (read as text) and its declared values, in the order of the one-layer
+    #: rule (a pair recorded in several layers keeps the first); the engine stores the layer's position
+    layer: str | None = None
+    layer_values: tuple = ()
 
 
 @dataclass(frozen=True)
@@ -175,6 +179,9 @@ class EdgeCounts:
         (unordered) pair.
     edges : int
         Distinct unordered pairs of known, different people.
+    bad_layer : int
+        Rows between two known people whose layer (as text) is null or not one
+        of the declared layers (0 without a layer column).
     """
 
     rows: int
@@ -184,6 +191,8 @@ class EdgeCounts:
     self_loops: int
     duplicates: int
     edges: int
+    #: rows between two known people whose layer is null or not one of the declared values (issue 13)
+    bad_layer: int = 0
 
 
 class RowCondition(enum.Enum):
@@ -195,3 +204,5 @@ class RowCondition(enum.Enum):
     UNKNOWN_PERSON = "unknown person"
     #: both ends known, and the weight null, unparseable, NaN, infinite or negative
     BAD_WEIGHT = "bad weight"
+    #: both ends known, and the layer null or not declared (issue 13)
+    BAD_LAYER = "bad layer"

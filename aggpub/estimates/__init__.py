@@ -12,6 +12,8 @@
   optionally per layer), their sensitivities, one noisy release.
 * :mod:`aggpub.estimates.matrix` -- consistent estimates by generalised least squares over the
   supernode table and the views, intervals, the contact matrix.
+* :mod:`aggpub.estimates.release_matrix` -- the contact matrix of a bundle's view (``aggpub matrix``,
+  ``aggpub.contact_matrix``) and its heat map.
 
 The modules are imported where they are used (no eager imports here), so that a command
 pays only for what it needs.

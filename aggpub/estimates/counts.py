@@ -94,7 +94,7 @@ def blue_cells(y, v_s: float, a, b, n: int, z=None, v_z=None) -> np.ndarray:
     ``v_z`` positive, one per supernode. Without ``z`` returns ``y`` (as float).
     """
     y = np.asarray(y, dtype=np.float64)
-    if z is None:
+    if z is None or not v_s > 0.0:  # no second measurement, or cells without noise (their variance underflows)
         return y.copy()
     z = np.asarray(z, dtype=np.float64)
     d = v_s * (n + 2) + np.asarray(v_z, dtype=np.float64)  # S = diag(d) + v_s 1 1^T

@@ -143,9 +143,10 @@ def fit_sorted_degrees(noisy, group, n_people: int, variance_d: float, *, replic
     reps = bootstrap_replicates(len(noisy)) if replicates is None else int(replicates)
     if reps > 0 and variance_d > 0 and len(fit):
         rng = _seeded_generator(noisy, group)
-        # the released law: discrete Laplace with variance v = 2a / (1 - a)^2, i.e. a = (v + 1 - sqrt(2v + 1)) / v
+        # the released law: discrete Laplace with variance v = 2a / (1 - a)^2, i.e.
+        # a = (v + 1 - sqrt(2v + 1)) / v = v / (v + 1 + sqrt(2v + 1)) (the second form has no cancellation)
         v = float(variance_d)
-        a = (v + 1.0 - math.sqrt(2.0 * v + 1.0)) / v
+        a = v / (v + 1.0 + math.sqrt(2.0 * v + 1.0))
         boot = np.zeros_like(fit)
         for _ in range(reps):  # a few whole-vector passes, no loop over people
             z = rng.geometric(1.0 - a, len(fit)) - rng.geometric(1.0 - a, len(fit))

@@ -74,7 +74,7 @@ from __future__ import annotations
 
 __all__ = ["FineTable", "ViewRelease", "ConsistentEstimate", "consistent_estimates", "possible_values_from_labels",
            "possible_values_from_people", "contact_matrix", "contact_matrix_square", "RESIDUAL",
-           "MAX_VIEW_CELLS", "MAX_BLOCK_ATOMS", "MAX_EXACT_GROUPS"]
+           "MAX_VIEW_CELLS", "MAX_BLOCK_ATOMS", "MAX_EXACT_GROUPS", "MAX_GROUP_DIRECTIONS"]
 
 import math
 from dataclasses import dataclass
@@ -96,6 +96,9 @@ MAX_VIEW_CELLS = 6000
 MAX_BLOCK_ATOMS = 6000
 #: Groups of supernode cells whose noise sums the Monte Carlo draws exactly (the rest: Gaussian).
 MAX_EXACT_GROUPS = 2000
+#: Largest (groups of supernode cells) x (view directions) combined with the supernode table (dense
+#: arrays of that size are built: 20 million doubles, 160 MB); above, only the views are combined.
+MAX_GROUP_DIRECTIONS = 20_000_000
 
 
 def _dl_variance(scale: float) -> float:
@@ -684,6 +687,9 @@ def consistent_estimates(possible, views, fine: FineTable | None = None, n_layer
         n_m = np.bincount(m_inv, weights=n_g)
         y_m = np.bincount(m_inv, weights=y_g)
         mb = group_base[m_first]
+        if len(mb) * max(k0, 1) > MAX_GROUP_DIRECTIONS:  # dense (groups x directions) arrays below
+            raise ValueError(f"{len(mb):,} groups of supernode cells x {k0:,} view directions is more than "
+                             f"{MAX_GROUP_DIRECTIONS:,}: combine the views without the supernode table")
         merged_p = sparse.csr_matrix((np.ones(mb.size), (np.repeat(np.arange(len(mb)), mb.shape[1]),
                                                          mb.reshape(-1))), shape=(len(mb), n_base))
         pz = (merged_p @ z0) if k0 else np.zeros((len(mb), 0))    # groups x k0
@@ -1059,7 +1065,7 @@ def contact_matrix(supernodes: pa.Table, superedges, views, attribute: str, *, d
     out[quantity] = pa.array(flat)
     out[f"{quantity}_clamped"] = pa.array(np.maximum(flat, 0.0))
     out["lower"] = pa.array(np.maximum(flat - hw.reshape(-1), 0.0))
-    out["upper"] = pa.array(flat + hw.reshape(-1))
+    out["upper"] = pa.array(np.maximum(flat + hw.reshape(-1), 0.0))  # the truth is >= 0: never an empty interval
     out["noise_sd"] = pa.array(np.sqrt(np.maximum(var.reshape(-1), 0.0)))
     if per_person:
         if noisy_people:
@@ -1067,7 +1073,7 @@ def contact_matrix(supernodes: pa.Table, superedges, views, attribute: str, *, d
         else:
             p_hw = np.zeros(k)
         lo_c = np.maximum(flat - hw_level.reshape(-1), 0.0)
-        hi_c = flat + hw_level.reshape(-1)
+        hi_c = np.maximum(flat + hw_level.reshape(-1), 0.0)
         rate = cols["per_person"]
         diag = np.tile(np.where(a_idx == b_idx, 2.0, 1.0), rows)
         for side, idx in (("a", np.tile(a_idx, rows)), ("b", np.tile(b_idx, rows))):
@@ -1108,7 +1114,7 @@ def _by_labels(supernodes, superedges, attribute, cols, quantity, confidence):
     out = {"value_a": pa.array(cats[a_idx[keep]].astype(object), pa.string()),
            "value_b": pa.array(cats[b_idx[keep]].astype(object), pa.string()),
            quantity: pa.array(est), f"{quantity}_clamped": pa.array(np.maximum(est, 0.0)),
-           "lower": pa.array(np.maximum(est - hw, 0.0)), "upper": pa.array(est + hw),
+           "lower": pa.array(np.maximum(est - hw, 0.0)), "upper": pa.array(np.maximum(est + hw, 0.0)),
            "noise_sd": pa.array(np.sqrt(n_cells[keep] * _dl_variance(fine.scale)))}
     meta = {"method": "supernodes", "interval_method": "exact", "confidence": str(confidence)}
     return pa.table(out).replace_schema_metadata(meta)

@@ -36,6 +36,9 @@ class Grouping:
     notes: list = field(default_factory=list)
     public: bool = True
     noisy_cell_sizes: np.ndarray | None = None  # person unit: noisy sizes the grouping decided on
+    #: person unit (issue 13): the fine attribute cells (tuples of values, in the grouping attributes'
+    #: order) and their noisy counts, from which people per value are summed (post-processing)
+    noisy_fine_cells: tuple | None = None
 
     @property
     def n_supernodes(self) -> int:

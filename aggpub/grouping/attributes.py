@@ -195,7 +195,8 @@ def group_by_attributes(people: pa.Table, attributes, min_size: int, hierarchies
     if cell_counts is not None:
         noisy = np.array([counts[released[g]].sum() for g in order])
     return Grouping(assignment=assignment, labels=pa.table(table), method="attributes", notes=notes,
-                    public=cell_counts is None, noisy_cell_sizes=noisy)
+                    public=cell_counts is None, noisy_cell_sizes=noisy,
+                    noisy_fine_cells=None if cell_counts is None else (labels, counts.copy()))
 
 
 def _common_label(labels):

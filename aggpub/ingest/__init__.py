@@ -52,7 +52,8 @@ from ._people import read_people
 
 
 def load_network(edges, people, *, source="source", target="target", node="node", weight=None,
-                 drop_unknown=False, attributes=None, engine=None, debug=False, show_counts=True) -> Network:
+                 drop_unknown=False, attributes=None, engine=None, debug=False, show_counts=True, layer=None,
+                 layer_values=(), on_refusal=None) -> Network:
     """Read edges and person attributes into a :class:`Network`.
 
     Parameters
@@ -74,7 +75,12 @@ def load_network(edges, people, *, source="source", target="target", node="node"
         Allow private values (ids) in error messages.
     show_counts : bool
         Count the offending rows in refusals (off under unit ``person``, where the
-        number of people or contacts in any condition is a private figure).
+        number of people or contacts in any condition is a private figure); refusals
+        that depend on the contacts then say no figure, and ``on_refusal()`` runs before
+        them (the pipeline charges the ledger).
+    layer : str, optional
+        The edge column holding each contact's layer; ``layer_values`` its declared values in the order
+        of the one-layer rule (issue 13).
 
     Returns
     -------
@@ -88,14 +94,14 @@ def load_network(edges, people, *, source="source", target="target", node="node"
     persons = read_people(engine, people_src, node, attributes, show_counts)
     counts = read_edges(engine, input_source(edges, "edge", debug), source_col=source, target_col=target,
                         weight=weight, ids=persons.id_table, drop_unknown=drop_unknown, people_label=people_src.label,
-                        show_counts=show_counts)
+                        show_counts=show_counts, layer=layer, layer_values=layer_values, on_refusal=on_refusal)
     n_people = len(persons.ids)
     report = IngestReport(edge_rows=counts.rows, edges=counts.edges, self_loops_dropped=counts.self_loops,
                           duplicate_rows_collapsed=counts.duplicates,
                           unknown_person_rows_dropped=counts.unknown_person, person_rows=persons.rows,
                           people=n_people, duplicate_person_rows_collapsed=persons.rows - n_people)
     return Network(people=persons.attributes, n_people=n_people, n_edges=counts.edges, engine=engine, report=report,
-                   weighted=bool(weight), ids=persons.ids)
+                   weighted=bool(weight), ids=persons.ids, layers=tuple(layer_values) if layer else ())
 
 
 def load_people(people, *, node="node", attributes=None, engine=None, debug=False) -> pa.Table:
@@ -117,6 +123,15 @@ def load_people(people, *, node="node", attributes=None, engine=None, debug=Fals
 def policy_weight_column(policy, given=None):
     """The edge weight column to read: ``components.weight_totals.column`` when weight totals are on."""
     wt = policy.components.weight_totals
+    cv = policy.components.contact_views
+    if cv.enabled and cv.weighted:  # issue 13: weighted views read the weight column too
+        if given and given != cv.column:
+            raise PolicyError(f"'components.contact_views.column' = '{cv.column}' differs from the weight column "
+                              f"given for input ('{given}'); name one column")
+        if wt.enabled and wt.column != cv.column:
+            raise PolicyError(f"'components.contact_views.column' = '{cv.column}' differs from "
+                              f"'components.weight_totals.column' = '{wt.column}'; name one column")
+        given = cv.column
     if not wt.enabled:
         return given
     if given and given != wt.column:
@@ -131,11 +146,14 @@ def policy_attributes(policy) -> list:
     gate_attr = policy.gate.contact_matrix_attribute
     if gate_attr and gate_attr not in attrs:
         attrs.append(gate_attr)
+    from ..policy import view_attributes
+
+    attrs += [a for a in view_attributes(policy) if a not in attrs]  # issue 13: the views' attributes
     return attrs
 
 
 def load_policy_inputs(policy, edges, people, *, source=None, target=None, node=None, weight=None,
-                       drop_unknown=None, engine=None, debug=False) -> Network:
+                       drop_unknown=None, engine=None, debug=False, on_refusal=None) -> Network:
     """Read the inputs of a release, sweep or plan the way ``policy`` says.
 
     Column options left as ``None`` come from the policy's ``[input]`` section;
@@ -151,4 +169,5 @@ def load_policy_inputs(policy, edges, people, *, source=None, target=None, node=
                         node=node or inp.node, weight=policy_weight_column(policy, weight or inp.weight),
                         drop_unknown=inp.drop_unknown if drop_unknown is None else drop_unknown,
                         attributes=policy_attributes(policy), engine=engine, debug=debug,
-                        show_counts=debug or policy.privacy.unit != "person")
+                        show_counts=debug or policy.privacy.unit != "person", layer=policy.layers.column,
+                        layer_values=policy.layers.values, on_refusal=on_refusal)

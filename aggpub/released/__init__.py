@@ -25,7 +25,7 @@ from .degree_histograms import release_degree_histograms
 from .degree_sequences import release_degree_sequences, sorted_sequences
 from .sizes import release_cell_counts, released_sizes
 from .superedges import SuperedgeTruth, dense_truth, release_superedge_counts, superedge_sparse_threshold
-from .triangles import release_triangle_count, triangle_truth
+from .triangles import ManifestFields, release_triangle_count, triangle_truth
 from .weight_totals import release_weight_totals
 
 
@@ -39,6 +39,7 @@ class _Context:
     sizes: np.ndarray  # public or already-released supernode sizes
     source: object
     progress: Callable
+    budget: object = None  # the release's budget (a statistic of several spends splits its share against it)
 
 
 @dataclass(frozen=True)
@@ -47,8 +48,9 @@ class Statistic:
 
     ``count(ctx, option)`` returns the confidential truth (and extra manifest
     fields); ``release(ctx, truth, option, epsilon, sens)`` returns ``(table,
-    spend, mechanism)``, where ``table`` is a dict of manifest fields for a
-    statistic released in the manifest itself (the triangle count);
+    spend, mechanism)``, where ``table`` is a :class:`~aggpub.released.triangles.ManifestFields` for a
+    statistic released in the manifest itself (the triangle count), or a dict of tables (with lists of
+    spends and a dict of mechanisms) for a statistic of several tables (the contact views);
     ``sens_args(policy, option)`` the keyword arguments of
     :func:`aggpub.budget.sensitivity` beyond unit and name.
     """
@@ -108,6 +110,26 @@ def _release_weights(ctx, truth, option, eps, sens, extra):
     return release_weight_totals(truth, ctx.sizes, option.clip, eps, sens, ctx.source)
 
 
+def _count_views(ctx, option, eps, sens):
+    from .contact_views import count_contact_views
+
+    return count_contact_views(ctx, option)
+
+
+def _release_views(ctx, truth, option, eps, sens, extra):
+    from .contact_views import release_contact_views
+
+    return release_contact_views(ctx, truth, option, eps)
+
+
+def _describe_views(ctx, truth, eps, sens, extra):
+    cells = sum(int(t.size) for t in truth["counts"].values())
+    layers = f" over {len(ctx.network.layers)} layers" if ctx.network.layers else ""
+    return (f"adding noise to {len(truth['counts'])} contact view(s){layers}, {cells:,} cells"
+            f"{' and their weight totals' if 'weights' in truth else ''} (epsilon {eps:g} in all, sensitivity "
+            f"{sens:g} each)")
+
+
 def _count_sequences(ctx, option, eps, sens):
     deg = ctx.network.engine.degrees(ctx.network.n_people)
     return sorted_sequences(deg, ctx.grouping.assignment, ctx.grouping.n_supernodes), {}
@@ -135,6 +157,9 @@ STATISTICS = (
     Statistic("weight_totals", "weight_totals", "summing clipped weights per superedge", _count_weights, _release_weights,
               lambda ctx, t, eps, sens, extra: f"adding noise to {len(t.count):,} weight totals "
                                                f"(epsilon {eps:g}, sensitivity {sens:g})"),
+    # issue 13: views by attribute (several tables and spends: aggpub.released.contact_views)
+    Statistic("contact_views", "contact_views", "counting contact views", _count_views, _release_views,
+              _describe_views),
     Statistic("degree_sequences", "degree_sequences", "sorting every supernode's numbers of contacts",
               _count_sequences, _release_sequences,
               lambda ctx, t, eps, sens, extra: f"adding noise to {len(t.values):,} sorted degrees "
@@ -179,7 +204,7 @@ def release_statistics(network, grouping, policy, sizes, epsilons: dict, source,
     from ..policy import component_enabled
 
     ctx = _Context(network=network, grouping=grouping, policy=policy, sizes=sizes, source=source,
-                   progress=progress)
+                   progress=progress, budget=budget)
     unit, D = policy.privacy.unit, policy.privacy.max_contacts
     people = network.n_people if unit == "edge" else None  # public under edge only
     run = StatisticsRun()
@@ -195,13 +220,14 @@ def release_statistics(network, grouping, policy, sizes, epsilons: dict, source,
         run.manifest.update(extra)
         progress(stat.describe(ctx, truth, eps, sens, extra))
         table, spend, mech = stat.release(ctx, truth, option, eps, sens, extra)
-        budget.spend(spend)
-        run.spends.append(spend)
-        if isinstance(table, dict):  # released in the manifest itself
+        for one in (spend if isinstance(spend, list) else [spend]):  # a statistic of several tables and spends
+            budget.spend(one)
+            run.spends.append(one)
+        if isinstance(table, ManifestFields):  # released in the manifest itself (the triangle count)
             run.manifest.update(table)
         else:
-            run.tables[stat.table] = table
-        run.mechanisms[stat.name] = mech
+            run.tables.update(table if isinstance(table, dict) else {stat.table: table})
+        run.mechanisms.update(mech if isinstance(mech, dict) else {stat.name: mech})
     if run.tables:
         progress("estimating non-negative, consistent counts and degrees (post-processing)")
         post_process(run, sizes, people=int(np.asarray(sizes).sum()))

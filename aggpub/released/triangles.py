@@ -49,7 +49,8 @@ data analysis", STOC 2007.
 
 from __future__ import annotations
 
-__all__ = ["TriangleTruth", "count_triangles", "triangle_truth", "ladder_widths", "release_triangle_count"]
+__all__ = ["TriangleTruth", "ManifestFields", "count_triangles", "triangle_truth", "ladder_widths",
+           "release_triangle_count"]
 
 from dataclasses import dataclass
 
@@ -61,6 +62,10 @@ from ..noise.ladder import LadderMechanism
 
 #: Rows of the oriented adjacency multiplied at once (bounds the temporary memory).
 ROW_BATCH = 65_536
+
+
+class ManifestFields(dict):
+    """Fields a statistic releases in the manifest itself rather than as a table (the triangle count)."""
 
 
 @dataclass(frozen=True)
@@ -136,4 +141,4 @@ def release_triangle_count(truth: TriangleTruth, epsilon: float, source):
     else:
         k = mech.sample(truth.count, lambda t: np.minimum(truth.second_degree + np.asarray(t, np.int64), cap),
                         cap, source)
-    return {"triangle_count": int(k)}, Spend.of("triangle_count", mech), mech
+    return ManifestFields(triangle_count=int(k)), Spend.of("triangle_count", mech), mech

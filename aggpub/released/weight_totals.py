@@ -25,8 +25,8 @@ def release_weight_totals(truth: SuperedgeTruth, public_sizes, clip: int, epsilo
     Returns
     -------
     table : pyarrow.Table
-        ``supernode_a``, ``supernode_b``, ``weight_total``, ``max_weight_total``,
-        ``noise_scale``, ``ci95_half_width``.
+        ``supernode_a``, ``supernode_b``, ``weight_total``, ``weight_total_unclamped`` (the noisy value
+        before clamping, unbiased), ``max_weight_total``, ``noise_scale``, ``ci95_half_width``.
     spend : Spend
     mechanism : GeometricMechanism
     """
@@ -39,6 +39,8 @@ def release_weight_totals(truth: SuperedgeTruth, public_sizes, clip: int, epsilo
         "supernode_a": pa.array(truth.a),
         "supernode_b": pa.array(truth.b),
         "weight_total": pa.array(released),
+        # the noisy total before clamping (may be negative): unbiased, so sums of it are unbiased (issue 13.4)
+        "weight_total_unclamped": pa.array(np.asarray(noisy, dtype=np.int64)),
         "max_weight_total": pa.array(cap.astype(np.int64)),
         "noise_scale": pa.array(np.full(n, mech.scale)),
         "ci95_half_width": pa.array(np.full(n, mech.interval_half_width(confidence), dtype=np.int64)),
