@@ -429,7 +429,8 @@ POLICY_SECTIONS: tuple[PolicySection, ...] = (
 _SHARE_DETAILS = ("A fraction of `privacy.epsilon`. When every budgeted component has a share, the shares and "
                   "`grouping.epsilon_share` must add up to 1; otherwise the components without a share split "
                   "what is left, `triangle_count` taking half the part of each other one (with nothing set under "
-                  "unit `edge`: superedge counts 0.4, degree sequences 0.4, triangle count 0.2). A share on a "
+                  "unit `edge` and an attribute grouping: superedge counts, contact views and degree sequences "
+                  "2/7 each, triangle count 1/7; without views 0.4, 0.4, 0.2). A share on a "
                   "disabled component is refused.")
 
 
@@ -670,8 +671,10 @@ POLICY_KEYS: tuple[PolicyKey, ...] = (
     PolicyKey(
         "components.contact_views", "share", "number", None, "share of `privacy.epsilon` spent on all views",
         "Split equally among the views (and their weighted variants). Without it the views take an equal part "
-        "with the other components that have no share: half of epsilon beside the superedge counts in the "
-        "plainest policy (measured choice: `docs/contact-matrices.md` section 7). " + _SHARE_DETAILS,
+        "with the other components that have no share: 2/7 of epsilon in the plainest policy under unit `edge`, "
+        "beside the superedge counts and the degree sequences (2/7 each) and the triangle count (1/7); half of "
+        "epsilon beside the superedge counts alone, the split measured in `docs/contact-matrices.md` section 7, "
+        "when those two are off. " + _SHARE_DETAILS,
         "[components.superedge_counts]\nshare = 0.6\n\n[components.contact_views]\nshare = 0.4\n",
         range=Range(0, 1, low_open=True)),
     PolicyKey(

@@ -759,7 +759,7 @@ def _component_lines(unit) -> list:
              "# Components without a share split what the shares leave (the triangle count takes half the",
              "# part of each other one)."]
     if unit == "edge":
-        lines.append("# With nothing set: superedge counts 0.4, degree sequences 0.4, triangle count 0.2.")
+        lines.append("# With nothing set: superedge counts, contact views, degree sequences 2/7 each, triangles 1/7.")
     sizes_extra = (("Exact and free under unit \"edge\" (the person table is public).",) if unit == "edge" else
                    ("Noisy under unit \"person\" and paid from the budget; must stay enabled.",))
     lines += ["[components.supernode_sizes]"] + _key_lines("components.supernode_sizes.enabled", True,

@@ -145,7 +145,8 @@ def load(name: str):
         policy = tomllib.loads(demo_policy_text())
         policy.pop("input", None)
         policy.pop("title", None)
-        return edges.select(["source", "target"]), people, policy
+        keep = ["source", "target"] + (["setting"] if "layers" in policy else [])  # the demo's contact settings
+        return edges.select(keep), people, policy
     d = REAL / folder
     if not (d / "people.csv").is_file():
         return None
@@ -161,6 +162,7 @@ def load(name: str):
 
 
 SHARES = None  # --shares: explicit split (superedges, degree sequences, triangles) for method "after"
+VIEW_SHARE = None  # --view-share: with --shares, the contact views' share (else the views are off)
 
 
 def policy_for(policy: dict, eps: float, method: str) -> dict:
@@ -169,6 +171,8 @@ def policy_for(policy: dict, eps: float, method: str) -> dict:
     if method == "after" and SHARES is not None:
         p["components"] = {name: {"share": float(s)} for name, s in
                            zip(("superedge_counts", "degree_sequences", "triangle_count"), SHARES)}
+        if VIEW_SHARE is not None:
+            p["components"]["contact_views"] = {"share": float(VIEW_SHARE)}
     p.setdefault("privacy", {})["epsilon"] = float(eps)
     p["privacy"]["unit"] = "edge"
     if method == "before":
@@ -277,10 +281,13 @@ def main(argv=None):
     p.add_argument("--seed", type=int, default=12, help="benchmark seed (the releases are seeded: not private)")
     p.add_argument("--json", help="write every row (with spreads) to this JSON file")
     p.add_argument("--shares", nargs=3, type=float, metavar=("SUPEREDGES", "DEGREES", "TRIANGLES"),
-                   help="method 'after' with this explicit split of epsilon instead of the default")
+                   help="method 'after' with this explicit split of epsilon instead of the default (the "
+                        "contact views are then off unless --view-share gives them a share)")
+    p.add_argument("--view-share", type=float, help="with --shares: the contact views' share")
     a = p.parse_args(argv)
-    global SHARES
+    global SHARES, VIEW_SHARE
     SHARES = tuple(a.shares) if a.shares else None
+    VIEW_SHARE = a.view_share
     methods = list(METHODS) if a.method == "all" else [a.method]
     print(HEADER)
     run(a.networks, a.epsilons, methods, a.kinds, a.releases, a.samples, a.percolations, a.seed, a.json,
