@@ -351,7 +351,8 @@ def _structure_section(release, truth, samples, rng, progress) -> dict:
     true_stats = struct.structure_statistics(u, v, network.n_people,
                                              {c: code[assignment] for c, code in codes.items()})
     T = fid.transmissibility(truth.true_deg)
-    true_fig = fid.network_figures(u, v, network.n_people, T, rng, FIDELITY_PERCOLATIONS)
+    true_fig = fid.network_figures(u, v, network.n_people, T, rng, FIDELITY_PERCOLATIONS,
+                                   average_clustering=true_stats["average_clustering"])
     released_inputs = inputs_from_release(release)
     alone_inputs = inputs_from_truth(release, like=released_inputs)
 
@@ -362,8 +363,8 @@ def _structure_section(release, truth, samples, rng, progress) -> dict:
             su, sv = draw_network(inputs, rng)
             cats = {c: np.repeat(code, inputs.sizes) for c, code in codes.items()}
             runs.append(struct.structure_statistics(su, sv, n, cats))
-            figures.append(fid.compare_figures(true_fig, fid.network_figures(su, sv, n, T, rng,
-                                                                             FIDELITY_PERCOLATIONS)))
+            figures.append(fid.compare_figures(true_fig, fid.network_figures(
+                su, sv, n, T, rng, FIDELITY_PERCOLATIONS, average_clustering=runs[-1]["average_clustering"])))
         return {k: spread([r[k] for r in runs]) for k in runs[0] if k != "people"}, fid.summarise(figures)
 
     from_release, fid_release = sampled(released_inputs)

@@ -70,16 +70,21 @@ def final_size(u, v, n: int, T: float, rng, draws: int) -> float:
     return float(np.mean(out))
 
 
-def network_figures(u, v, n: int, T: float, rng, draws: int = 10) -> dict:
-    """Contacts, degrees, largest degree, average clustering and final size of one network."""
+def network_figures(u, v, n: int, T: float, rng, draws: int = 10, average_clustering: float | None = None) -> dict:
+    """Contacts, degrees, largest degree, average clustering and final size of one network.
+
+    ``average_clustering`` may be passed when already computed (the audit's structure
+    statistics have it), which spares the sparse product that finds the triangles.
+    """
     adj = adjacency(u, v, n)
     deg = np.asarray(adj.sum(axis=1)).ravel().astype(np.int64)
-    tri2 = np.asarray((adj @ adj).multiply(adj).sum(axis=1)).ravel()
-    pairs = deg * (deg - 1.0)
-    local = np.divide(tri2, pairs, out=np.zeros(len(deg)), where=pairs > 0)
+    if average_clustering is None:
+        tri2 = np.asarray((adj @ adj).multiply(adj).sum(axis=1)).ravel()
+        pairs = deg * (deg - 1.0)
+        local = np.divide(tri2, pairs, out=np.zeros(len(deg)), where=pairs > 0)
+        average_clustering = float(local.mean()) if n else 0.0
     return {"contacts": int(adj.nnz // 2), "degrees": deg, "largest_degree": int(deg.max()) if n else 0,
-            "average_clustering": float(local.mean()) if n else 0.0,
-            "final_size": final_size(u, v, n, T, rng, draws)}
+            "average_clustering": float(average_clustering), "final_size": final_size(u, v, n, T, rng, draws)}
 
 
 def compare_figures(true: dict, synthetic: dict) -> dict:
