@@ -1073,10 +1073,7 @@ def contact_matrix(supernodes: pa.Table, superedges, views, attribute: str, *, d
         p_counts, p_scale, p_terms = _people(people, attribute, values)
         noisy_people = bool((p_scale > 0).any())
         level = 1.0 - (1.0 - confidence) / 2.0 if noisy_people else confidence
-    names = [attribute] if method == "view" else (list(use_views) if use_views is not None else
-                                                  list(dict.fromkeys(views.column("view").to_pylist())))
-    if attribute not in names:
-        names = [attribute] + names
+    names = _view_names(attribute, method, views, use_views)
     rel = _read_views(views, names, domains, layers, cols["views"])
     target = rel[names.index(attribute)]
     if by_layer and target.noisy.shape[0] == 1:
@@ -1093,14 +1090,22 @@ def contact_matrix(supernodes: pa.Table, superedges, views, attribute: str, *, d
         interval_method = "monte_carlo"
     out = _matrix_columns(values, est, var, hw, quantity, layers if by_layer else None)
     if per_person:
-        p_hw = (np.array([_exact_half_width(s, t, level) for s, t in zip(p_scale, p_terms)]) if noisy_people
-                else np.zeros(len(values)))
-        out.update(_rate_columns(len(values), est, hw_level, p_counts, p_hw, cols["per_person"]))
+        out.update(_rate_columns(len(values), est, hw_level, (p_counts, p_scale, p_terms), noisy_people, level,
+                                 cols["per_person"]))
     meta = {"method": method, "interval_method": interval_method, "confidence": str(confidence),
             "draws": str(int(draws)) if interval_method == "monte_carlo" else "",
             "views": ",".join(names), "people": "noisy (Bonferroni)" if noisy_people else
             ("exact" if per_person else "")}
     return pa.table(out).replace_schema_metadata({k_: str(v_) for k_, v_ in meta.items()})
+
+
+def _view_names(attribute: str, method: str, views, use_views) -> list:
+    """The views to read, the reported one first when it is not among them."""
+    names = [attribute] if method == "view" else (list(use_views) if use_views is not None else
+                                                  list(dict.fromkeys(views.column("view").to_pylist())))
+    if attribute not in names:
+        names = [attribute] + names
+    return names
 
 
 # ---------------------------------------------------------------- the steps of contact_matrix
@@ -1184,9 +1189,14 @@ def _matrix_columns(values, est, var, hw, quantity: str, layers=None) -> dict:
     return out
 
 
-def _rate_columns(k: int, est, hw_level, p_counts, p_hw, rate: str) -> dict:
+def _rate_columns(k: int, est, hw_level, people, noisy_people: bool, level: float, rate: str) -> dict:
     """The per-person columns: people of each side and the rate per person of each side, with bounds
-    (count bounds over people bounds)."""
+    (count bounds at ``level`` over people bounds at ``level``; ``people`` from :func:`_people`)."""
+    p_counts, p_scale, p_terms = people
+    if noisy_people:
+        p_hw = np.array([_exact_half_width(s, t, level) for s, t in zip(p_scale, p_terms)])
+    else:
+        p_hw = np.zeros(k)
     a_idx, b_idx = view_cells(k)
     rows = est.shape[0]
     flat = est.reshape(-1)
