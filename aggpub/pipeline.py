@@ -26,7 +26,6 @@ from .bundle.datacard import render_datacard
 from .bundle.manifest import applied_policy, build_manifest
 from .bundle.write import prepare_target, write_bundle
 from .engines import make_engine
-from .errors import PrivacyError
 from .gate.run import enforce_gate, preflight_gate, release_gate
 from .grouping import make_grouping
 from .ingest import load_policy_inputs
@@ -34,7 +33,7 @@ from .network import Network
 from .noise.sampler import make_random_source
 from .policy import ReleasePolicy, epsilon_shares, parse_policy, read_policy
 from .progress import Progress, silent
-from .released import release_statistics, released_sizes
+from .released import checked_sizes, release_statistics
 from .results import Release, ReleaseRun  # re-exported: aggpub.pipeline.Release stays valid
 
 
@@ -80,13 +79,7 @@ def build_release(network: Network, policy: ReleasePolicy, *, seed: int | None =
     grouping = make_grouping(network, policy, budget, source, epsilons, on_refusal=on_refusal)
     for spend in grouping.spends:
         budget.spend(spend)
-    sizes_exact = grouping.noisy_cell_sizes is None
-    # The sizes every later step uses (caps, histogram totals): public, or released (post-processing).
-    sizes = released_sizes(grouping)
-    if sizes_exact and (sizes < policy.grouping.min_size).any():
-        raise PrivacyError("internal check failed: a supernode is below min_size")  # pragma: no cover
-    progress(f"{grouping.n_supernodes:,} supernodes of {int(sizes.min()):,} to {int(sizes.max()):,} people"
-             + ("" if sizes_exact else " (noisy sizes)"))
+    sizes, sizes_exact = checked_sizes(grouping, policy.grouping.min_size, progress)  # public, or released
 
     stats = release_statistics(network, grouping, policy, sizes, epsilons, source, progress, budget)
     tables = {"supernodes": grouping.labels.add_column(1, "size", pa.array(sizes.astype(np.int64))),
