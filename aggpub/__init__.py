@@ -13,7 +13,8 @@ from .errors import (AggpubError, BudgetError, BundleError, GateError, InputErro
                      PrivacyError, UsageError)
 from .ingest import load_network
 from .network import Network
-from .pipeline import Release, build_release, publish, release_tables, run_release
+from .pipeline import build_release, publish, release_tables, run_release
+from .results import Release
 from .policy import ReleasePolicy, parse_policy, read_policy
 from .estimates.intervals import SumInterval, cell_mask, interval
 from .estimates.supergraph import supergraph

@@ -57,20 +57,43 @@ def build_parser() -> argparse.ArgumentParser:
                      formatter_class=argparse.RawDescriptionHelpFormatter)
     parser.add_argument("--version", action="version", version=f"aggpub {__version__}")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
+    for add in (_add_release_parser, _add_check_parser, _add_demo_parser, _add_ledger_parser, _add_sample_parser,
+                _add_plan_parser, _add_sweep_parser, _add_draft_policy_parser, _add_matrix_parser):
+        add(sub)
+    return parser
 
-    p = sub.add_parser("release", help="build a release bundle from an edge list, people and a policy",
-                       description="Build a privacy-protected release bundle.", epilog=EXIT_CODES_HELP,
-                       formatter_class=argparse.RawDescriptionHelpFormatter)
-    _add_input_options(p)
-    p.add_argument("--out", required=True, type=Path, help="bundle folder to create")
-    p.add_argument("--overwrite", action="store_true", help="replace an existing bundle at --out")
+
+def _subcommand(sub, name: str, summary: str, description: str):
+    """A subcommand's parser (``summary`` in the list of commands), with the exit codes in its help."""
+    return sub.add_parser(name, help=summary, description=description, epilog=EXIT_CODES_HELP,
+                          formatter_class=argparse.RawDescriptionHelpFormatter)
+
+
+def _add_out_option(p, what: str) -> None:
+    p.add_argument("--out", required=True, type=Path, help=what)
+
+
+def _add_test_seed_option(p) -> None:
     p.add_argument("--seed", type=int, help="TESTS ONLY: fixed noise seed; the bundle is marked non-private")
+
+
+def _add_report_option(p) -> None:
+    p.add_argument("--report", type=Path, metavar="DIR",
+                   help="folder for the CONFIDENTIAL audit report (report.html, audit.json; true statistics, never for researchers); default: <out>.report beside the bundle")
+
+
+def _add_release_parser(sub):
+    p = _subcommand(sub, "release", "build a release bundle from an edge list, people and a policy",
+                    "Build a privacy-protected release bundle.")
+    _add_input_options(p)
+    _add_out_option(p, "bundle folder to create")
+    p.add_argument("--overwrite", action="store_true", help="replace an existing bundle at --out")
+    _add_test_seed_option(p)
     p.add_argument("--new-dataset", action="store_true",
                    help="these people were charged before under another [ledger] dataset id, and this really is "
                         "a new dataset about them (e.g. a new survey wave); renaming a dataset does not reset "
                         "its budget")
-    p.add_argument("--report", type=Path, metavar="DIR",
-                   help="folder for the CONFIDENTIAL audit report (report.html, audit.json; true statistics, never for researchers); default: <out>.report beside the bundle")
+    _add_report_option(p)
     p.add_argument("--layer-column", metavar="NAME",
                    help="edge column holding each contact's layer (setting); its values are declared in the "
                         "policy's [layers] values (default: the policy's layers.column)")
@@ -79,53 +102,57 @@ def build_parser() -> argparse.ArgumentParser:
                         "300,000 cells, fewer above, at least 3; 0 skips the spread)")
     _add_common(p)
 
-    p = sub.add_parser("check", help="verify a bundle (checksums, schema, metadata, invariants)",
-                       description="Verify a release bundle; exit 1 naming every problem found.",
-                       epilog=EXIT_CODES_HELP, formatter_class=argparse.RawDescriptionHelpFormatter)
+
+def _add_check_parser(sub):
+    p = _subcommand(sub, "check", "verify a bundle (checksums, schema, metadata, invariants)",
+                    "Verify a release bundle; exit 1 naming every problem found.")
     p.add_argument("bundle", type=Path, help="bundle folder")
     _add_common(p)
 
-    p = sub.add_parser("demo", help="build the invented demo town and release it",
-                       description="Generate the invented town of Quennet Vale (about 30,000 residents), "
-                       "write its people, contacts and an example policy, and release it.",
-                       epilog=EXIT_CODES_HELP, formatter_class=argparse.RawDescriptionHelpFormatter)
-    p.add_argument("--out", required=True, type=Path, help="bundle folder to create")
+
+def _add_demo_parser(sub):
+    p = _subcommand(sub, "demo", "build the invented demo town and release it",
+                    "Generate the invented town of Quennet Vale (about 30,000 residents), "
+                    "write its people, contacts and an example policy, and release it.")
+    _add_out_option(p, "bundle folder to create")
     p.add_argument("--data", type=Path, help="folder for the generated inputs (default: <out>-inputs)")
     p.add_argument("--people", type=int, default=30_000, help="number of residents (default 30000)")
     p.add_argument("--overwrite", action="store_true", help="replace an existing bundle at --out")
-    p.add_argument("--seed", type=int, help="TESTS ONLY: fixed noise seed; the bundle is marked non-private")
-    p.add_argument("--report", type=Path, metavar="DIR",
-                   help="folder for the CONFIDENTIAL audit report (report.html, audit.json; true statistics, never for researchers); default: <out>.report beside the bundle")
+    _add_test_seed_option(p)
+    _add_report_option(p)
     _add_common(p)
 
-    p = sub.add_parser("ledger", help="list the spends of a lifetime ledger and the budget left",
-                       description="Verify a lifetime ledger (integrity and hash chain) and list every spend "
-                       "with the epsilon left per dataset. Read only.", epilog=EXIT_CODES_HELP,
-                       formatter_class=argparse.RawDescriptionHelpFormatter)
+
+def _add_ledger_parser(sub):
+    p = _subcommand(sub, "ledger", "list the spends of a lifetime ledger and the budget left",
+                    "Verify a lifetime ledger (integrity and hash chain) and list every spend "
+                    "with the epsilon left per dataset. Read only.")
     p.add_argument("file", type=Path, help="ledger file (SQLite)")
     p.add_argument("--dataset", help="only this dataset id")
     _add_common(p)
 
-    p = sub.add_parser("sample", help="draw a synthetic network consistent with a bundle (researcher view)",
-                       description="Verify a bundle, then draw a synthetic contact network in which every "
-                       "superedge cell holds exactly its released number of distinct contacts, uniformly "
-                       "placed among the cell's possible pairs. The people are invented and numbered per "
-                       "supernode. Post-processing of public data: costs no privacy budget.", epilog=EXIT_CODES_HELP,
-                       formatter_class=argparse.RawDescriptionHelpFormatter)
+
+def _add_sample_parser(sub):
+    p = _subcommand(sub, "sample", "draw a synthetic network consistent with a bundle (researcher view)",
+                    "Verify a bundle, then draw a synthetic contact network in which every "
+                    "superedge cell holds exactly its released number of distinct contacts, uniformly "
+                    "placed among the cell's possible pairs. The people are invented and numbered per "
+                    "supernode. Post-processing of public data: costs no privacy budget.")
     p.add_argument("bundle", type=Path, help="bundle folder")
-    p.add_argument("--out", required=True, type=Path, help="Parquet file to write (columns source, target)")
+    _add_out_option(p, "Parquet file to write (columns source, target)")
     p.add_argument("--people", type=Path, help="also write the person -> supernode table (Parquet)")
     p.add_argument("--seed", type=int, help="fixed seed for the sampling (reproducible; costs no privacy)")
     p.add_argument("--overwrite", action="store_true", help="replace existing output files")
     _add_common(p)
 
-    p = sub.add_parser("plan", help="free pre-flight: the supernodes, the noise and the gate, before any noise",
-                       description="Predict what a release would form and how its gate is expected to judge it, "
-                       "for the policy's setting or a grid of epsilon x min_size. Draws no noise, charges "
-                       "nothing, writes nothing, and reads nothing private: under unit 'edge' the person file "
-                       "(public there), under unit 'person' only the policy and its [assumptions]. The contacts "
-                       "are never read. Exit 6 when no setting is expected to pass the gate.",
-                       epilog=EXIT_CODES_HELP, formatter_class=argparse.RawDescriptionHelpFormatter)
+
+def _add_plan_parser(sub):
+    p = _subcommand(sub, "plan", "free pre-flight: the supernodes, the noise and the gate, before any noise",
+                    "Predict what a release would form and how its gate is expected to judge it, "
+                    "for the policy's setting or a grid of epsilon x min_size. Draws no noise, charges "
+                    "nothing, writes nothing, and reads nothing private: under unit 'edge' the person file "
+                    "(public there), under unit 'person' only the policy and its [assumptions]. The contacts "
+                    "are never read. Exit 6 when no setting is expected to pass the gate.")
     p.add_argument("--policy", required=True, type=Path, help="release policy (TOML)")
     p.add_argument("--nodes", type=Path, help="person attributes (unit 'edge' only: public there)")
     p.add_argument("--edges", type=Path, help="accepted for symmetry with 'release' and never read")
@@ -135,34 +162,36 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--json", action="store_true", help="print the plan as JSON instead of a table")
     _add_common(p)
 
-    p = sub.add_parser("sweep", help="INTERNAL planning aid: errors over a grid of epsilon x min_size",
-                       description="Internal planning aid (confidential, writes nothing public): expected and "
-                       "observed errors of a release over a grid of epsilon x min_size (x privacy unit), the "
-                       "true statistics computed once per grouping, and the cheapest setting meeting the "
-                       "policy's [gate]. Choosing parameters from the private data is itself a data-dependent "
-                       "step outside the guarantee (use 'aggpub plan', which reads nothing private, to choose), "
-                       "and the final release draws fresh noise.", epilog=EXIT_CODES_HELP,
-                       formatter_class=argparse.RawDescriptionHelpFormatter)
+
+def _add_sweep_parser(sub):
+    p = _subcommand(sub, "sweep", "INTERNAL planning aid: errors over a grid of epsilon x min_size",
+                    "Internal planning aid (confidential, writes nothing public): expected and "
+                    "observed errors of a release over a grid of epsilon x min_size (x privacy unit), the "
+                    "true statistics computed once per grouping, and the cheapest setting meeting the "
+                    "policy's [gate]. Choosing parameters from the private data is itself a data-dependent "
+                    "step outside the guarantee (use 'aggpub plan', which reads nothing private, to choose), "
+                    "and the final release draws fresh noise.")
     _add_input_options(p)
     p.add_argument("--epsilons", required=True, help="comma-separated total epsilons, e.g. 0.5,1,2")
     p.add_argument("--min-sizes", required=True, help="comma-separated minimum supernode sizes, e.g. 10,20")
     p.add_argument("--units", help="comma-separated privacy units to try (default: the policy's)")
     p.add_argument("--max-contacts", type=int, help="contact cap for unit 'person' (default: the policy's)")
     p.add_argument("--draws", type=int, default=3, help="real noise draws per grid point (default 3)")
-    p.add_argument("--out", required=True, type=Path, help="folder for sweep.csv, plots and README.txt")
+    _add_out_option(p, "folder for sweep.csv, plots and README.txt")
     p.add_argument("--overwrite", action="store_true", help="replace an existing sweep folder at --out")
     p.add_argument("--seed", type=int, help="fixed seed of the planning draws")
     _add_common(p)
 
-    p = sub.add_parser("draft-policy", help="write a commented starting policy for a person file and attributes",
-                       description="Write a starting release policy in which every key is commented with what it "
-                       "does and the choices: epsilon 1.0, min_size 20, grouping by the given attributes, a "
-                       "[ledger] section commented out, no [gate] thresholds. Under --unit edge the person table "
-                       "is public, so each attribute's values are read from it and listed, each mapped to itself, "
-                       "for you to map to broader groups. Under --unit person the values in the person file are "
-                       "private: only its header is read, and the attribute domains come from a public codebook "
-                       "(--codebook, a CSV file attribute,value[,broader[,broader_2...]]; see docs/policy.md).",
-                       epilog=EXIT_CODES_HELP, formatter_class=argparse.RawDescriptionHelpFormatter)
+
+def _add_draft_policy_parser(sub):
+    p = _subcommand(sub, "draft-policy", "write a commented starting policy for a person file and attributes",
+                    "Write a starting release policy in which every key is commented with what it "
+                    "does and the choices: epsilon 1.0, min_size 20, grouping by the given attributes, a "
+                    "[ledger] section commented out, no [gate] thresholds. Under --unit edge the person table "
+                    "is public, so each attribute's values are read from it and listed, each mapped to itself, "
+                    "for you to map to broader groups. Under --unit person the values in the person file are "
+                    "private: only its header is read, and the attribute domains come from a public codebook "
+                    "(--codebook, a CSV file attribute,value[,broader[,broader_2...]]; see docs/policy.md).")
     p.add_argument("--nodes", required=True, type=Path, help="person file: CSV, TSV or Parquet")
     p.add_argument("--attributes", required=True, metavar="A,B",
                    help="comma-separated grouping attributes (columns of the person file)")
@@ -178,22 +207,19 @@ def build_parser() -> argparse.ArgumentParser:
                         "edge id columns in [input]")
     p.add_argument("--epsilon", type=float, default=1.0, help="total epsilon to write (default 1.0)")
     p.add_argument("--min-size", type=int, default=20, help="smallest supernode to write (default 20)")
-    p.add_argument("--out", required=True, type=Path, help="policy file to write (TOML)")
+    _add_out_option(p, "policy file to write (TOML)")
     p.add_argument("--overwrite", action="store_true", help="replace an existing file at --out")
     _add_common(p)
-    _add_matrix_parser(sub)
-    return parser
 
 
 def _add_matrix_parser(sub):
     """``aggpub matrix`` (issue 13): the contact matrix of a released view, with intervals."""
-    p = sub.add_parser("matrix", help="contact matrix of a bundle's view, with intervals (researcher view)",
-                       description="Verify a bundle, then write the contact matrix of one released view: one row "
-                       "per pair of values with the estimated contacts (unbiased), a confidence interval, and "
-                       "with --per-person the people of each value and the contacts per person of each side. The "
-                       "estimate combines every released table by least squares (the most precise consistent "
-                       "estimate). Post-processing of public data: costs no privacy budget.",
-                       epilog=EXIT_CODES_HELP, formatter_class=argparse.RawDescriptionHelpFormatter)
+    p = _subcommand(sub, "matrix", "contact matrix of a bundle's view, with intervals (researcher view)",
+                    "Verify a bundle, then write the contact matrix of one released view: one row "
+                    "per pair of values with the estimated contacts (unbiased), a confidence interval, and "
+                    "with --per-person the people of each value and the contacts per person of each side. The "
+                    "estimate combines every released table by least squares (the most precise consistent "
+                    "estimate). Post-processing of public data: costs no privacy budget.")
     p.add_argument("bundle", type=Path, help="bundle folder")
     p.add_argument("--by", required=True, metavar="ATTR",
                    help="the view: an attribute, or attributes joined by commas as the policy named them")
@@ -205,7 +231,7 @@ def _add_matrix_parser(sub):
                    help="least squares over every released table (default), or the raw view alone")
     p.add_argument("--draws", type=int, default=2000, help="Monte Carlo draws of the noise law (default 2000)")
     p.add_argument("--seed", type=int, help="seed of the Monte Carlo draws (reproducible; costs no privacy)")
-    p.add_argument("--out", required=True, type=Path, help="CSV file to write")
+    _add_out_option(p, "CSV file to write")
     p.add_argument("--plot", type=Path, metavar="FILE.png", help="also draw the matrix as a heat map (PNG)")
     p.add_argument("--overwrite", action="store_true", help="replace existing output files")
     _add_common(p)
@@ -245,7 +271,7 @@ def _non_negative(value, option):
 
 
 def cmd_release(args):
-    from .bundle._files import check_outside_inputs
+    from .bundle.write import check_outside_inputs
     from .pipeline import run_release
     from .progress import Progress
 

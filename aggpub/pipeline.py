@@ -14,73 +14,27 @@ from __future__ import annotations
 __all__ = ["Release", "ReleaseRun", "build_release", "release_tables", "run_release", "publish", "Progress",
            "preflight_gate", "release_gate", "applied_policy"]
 
-from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
 import pyarrow as pa
 
+from .audit.run import audit_and_report, report_folder
 from .budget import ReleaseBudget, check_contact_cap
 from .budget.ledger import ChargeOnFirstDraw, ReleaseLedger
 from .bundle.datacard import render_datacard
-from .bundle.manifest import build_manifest
-from .bundle.write import write_bundle
-from .errors import PrivacyError
-from .gate import GATE_METRICS
-from .grouping import Grouping, make_grouping
+from .bundle.manifest import applied_policy, build_manifest
+from .bundle.write import prepare_target, write_bundle
+from .engines import make_engine
+from .gate.run import enforce_gate, preflight_gate, release_gate
+from .grouping import make_grouping
 from .ingest import load_policy_inputs
 from .network import Network
 from .noise.sampler import make_random_source
-from .policy import ReleasePolicy, epsilon_shares, read_policy
+from .policy import ReleasePolicy, epsilon_shares, parse_policy, read_policy
 from .progress import Progress, silent
-from .released import release_statistics, released_sizes
-
-
-@dataclass(frozen=True)
-class Release:
-    """A built release, before publication (immutable once built).
-
-    ``tables`` and ``manifest`` are public. ``truth`` holds the true statistics
-    for the auditor: confidential, never written into a bundle. ``mechanisms``
-    are the noise laws used, by statistic name.
-    """
-
-    tables: dict
-    manifest: dict
-    grouping: Grouping
-    network: Network
-    policy: ReleasePolicy
-    truth: dict = field(default_factory=dict)
-    mechanisms: dict = field(default_factory=dict)
-
-    @property
-    def supernodes(self) -> pa.Table:
-        return self.tables["supernodes"]
-
-    @property
-    def superedges(self) -> pa.Table | None:
-        return self.tables.get("superedges")
-
-    def datacard(self) -> str:
-        return render_datacard(self.manifest)
-
-
-class ReleaseRun(tuple):
-    """What :func:`run_release` did: unpacks as ``(release, path)``; the confidential audit and the
-    report's folder are the attributes ``audit`` and ``report_path``."""
-
-    def __new__(cls, release: Release, path: Path, audit: dict, report_path: Path):
-        run = super().__new__(cls, (release, path))
-        run.audit, run.report_path = audit, report_path
-        return run
-
-    @property
-    def release(self) -> Release:
-        return self[0]
-
-    @property
-    def path(self) -> Path:
-        return self[1]
+from .released import checked_sizes, release_statistics
+from .results import Release, ReleaseRun  # re-exported: aggpub.pipeline.Release stays valid
 
 
 def build_release(network: Network, policy: ReleasePolicy, *, seed: int | None = None, progress=None,
@@ -125,13 +79,7 @@ def build_release(network: Network, policy: ReleasePolicy, *, seed: int | None =
     grouping = make_grouping(network, policy, budget, source, epsilons, on_refusal=on_refusal)
     for spend in grouping.spends:
         budget.spend(spend)
-    sizes_exact = grouping.noisy_cell_sizes is None
-    # The sizes every later step uses (caps, histogram totals): public, or released (post-processing).
-    sizes = released_sizes(grouping)
-    if sizes_exact and (sizes < policy.grouping.min_size).any():
-        raise PrivacyError("internal check failed: a supernode is below min_size")  # pragma: no cover
-    progress(f"{grouping.n_supernodes:,} supernodes of {int(sizes.min()):,} to {int(sizes.max()):,} people"
-             + ("" if sizes_exact else " (noisy sizes)"))
+    sizes, sizes_exact = checked_sizes(grouping, policy.grouping.min_size, progress)  # public, or released
 
     stats = release_statistics(network, grouping, policy, sizes, epsilons, source, progress, budget)
     tables = {"supernodes": grouping.labels.add_column(1, "size", pa.array(sizes.astype(np.int64))),
@@ -187,8 +135,6 @@ def release_tables(edges: pa.Table, people: pa.Table, policy: ReleasePolicy | di
     >>> release.manifest["epsilon_spent"] <= 1.0  # the components' spends add up to at most the total
     True
     """
-    from .policy import parse_policy
-
     if isinstance(policy, dict):
         policy = parse_policy(policy)
     network = load_policy_inputs(policy, edges, people, source=source, target=target, node=node, weight=weight,
@@ -250,20 +196,12 @@ def run_release(policy, edges, people, out, *, seed=None, overwrite=False, sourc
     -------
     ReleaseRun
     """
-    from . import audit
-    from .audit import report as report_mod
-    from .bundle._files import prepare_target
-    from .engines import make_engine
-    from .errors import GateError
-    from .gate import gate_failure_message
-
     progress = progress or silent
     if not isinstance(policy, ReleasePolicy):
         policy = read_policy(policy)
     out = Path(out).absolute()
     prepare_target(out, overwrite)  # fail before the work, not after
-    report_dir = Path(report).absolute() if report is not None else report_mod.default_report_path(out)
-    report_mod.check_report_target(report_dir, overwrite, bundle=out)
+    report_dir = report_folder(out, report, overwrite)
     # Lifetime ledger: verified and checked now (read only), charged before the first noise draw.
     ledger = ReleaseLedger(policy, out, new_dataset=new_dataset) if policy.ledger is not None else None
     progress("reading edges and people")
@@ -285,19 +223,10 @@ def run_release(policy, edges, people, out, *, seed=None, overwrite=False, sourc
             progress(f"ledger: charged epsilon {charge.epsilon:g} to '{charge.dataset}', "
                      f"{charge.remaining:g} of {charge.lifetime_epsilon:g} left")
         gate = release_gate(release)
-        progress("auditing the release against the true network (confidential; decides nothing)")
-        findings = audit.audit_release(release, monte_carlo=monte_carlo, progress=progress)
-        findings.update(gate=gate, preflight=preflight,
-                        outcome=("refused by the gate: no bundle written" if not gate["passed"]
-                                 else f"passed the gate; bundle to be written to {out}"))
-        progress("drawing the figures of the confidential report")
-        report_path = report_mod.write_report(report_dir, findings, overwrite=overwrite, bundle=out)
-        progress(f"confidential report written to {report_path}")
-        if not gate["passed"]:
-            raise GateError(gate_failure_message(gate, charged=True, epsilon=release.manifest.get("epsilon_spent"),
-                                                 report_path=report_path / "report.html"))
-        if gate["checked"]:
-            progress(f"gate passed ({len(gate['checked'])} threshold(s), on the released values)")
+        findings, report_path = audit_and_report(release, gate=gate, preflight=preflight, out=out,
+                                                 report_dir=report_dir, overwrite=overwrite,
+                                                 monte_carlo=monte_carlo, progress=progress)
+        enforce_gate(gate, release, report_path, progress)
         progress(f"writing bundle {out}")
         path = publish(release, out, overwrite=overwrite)
     except BaseException:
@@ -309,69 +238,3 @@ def run_release(policy, edges, people, out, *, seed=None, overwrite=False, sourc
     if ledger is not None:
         ledger.finish(ok=True)
     return ReleaseRun(release, path, findings, report_path)
-
-
-def applied_policy(policy: ReleasePolicy, *, source=None, target=None, node=None, weight=None,
-                   drop_unknown=None) -> ReleasePolicy:
-    """The policy with the command line's input options in its ``[input]`` section (they override it)."""
-    import dataclasses
-
-    from .ingest import policy_weight_column
-
-    inp = policy.input
-    applied = dataclasses.replace(inp, source=source or inp.source, target=target or inp.target,
-                                  node=node or inp.node,
-                                  weight=policy_weight_column(policy, weight or inp.weight),
-                                  drop_unknown=inp.drop_unknown if drop_unknown is None else drop_unknown)
-    return policy if applied == inp else policy.replace(input=applied)
-
-
-def preflight_gate(policy: ReleasePolicy, network: Network, progress=None) -> dict:
-    """The gate predicted before any noise, from the policy and public inputs; refuses (uncharged) a
-    release expected to fail.
-
-    Under unit ``edge`` the person table is public and the supernodes are formed
-    as the release will form them; under ``person`` only the policy is read
-    (:mod:`aggpub.gate.predicted`). A figure that cannot be predicted (no public
-    assumption for it) does not stop the release here; the gate on the released
-    values still judges it.
-
-    Raises
-    ------
-    GateError
-        The gate is expected to fail; nothing was charged and no noise was drawn.
-    """
-    from .errors import GateError
-    from .gate import evaluate_gate, gate_failure_message
-    from .gate.predicted import predicted_metrics
-
-    progress = progress or silent
-    if not any(getattr(policy.gate, key) is not None for key in GATE_METRICS):
-        return {"passed": True, "failed": [], "checked": [], "unknown": [], "basis": "no thresholds set"}
-    progress("pre-flight: predicting the gate from the policy and public inputs (no noise drawn yet)")
-    people = network.people if policy.privacy.unit == "edge" else None
-    metrics = predicted_metrics(policy, people)
-    gate = evaluate_gate(policy, metrics, basis="predicted before any noise from the policy and public inputs",
-                         unknown_fails=False)
-    gate["notes"] = metrics.get("notes", [])
-    if not gate["passed"]:
-        raise GateError(gate_failure_message(gate, charged=False))
-    return gate
-
-
-def release_gate(release: Release) -> dict:
-    """The gate on a built release: thresholds against figures computed from its public tables only.
-
-    Reads ``release.tables`` and ``release.manifest`` (post-processing of the
-    noisy output), never ``release.truth`` or the network.
-    """
-    from .gate import evaluate_gate
-    from .gate.released import released_metrics
-
-    if not any(getattr(release.policy.gate, key) is not None for key in GATE_METRICS):
-        return {"passed": True, "failed": [], "checked": [], "unknown": [], "basis": "no thresholds set"}
-    metrics = released_metrics(release.tables, release.manifest, release.policy)
-    gate = evaluate_gate(release.policy, metrics, basis="estimated from the released values and the law of "
-                                                        "their noise")
-    gate["metrics"] = {k: v for k, v in metrics.items() if k != "why"}
-    return gate

@@ -221,7 +221,7 @@ def run_sweep(policy, edges=None, people=None, *, epsilons, min_sizes, units=Non
 
     At each grid point ``draws`` releases are simulated on the true tables (the
     statistics' own release functions), each judged by the real gate on its
-    released values (:func:`aggpub.pipeline.release_gate`'s figures) and compared
+    released values (:func:`aggpub.gate.run.release_gate`'s figures) and compared
     with the truth for the board.
 
     Parameters

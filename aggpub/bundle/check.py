@@ -101,33 +101,55 @@ def check_bundle(path) -> CheckResult:
     """
     path = Path(path)
     res = CheckResult(path=path)
+    manifest = _read_manifest(path, res)
+    if manifest is None:
+        return res
+    _check_files(path, manifest["files"], res)
+    tables = _read_tables(path, manifest, res)
+    for stale in stale_temp_siblings(path.absolute(), ("tmp", "old")):
+        res.warnings.append(f"{stale.name}: temporary folder beside the bundle, left by an interrupted write "
+                            "(not part of the bundle; the next release to this path removes a 'tmp' one)")
+    if res.problems:
+        return res
+    _check_invariants(manifest, tables, res)
+    if manifest.get("seeded"):
+        res.warnings.append("seeded bundle: the noise came from a fixed seed, so this release is NOT private "
+                            "(for tests only; never give it to researchers)")
+    _note_accounting(manifest, res)
+    return res
+
+
+def _read_manifest(path: Path, res: CheckResult) -> dict | None:
+    """The manifest, its required keys, digest and format checked; ``None`` when the rest cannot be checked."""
     mpath = path / MANIFEST
     if not path.is_dir():
         res.problems.append(f"{path}: not a folder")
-        return res
+        return None
     if not mpath.is_file():
         res.problems.append(f"{MANIFEST}: missing")
-        return res
+        return None
     try:
         manifest = json.loads(mpath.read_text("utf-8"))
         if not isinstance(manifest, dict):
             raise ValueError("not a JSON object")
     except (OSError, UnicodeDecodeError, ValueError) as exc:
         res.problems.append(f"{MANIFEST}: unreadable ({exc})")
-        return res
+        return None
     for key in REQUIRED_MANIFEST_KEYS:
         if key not in manifest:
             res.problems.append(f"{MANIFEST}: missing key '{key}'")
     if res.problems:
-        return res
+        return None
     if manifest_digest(manifest) != manifest["manifest_sha256"]:
         res.problems.append(f"{MANIFEST}: edited (its manifest_sha256 does not match its content)")
     if manifest["format"] != BUNDLE_FORMAT:
         res.problems.append(f"{MANIFEST}: unknown bundle format {manifest['format']!r}")
     res.checked.append("manifest digest")
+    return manifest
 
-    # ---- file list and checksums
-    files = manifest["files"]
+
+def _check_files(path: Path, files: dict, res: CheckResult) -> None:
+    """The file list against the folder (nothing missing, nothing extra) and every file's SHA-256."""
     present = {p.name for p in path.iterdir()} - {MANIFEST}
     for extra in sorted(present - set(files)):
         res.problems.append(f"{extra}: extra file not listed in the manifest")
@@ -140,9 +162,11 @@ def check_bundle(path) -> CheckResult:
             res.problems.append(f"{name}: SHA-256 does not match the manifest (file changed)")
     res.checked.append(f"SHA-256 of {len(files)} files")
 
-    # ---- Parquet: page checksums, schema, metadata, invariants
+
+def _read_tables(path: Path, manifest: dict, res: CheckResult) -> dict:
+    """Every Parquet file read with page checksums verified, its metadata, schema and row count checked."""
     tables = {}
-    for name in sorted(files):
+    for name in sorted(manifest["files"]):
         if not name.endswith(".parquet") or not (path / name).is_file():
             continue
         stem = name[: -len(".parquet")]
@@ -152,43 +176,37 @@ def check_bundle(path) -> CheckResult:
             res.problems.append(f"{name}: unreadable or corrupt Parquet ({str(exc)[:120]})")
             continue
         tables[stem] = table
-        meta = (table.schema.metadata or {}).get(PARQUET_META_KEY)
-        if meta is None:
-            res.problems.append(f"{name}: no privacy parameters in the Parquet metadata")
-        else:
-            try:
-                m = json.loads(meta)
-                for k in ("privacy_unit", "epsilon_total", "seeded", "min_size", "components"):
-                    if m.get(k) != manifest.get(k):
-                        res.problems.append(f"{name}: metadata '{k}' differs from the manifest")
-            except ValueError:
-                res.problems.append(f"{name}: unreadable privacy metadata")
-        for col, typ in SCHEMAS.get(stem, {}).items():
-            if col not in table.column_names:
-                res.problems.append(f"{name}: missing column '{col}'")
-            elif table.schema.field(col).type != typ:
-                res.problems.append(f"{name}: column '{col}' has type {table.schema.field(col).type}, "
-                                    f"expected {typ}")
-        for col, typ in OPTIONAL_COLUMNS.get(stem, {}).items():
-            if col in table.column_names and table.schema.field(col).type != typ:
-                res.problems.append(f"{name}: column '{col}' has type {table.schema.field(col).type}, "
-                                    f"expected {typ}")
-        expected_rows = manifest["rows"].get(stem)
-        if expected_rows is not None and expected_rows != table.num_rows:
-            res.problems.append(f"{name}: {table.num_rows} rows, manifest says {expected_rows}")
+        _check_table(name, stem, table, manifest, res)
     res.checked.append("Parquet page checksums and schemas")
+    return tables
 
-    for stale in stale_temp_siblings(path.absolute(), ("tmp", "old")):
-        res.warnings.append(f"{stale.name}: temporary folder beside the bundle, left by an interrupted write "
-                            "(not part of the bundle; the next release to this path removes a 'tmp' one)")
-    if res.problems:
-        return res
-    _check_invariants(manifest, tables, res)
-    if manifest.get("seeded"):
-        res.warnings.append("seeded bundle: the noise came from a fixed seed, so this release is NOT private "
-                            "(for tests only; never give it to researchers)")
-    _note_accounting(manifest, res)
-    return res
+
+def _check_table(name: str, stem: str, table: pa.Table, manifest: dict, res: CheckResult) -> None:
+    """One Parquet file's privacy metadata against the manifest, its schema and its row count."""
+    meta = (table.schema.metadata or {}).get(PARQUET_META_KEY)
+    if meta is None:
+        res.problems.append(f"{name}: no privacy parameters in the Parquet metadata")
+    else:
+        try:
+            m = json.loads(meta)
+            for k in ("privacy_unit", "epsilon_total", "seeded", "min_size", "components"):
+                if m.get(k) != manifest.get(k):
+                    res.problems.append(f"{name}: metadata '{k}' differs from the manifest")
+        except ValueError:
+            res.problems.append(f"{name}: unreadable privacy metadata")
+    for col, typ in SCHEMAS.get(stem, {}).items():
+        if col not in table.column_names:
+            res.problems.append(f"{name}: missing column '{col}'")
+        elif table.schema.field(col).type != typ:
+            res.problems.append(f"{name}: column '{col}' has type {table.schema.field(col).type}, "
+                                f"expected {typ}")
+    for col, typ in OPTIONAL_COLUMNS.get(stem, {}).items():
+        if col in table.column_names and table.schema.field(col).type != typ:
+            res.problems.append(f"{name}: column '{col}' has type {table.schema.field(col).type}, "
+                                f"expected {typ}")
+    expected_rows = manifest["rows"].get(stem)
+    if expected_rows is not None and expected_rows != table.num_rows:
+        res.problems.append(f"{name}: {table.num_rows} rows, manifest says {expected_rows}")
 
 
 def _note_accounting(manifest, res) -> None:

@@ -6,12 +6,30 @@ grouping's public description and the row counts of the released tables.
 
 from __future__ import annotations
 
-__all__ = ["build_manifest", "public_policy"]
+__all__ = ["build_manifest", "public_policy", "applied_policy"]
 
 from datetime import datetime, timezone
 
 from .._version import BUNDLE_FORMAT, __version__
 from .datacard import CAUTIONS
+
+
+def applied_policy(policy, *, source=None, target=None, node=None, weight=None, drop_unknown=None):
+    """The policy with the command line's input options in its ``[input]`` section (they override it).
+
+    The manifest records the policy as applied (:func:`public_policy`), so the
+    options given on the command line appear there, not only the file's.
+    """
+    import dataclasses
+
+    from ..ingest import policy_weight_column
+
+    inp = policy.input
+    applied = dataclasses.replace(inp, source=source or inp.source, target=target or inp.target,
+                                  node=node or inp.node,
+                                  weight=policy_weight_column(policy, weight or inp.weight),
+                                  drop_unknown=inp.drop_unknown if drop_unknown is None else drop_unknown)
+    return policy if applied == inp else policy.replace(input=applied)
 
 
 def public_policy(policy) -> dict:

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-__all__ = ["write_bundle"]
+__all__ = ["write_bundle", "prepare_target", "check_outside_inputs"]
 
 import json
 import shutil
@@ -12,7 +12,7 @@ import pyarrow.parquet as pq
 
 from ..errors import OutputError
 from ..outputs import fsync_path, publish_directory, remove_stale_temp_siblings, temp_sibling, write_synced
-from ._files import MANIFEST, manifest_digest, prepare_target, sha256_file
+from ._files import MANIFEST, check_outside_inputs, manifest_digest, prepare_target, sha256_file
 
 #: key of the privacy parameters in each Parquet file's key-value metadata
 PARQUET_META_KEY = b"aggpub.privacy"

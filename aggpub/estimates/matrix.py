@@ -550,6 +550,69 @@ def consistent_estimates(possible, views, fine: FineTable | None = None, n_layer
     if not views:
         raise ValueError("at least one view is needed")
     n_layers = int(n_layers)
+    possible, sizes, n_groups = _checked_possible(possible, views, n_layers)
+    lay = _Layout(views, n_layers)
+    if lay.size > MAX_VIEW_CELLS:
+        raise ValueError(f"{lay.size} view cells in all (views x layers), more than {MAX_VIEW_CELLS}")
+    y_v = np.concatenate([np.asarray(v.noisy, dtype=np.float64).reshape(-1) for v in views])
+    scale_v = np.concatenate([np.full(v.noisy.size, float(v.scale)) for v in views])
+    _check_scales(views, fine)
+    rel, var_unit = _relative_variance(views, fine)
+    var_v = np.concatenate([np.full(v.noisy.size, rel(v.scale)) for v in views])
+
+    blocks = _blocks(views)
+    for blk in blocks:
+        _block_structure(blk, views, possible, sizes)
+    base = _BaseCoordinates(lay)
+    base_rows, delta_rows = _difference_rows(blocks, lay, base)
+    groups = _cell_groups(blocks, fine, n_groups, lay, base)
+    layered = bool(base.layered_views) and n_layers > 1
+    if layered:  # the supernode table sums the layers: sum over layered views of delta = 0
+        coup = np.stack([base.offd[i] + groups.cells[:, i] for i in base.layered_views], axis=1)
+        _, first = _compact_rows(coup)
+        delta_rows.add(coup[first], None)
+    if fine is None:  # no supernode measurement: the views' common directions must vanish
+        _, first = _compact_rows(groups.base)
+        base_rows.add(groups.base[first], None)
+
+    z0, comp0 = _null_space(base.n_base, base_rows)
+    zd, _ = _null_space(base.n_delta, delta_rows) if layered else (np.zeros((0, 0)), None)
+    z = _stacked_null_space(z0, zd, lay, base)
+    k0 = z0.shape[1]
+
+    # ---- H = Z^T (D_V + v_F sum_g n_g p_g p_g^T) Z and the right-hand side
+    h = (z.T * var_v) @ z
+    rhs = z.T @ y_v
+    merged_n = merged_p = None
+    fine_var = 0.0
+    fine_noisy = fine_group = None
+    if fine is not None:
+        fine_var = rel(fine.scale)
+        merged_n, merged_p, fine_noisy = _add_supernode_table(h, rhs, fine, fine_var, groups, z0, comp0, base.n_base)
+        fine_group = groups.cell_group
+    if z.shape[1]:
+        h_chol = sla.cho_factor(h, lower=True)
+        mu = sla.cho_solve(h_chol, rhs)
+        lambda_v = z @ mu
+    else:
+        h_chol = None
+        lambda_v = np.zeros(lay.size)
+    estimate = y_v - var_v * lambda_v
+    return ConsistentEstimate(
+        views=views, layout=lay, estimate=estimate, y_v=y_v, var_v=var_v, scale_v=scale_v, z=z, k0=k0, z0=z0,
+        h_chol=h_chol, lambda_v=lambda_v, group_coords=groups.coords, fine_var=fine_var,
+        fine_scale=(fine.scale if fine is not None else None), fine_noisy=fine_noisy, fine_group=fine_group,
+        merged_n=merged_n, merged_p=merged_p, var_unit=var_unit, n_groups=len(groups.first),
+        dim_free=z.shape[1])
+
+
+# ---------------------------------------------------------------- the steps of consistent_estimates
+def _checked_possible(possible, views, n_layers: int):
+    """Validate the possible-value matrices and the views' shapes (in that order).
+
+    Returns the matrices as boolean arrays, the number of values of each
+    attribute and the number of supernodes.
+    """
     sizes = {}
     n_groups = None
     for name, arr in possible.items():
@@ -572,18 +635,25 @@ def consistent_estimates(possible, views, fine: FineTable | None = None, n_layer
             raise ValueError(f"view {v.attributes}: expected shape (layers, {view_cell_count(k)})")
         if v.noisy.shape[0] not in (1, n_layers):
             raise ValueError(f"view {v.attributes}: {v.noisy.shape[0]} layer rows, expected 1 or {n_layers}")
-    lay = _Layout(views, n_layers)
-    if lay.size > MAX_VIEW_CELLS:
-        raise ValueError(f"{lay.size} view cells in all (views x layers), more than {MAX_VIEW_CELLS}")
-    y_v = np.concatenate([np.asarray(v.noisy, dtype=np.float64).reshape(-1) for v in views])
-    scale_v = np.concatenate([np.full(v.noisy.size, float(v.scale)) for v in views])
+    return possible, sizes, n_groups
+
+
+def _check_scales(views, fine) -> None:
+    """Every noise scale finite and positive."""
     for v in views:
         if not (v.scale > 0 and math.isfinite(v.scale)):
             raise ValueError(f"view {v.attributes}: noise scale must be finite and > 0")
     if fine is not None and not (fine.scale > 0 and math.isfinite(fine.scale)):
         raise ValueError("supernode table: noise scale must be finite and > 0")
-    # Only relative variances enter the estimate; they are taken relative to the largest one (in the log
-    # domain) so that a nearly noiseless table (huge epsilon, variance underflowing to 0) stays usable.
+
+
+def _relative_variance(views, fine):
+    """``(rel, var_unit)``: ``rel(scale)`` is a table's noise variance relative to the largest one, ``var_unit``.
+
+    Only relative variances enter the estimate; they are taken relative to the
+    largest one (in the log domain) so that a nearly noiseless table (huge
+    epsilon, variance underflowing to 0) stays usable.
+    """
     logs = [_log_dl_variance(v.scale) for v in views] + ([_log_dl_variance(fine.scale)] if fine is not None else [])
     log_unit = max(logs)
     var_unit = math.exp(log_unit) if log_unit > -700 else 0.0
@@ -591,27 +661,36 @@ def consistent_estimates(possible, views, fine: FineTable | None = None, n_layer
     def rel(scale):
         return max(math.exp(_log_dl_variance(scale) - log_unit), _MIN_RELATIVE_VARIANCE)
 
-    var_v = np.concatenate([np.full(v.noisy.size, rel(v.scale)) for v in views])
+    return rel, var_unit
 
-    blocks = _blocks(views)
-    for blk in blocks:
-        _block_structure(blk, views, possible, sizes)
 
-    # Directions of view space that no supernode cell can tell apart (the null space Z). On the layered
-    # views every layer obeys the same constraints, so with d(l) = d(0) + delta_l the null space splits
-    # into that of d(0) (base coordinates: every view's cells once) and that of delta_l (the layered
-    # views' cells once), the same for every l >= 1: two small problems instead of one L times larger.
-    n_cells_v = lay.n_cells
-    off0 = np.cumsum([0] + n_cells_v)
-    layered_views = [i for i in range(len(views)) if lay.layered[i]]
-    offd = {}
-    acc = 0
-    for i in layered_views:
-        offd[i] = acc
-        acc += n_cells_v[i]
-    n_base, n_delta = int(off0[-1]), acc
+class _BaseCoordinates:
+    """Base coordinates (every view's cells once, ``off0``) and delta coordinates (the layered views' cells
+    once, ``offd``) of the view space.
+
+    Directions of view space that no supernode cell can tell apart (the null space Z). On the layered
+    views every layer obeys the same constraints, so with d(l) = d(0) + delta_l the null space splits
+    into that of d(0) (base coordinates) and that of delta_l (delta coordinates), the same for every
+    l >= 1: two small problems instead of one L times larger.
+    """
+
+    def __init__(self, lay: _Layout):
+        self.off0 = np.cumsum([0] + lay.n_cells)
+        self.layered_views = [i for i in range(len(lay.n_cells)) if lay.layered[i]]
+        self.offd = {}
+        acc = 0
+        for i in self.layered_views:
+            self.offd[i] = acc
+            acc += lay.n_cells[i]
+        self.n_base, self.n_delta = int(self.off0[-1]), acc
+
+
+def _difference_rows(blocks, lay: _Layout, base: _BaseCoordinates):
+    """The constraints of the pairs of atom tuples that no supernode cell tells apart, in base and delta
+    coordinates."""
     base_rows = _Rows()
     delta_rows = _Rows()
+    off0, offd = base.off0, base.offd
     for blk in blocks:
         if not len(blk.diff_pairs):
             continue
@@ -619,11 +698,27 @@ def consistent_estimates(possible, views, fine: FineTable | None = None, n_layer
         base_rows.add(np.stack([off0[i] + blk.tuple_cells[t, j] for j, i in enumerate(blk.views)], axis=1),
                       np.stack([off0[i] + blk.tuple_cells[t0, j] for j, i in enumerate(blk.views)], axis=1))
         lv = [(j, i) for j, i in enumerate(blk.views) if lay.layered[i]]
-        if lv and n_layers > 1:
+        if lv and lay.n_layers > 1:
             delta_rows.add(np.stack([offd[i] + blk.tuple_cells[t, j] for j, i in lv], axis=1),
                            np.stack([offd[i] + blk.tuple_cells[t0, j] for j, i in lv], axis=1))
+    return base_rows, delta_rows
 
-    # ---- groups of supernode cells: the combination of the kind pairs of their two supernodes in every block
+
+class _CellGroups:
+    """Groups of supernode cells: the combination of the kind pairs of their two supernodes in every block.
+
+    ``cell_group`` (group of each cell), ``first`` (first cell of each group),
+    ``cells`` (the group's base tuple's cell in each view), ``base`` (the same in
+    base coordinates) and ``coords`` (in stacked view coordinates, layer 0).
+    """
+
+    def __init__(self, **kw):
+        self.__dict__.update(kw)
+
+
+def _cell_groups(blocks, fine, n_groups, lay: _Layout, base: _BaseCoordinates) -> _CellGroups:
+    """Group the supernode cells (every cell ``a <= b``, in the order of ``fine`` when given)."""
+    n_views = len(lay.n_cells)
     if fine is not None:
         ca = np.asarray(fine.a, dtype=np.int64)
         cb = np.asarray(fine.b, dtype=np.int64)
@@ -638,79 +733,58 @@ def consistent_estimates(possible, views, fine: FineTable | None = None, n_layer
         _, key, _ = _unique_inverse(key * (blk.n_kinds ** 2) + kp)
     _, cell_group, group_first = _unique_inverse(key)
     rep_a, rep_b = ca[group_first], cb[group_first]
-    group_cells = np.empty((len(group_first), len(views)), dtype=np.int64)  # base tuple's cell in each view
+    group_cells = np.empty((len(group_first), n_views), dtype=np.int64)  # base tuple's cell in each view
     for blk in blocks:
         ka, kb = blk.kind[rep_a], blk.kind[rep_b]
         t0 = blk.base[np.minimum(ka, kb) * blk.n_kinds + np.maximum(ka, kb)]
         for j, i in enumerate(blk.views):
             group_cells[:, i] = blk.tuple_cells[t0, j]
-    group_base = group_cells + off0[:-1][None, :]                # base coordinates
-    group_coords = np.stack([lay.coord(i, group_cells[:, i], 0) for i in range(len(views))], axis=1)
-    if layered_views and n_layers > 1:  # the supernode table sums the layers: sum over layered views of delta = 0
-        coup = np.stack([offd[i] + group_cells[:, i] for i in layered_views], axis=1)
-        _, first = _compact_rows(coup)
-        delta_rows.add(coup[first], None)
-    if fine is None:  # no supernode measurement: the views' common directions must vanish
-        _, first = _compact_rows(group_base)
-        base_rows.add(group_base[first], None)
+    group_base = group_cells + base.off0[:-1][None, :]                # base coordinates
+    group_coords = np.stack([lay.coord(i, group_cells[:, i], 0) for i in range(n_views)], axis=1)
+    return _CellGroups(cell_group=cell_group, first=group_first, cells=group_cells, base=group_base,
+                       coords=group_coords)
 
-    z0, comp0 = _null_space(n_base, base_rows)
-    zd, _ = _null_space(n_delta, delta_rows) if (layered_views and n_layers > 1) else (np.zeros((0, 0)), None)
+
+def _stacked_null_space(z0, zd, lay: _Layout, base: _BaseCoordinates) -> np.ndarray:
+    """The null space Z over the stacked view cells from its base (``z0``) and delta (``zd``) parts."""
+    n_layers, n_cells_v, off0, offd = lay.n_layers, lay.n_cells, base.off0, base.offd
     k0, kd = z0.shape[1], zd.shape[1]
     v_size = lay.size
     full_base = np.empty(v_size, dtype=np.int64)
     full_layer = np.zeros(v_size, dtype=np.int64)
-    for i in range(len(views)):
+    for i in range(len(n_cells_v)):
         rows = n_layers if lay.layered[i] else 1
         full_base[lay.offset[i]:lay.offset[i + 1]] = np.tile(off0[i] + np.arange(n_cells_v[i]), rows)
         full_layer[lay.offset[i]:lay.offset[i + 1]] = np.repeat(np.arange(rows), n_cells_v[i])
-    z = np.zeros((v_size, k0 + (n_layers - 1) * kd if layered_views else k0))
+    z = np.zeros((v_size, k0 + (n_layers - 1) * kd if base.layered_views else k0))
     z[:, :k0] = z0[full_base]
-    for i in layered_views:
+    for i in base.layered_views:
         for layer in range(1, n_layers):
             idx = lay.offset[i] + layer * n_cells_v[i] + np.arange(n_cells_v[i])
             z[idx, k0 + (layer - 1) * kd:k0 + layer * kd] = zd[offd[i] + np.arange(n_cells_v[i])]
+    return z
 
-    # ---- H = Z^T (D_V + v_F sum_g n_g p_g p_g^T) Z and the right-hand side
-    h = (z.T * var_v) @ z
-    rhs = z.T @ y_v
-    merged_n = merged_p = None
-    fine_var = 0.0
-    fine_noisy = fine_group = None
-    if fine is not None:
-        y_f = np.asarray(fine.noisy, dtype=np.float64)
-        fine_var = rel(fine.scale)
-        n_g = np.bincount(cell_group, minlength=len(group_first)).astype(np.float64)
-        y_g = np.bincount(cell_group, weights=y_f, minlength=len(group_first))
-        # groups whose base coordinates fall in the same components have the same Z^T p_g: merge them
-        m_inv, m_first = _compact_rows(np.sort(comp0[group_base], axis=1))
-        n_m = np.bincount(m_inv, weights=n_g)
-        y_m = np.bincount(m_inv, weights=y_g)
-        mb = group_base[m_first]
-        if len(mb) * max(k0, 1) > MAX_GROUP_DIRECTIONS:  # dense (groups x directions) arrays below
-            raise ValueError(f"{len(mb):,} groups of supernode cells x {k0:,} view directions is more than "
-                             f"{MAX_GROUP_DIRECTIONS:,}: combine the views without the supernode table")
-        merged_p = sparse.csr_matrix((np.ones(mb.size), (np.repeat(np.arange(len(mb)), mb.shape[1]),
-                                                         mb.reshape(-1))), shape=(len(mb), n_base))
-        pz = (merged_p @ z0) if k0 else np.zeros((len(mb), 0))    # groups x k0
-        h[:k0, :k0] += fine_var * ((pz.T * n_m) @ pz)
-        rhs[:k0] -= pz.T @ y_m
-        merged_n = n_m
-        fine_noisy, fine_group = y_f, cell_group
-    if z.shape[1]:
-        h_chol = sla.cho_factor(h, lower=True)
-        mu = sla.cho_solve(h_chol, rhs)
-        lambda_v = z @ mu
-    else:
-        h_chol = None
-        lambda_v = np.zeros(v_size)
-    estimate = y_v - var_v * lambda_v
-    return ConsistentEstimate(
-        views=views, layout=lay, estimate=estimate, y_v=y_v, var_v=var_v, scale_v=scale_v, z=z, k0=k0, z0=z0,
-        h_chol=h_chol, lambda_v=lambda_v, group_coords=group_coords, fine_var=fine_var,
-        fine_scale=(fine.scale if fine is not None else None), fine_noisy=fine_noisy, fine_group=fine_group,
-        merged_n=merged_n, merged_p=merged_p, var_unit=var_unit, n_groups=len(group_first),
-        dim_free=z.shape[1])
+
+def _add_supernode_table(h, rhs, fine, fine_var: float, groups: _CellGroups, z0, comp0, n_base: int):
+    """Add the supernode table's term to ``h`` and ``rhs`` (in place): ``(merged_n, merged_p, fine_noisy)``."""
+    k0 = z0.shape[1]
+    y_f = np.asarray(fine.noisy, dtype=np.float64)
+    n_g = np.bincount(groups.cell_group, minlength=len(groups.first)).astype(np.float64)
+    y_g = np.bincount(groups.cell_group, weights=y_f, minlength=len(groups.first))
+    # groups whose base coordinates fall in the same components have the same Z^T p_g: merge them
+    m_inv, m_first = _compact_rows(np.sort(comp0[groups.base], axis=1))
+    n_m = np.bincount(m_inv, weights=n_g)
+    y_m = np.bincount(m_inv, weights=y_g)
+    mb = groups.base[m_first]
+    if len(mb) * max(k0, 1) > MAX_GROUP_DIRECTIONS:  # dense (groups x directions) arrays below
+        raise ValueError(f"{len(mb):,} groups of supernode cells x {k0:,} view directions is more than "
+                         f"{MAX_GROUP_DIRECTIONS:,}: combine the views without the supernode table")
+    merged_p = sparse.csr_matrix((np.ones(mb.size), (np.repeat(np.arange(len(mb)), mb.shape[1]),
+                                                     mb.reshape(-1))), shape=(len(mb), n_base))
+    pz = (merged_p @ z0) if k0 else np.zeros((len(mb), 0))    # groups x k0
+    h[:k0, :k0] += fine_var * ((pz.T * n_m) @ pz)
+    rhs[:k0] -= pz.T @ y_m
+    return n_m, merged_p, y_f
 
 
 class _Rows:
@@ -987,71 +1061,116 @@ def contact_matrix(supernodes: pa.Table, superedges, views, attribute: str, *, d
     M. Hay, V. Rastogi, G. Miklau, D. Suciu, "Boosting the accuracy of
     differentially private histograms through consistency", PVLDB 3(1), 2010.
     """
+    _check_matrix_request(supernodes, method, quantity, confidence, per_person, people)
+    cols = _QUANTITY[quantity]
+    if method == "supernodes":
+        return _by_labels(supernodes, superedges, attribute, cols, quantity, confidence)
+
+    values = _view_values(attribute, domains)
+    noisy_people = False
+    level = confidence
+    if per_person:
+        p_counts, p_scale, p_terms = _people(people, attribute, values)
+        noisy_people = bool((p_scale > 0).any())
+        level = 1.0 - (1.0 - confidence) / 2.0 if noisy_people else confidence
+    names = _view_names(attribute, method, views, use_views)
+    rel = _read_views(views, names, domains, layers, cols["views"])
+    target = rel[names.index(attribute)]
+    if by_layer and target.noisy.shape[0] == 1:
+        raise ValueError(f"view {attribute!r} has no layers")
+    if method == "view":
+        est, var, hw, hw_level = _raw_view(target, by_layer, confidence, level)
+        interval_method = "exact"
+    else:
+        poss = _possible_for_views(rel, supernodes, domains, hierarchies, possible)
+        fine = _read_fine(superedges, supernodes.num_rows, cols["superedges"]) if superedges is not None else None
+        ce = consistent_estimates(poss, rel, fine, n_layers=len(layers) if layers is not None else 1)
+        est, var, hw, hw_level = _combined_view(ce, names.index(attribute), len(values), by_layer, confidence,
+                                                level, draws, seed)
+        interval_method = "monte_carlo"
+    out = _matrix_columns(values, est, var, hw, quantity, layers if by_layer else None)
+    if per_person:
+        out.update(_rate_columns(len(values), est, hw_level, (p_counts, p_scale, p_terms), noisy_people, level,
+                                 cols["per_person"]))
+    meta = {"method": method, "interval_method": interval_method, "confidence": str(confidence),
+            "draws": str(int(draws)) if interval_method == "monte_carlo" else "",
+            "views": ",".join(names), "people": "noisy (Bonferroni)" if noisy_people else
+            ("exact" if per_person else "")}
+    return pa.table(out).replace_schema_metadata({k_: str(v_) for k_, v_ in meta.items()})
+
+
+def _view_names(attribute: str, method: str, views, use_views) -> list:
+    """The views to read, the reported one first when it is not among them."""
+    names = [attribute] if method == "view" else (list(use_views) if use_views is not None else
+                                                  list(dict.fromkeys(views.column("view").to_pylist())))
+    if attribute not in names:
+        names = [attribute] + names
+    return names
+
+
+# ---------------------------------------------------------------- the steps of contact_matrix
+def _check_matrix_request(supernodes, method, quantity, confidence, per_person, people) -> None:
+    """Refuse a request :func:`contact_matrix` cannot answer (in the order the checks are documented)."""
     if quantity not in _QUANTITY:
         raise ValueError(f"'quantity' must be 'contacts' or 'weight_total', got {quantity!r}")
     if method not in ("consistent", "view", "supernodes"):
         raise ValueError(f"'method' must be 'consistent', 'view' or 'supernodes', got {method!r}")
     if not 0 < confidence < 1:
         raise ValueError(f"'confidence' must be in (0, 1), got {confidence!r}")
-    cols = _QUANTITY[quantity]
     n_groups = supernodes.num_rows
     if not np.array_equal(np.asarray(supernodes.column("supernode").to_numpy()), np.arange(n_groups)):
         raise ValueError("supernodes table: 'supernode' must be 0..G-1 in order")
-    noisy_people = False
-    level = confidence
     if per_person:
         if method == "supernodes":
             raise ValueError("per_person needs a view ('consistent' or 'view')")
         if people is None:
             raise ValueError("per_person needs the people per value ('people')")
-    if method == "supernodes":
-        return _by_labels(supernodes, superedges, attribute, cols, quantity, confidence)
 
-    values = _view_values(attribute, domains)
+
+def _raw_view(target: ViewRelease, by_layer: bool, confidence: float, level: float):
+    """``(estimate, variance, half-width, half-width at level)`` of a view alone (exact intervals)."""
+    est = target.noisy if by_layer else target.noisy.sum(axis=0, keepdims=True)
+    terms = 1 if by_layer else target.noisy.shape[0]
+    var = np.full(est.shape, terms * _dl_variance(target.scale))
+    hw = np.full(est.shape, _exact_half_width(target.scale, terms, confidence))
+    hw_level = hw if level == confidence else np.full(est.shape, _exact_half_width(target.scale, terms, level))
+    return est, var, hw, hw_level
+
+
+def _possible_for_views(rel, supernodes, domains, hierarchies, possible) -> dict:
+    """Values each supernode may contain, for every attribute of the views: given, else read from the labels,
+    else every value."""
+    n_groups = supernodes.num_rows
+    attrs = list(dict.fromkeys(a for v in rel for a in v.attributes))
+    poss = {}
+    for a in attrs:
+        if possible is not None and a in possible:
+            poss[a] = np.asarray(possible[a], dtype=bool)
+        elif a in supernodes.column_names:
+            poss[a] = possible_values_from_labels(supernodes.column(a).to_pylist(), domains[a],
+                                                  (hierarchies or {}).get(a))
+        else:
+            poss[a] = np.ones((n_groups, len(domains[a])), dtype=bool)
+    return poss
+
+
+def _combined_view(ce: ConsistentEstimate, i: int, k: int, by_layer: bool, confidence: float, level: float,
+                   draws: int, seed):
+    """``(estimate, variance, half-width, half-width at level)`` of view ``i`` of the consistent estimates
+    (Monte Carlo intervals over the exact noise law)."""
+    q = ce.query_matrix(i, by_layer=by_layer)
+    est = (q @ ce.estimate).reshape(-1 if by_layer else 1, view_cell_count(k))
+    var = ce.variance(q).reshape(est.shape)
+    noise = np.abs(ce.noise_draws(q, int(draws), np.random.default_rng(seed)))
+    hw = np.quantile(noise, confidence, axis=0, method="higher").reshape(est.shape)
+    hw_level = hw if level == confidence else \
+        np.quantile(noise, level, axis=0, method="higher").reshape(est.shape)
+    return est, var, hw, hw_level
+
+
+def _matrix_columns(values, est, var, hw, quantity: str, layers=None) -> dict:
+    """The count columns of the matrix table: one row per pair ``a <= b`` (per layer when ``layers``)."""
     k = len(values)
-    if per_person:
-        p_counts, p_scale, p_terms = _people(people, attribute, values)
-        noisy_people = bool((p_scale > 0).any())
-        level = 1.0 - (1.0 - confidence) / 2.0 if noisy_people else confidence
-    names = [attribute] if method == "view" else (list(use_views) if use_views is not None else
-                                                  list(dict.fromkeys(views.column("view").to_pylist())))
-    if attribute not in names:
-        names = [attribute] + names
-    rel = _read_views(views, names, domains, layers, cols["views"])
-    target = rel[names.index(attribute)]
-    n_l = target.noisy.shape[0]
-    if by_layer and n_l == 1:
-        raise ValueError(f"view {attribute!r} has no layers")
-    if method == "view":
-        est = target.noisy if by_layer else target.noisy.sum(axis=0, keepdims=True)
-        terms = 1 if by_layer else n_l
-        var = np.full(est.shape, terms * _dl_variance(target.scale))
-        hw = np.full(est.shape, _exact_half_width(target.scale, terms, confidence))
-        hw_level = hw if level == confidence else np.full(est.shape, _exact_half_width(target.scale, terms, level))
-        interval_method = "exact"
-    else:
-        attrs = list(dict.fromkeys(a for v in rel for a in v.attributes))
-        poss = {}
-        for a in attrs:
-            if possible is not None and a in possible:
-                poss[a] = np.asarray(possible[a], dtype=bool)
-            elif a in supernodes.column_names:
-                poss[a] = possible_values_from_labels(supernodes.column(a).to_pylist(), domains[a],
-                                                      (hierarchies or {}).get(a))
-            else:
-                poss[a] = np.ones((n_groups, len(domains[a])), dtype=bool)
-        fine = _read_fine(superedges, n_groups, cols["superedges"]) if superedges is not None else None
-        n_layers = len(layers) if layers is not None else 1
-        ce = consistent_estimates(poss, rel, fine, n_layers=n_layers)
-        i = names.index(attribute)
-        q = ce.query_matrix(i, by_layer=by_layer)
-        est = (q @ ce.estimate).reshape(-1 if by_layer else 1, view_cell_count(k))
-        var = ce.variance(q).reshape(est.shape)
-        noise = np.abs(ce.noise_draws(q, int(draws), np.random.default_rng(seed)))
-        hw = np.quantile(noise, confidence, axis=0, method="higher").reshape(est.shape)
-        hw_level = hw if level == confidence else \
-            np.quantile(noise, level, axis=0, method="higher").reshape(est.shape)
-        interval_method = "monte_carlo"
     a_idx, b_idx = view_cells(k)
     rows = est.shape[0]
     vals = np.asarray(values, dtype=object)
@@ -1060,36 +1179,41 @@ def contact_matrix(supernodes: pa.Table, superedges, views, attribute: str, *, d
         "value_a": pa.array(np.tile(vals[a_idx], rows), pa.string()),
         "value_b": pa.array(np.tile(vals[b_idx], rows), pa.string()),
     }
-    if by_layer:
+    if layers is not None:
         out["layer"] = pa.array(np.repeat(np.asarray(layers, dtype=object), len(a_idx)), pa.string())
     out[quantity] = pa.array(flat)
     out[f"{quantity}_clamped"] = pa.array(np.maximum(flat, 0.0))
     out["lower"] = pa.array(np.maximum(flat - hw.reshape(-1), 0.0))
     out["upper"] = pa.array(np.maximum(flat + hw.reshape(-1), 0.0))  # the truth is >= 0: never an empty interval
     out["noise_sd"] = pa.array(np.sqrt(np.maximum(var.reshape(-1), 0.0)))
-    if per_person:
-        if noisy_people:
-            p_hw = np.array([_exact_half_width(s, t, level) for s, t in zip(p_scale, p_terms)])
-        else:
-            p_hw = np.zeros(k)
-        lo_c = np.maximum(flat - hw_level.reshape(-1), 0.0)
-        hi_c = np.maximum(flat + hw_level.reshape(-1), 0.0)
-        rate = cols["per_person"]
-        diag = np.tile(np.where(a_idx == b_idx, 2.0, 1.0), rows)
-        for side, idx in (("a", np.tile(a_idx, rows)), ("b", np.tile(b_idx, rows))):
-            n = p_counts[idx]
-            n_lo = np.maximum(n - p_hw[idx], 0.0)
-            n_hi = n + p_hw[idx]
-            with np.errstate(divide="ignore", invalid="ignore"):
-                out[f"people_{side}"] = pa.array(n)
-                out[f"{rate}_{side}"] = pa.array(np.where(n > 0, diag * flat / n, np.nan))
-                out[f"{rate}_{side}_lower"] = pa.array(np.where(n_hi > 0, diag * lo_c / n_hi, 0.0))
-                out[f"{rate}_{side}_upper"] = pa.array(np.where(n_lo > 0, diag * hi_c / n_lo, np.inf))
-    meta = {"method": method, "interval_method": interval_method, "confidence": str(confidence),
-            "draws": str(int(draws)) if interval_method == "monte_carlo" else "",
-            "views": ",".join(names), "people": "noisy (Bonferroni)" if noisy_people else
-            ("exact" if per_person else "")}
-    return pa.table(out).replace_schema_metadata({k_: str(v_) for k_, v_ in meta.items()})
+    return out
+
+
+def _rate_columns(k: int, est, hw_level, people, noisy_people: bool, level: float, rate: str) -> dict:
+    """The per-person columns: people of each side and the rate per person of each side, with bounds
+    (count bounds at ``level`` over people bounds at ``level``; ``people`` from :func:`_people`)."""
+    p_counts, p_scale, p_terms = people
+    if noisy_people:
+        p_hw = np.array([_exact_half_width(s, t, level) for s, t in zip(p_scale, p_terms)])
+    else:
+        p_hw = np.zeros(k)
+    a_idx, b_idx = view_cells(k)
+    rows = est.shape[0]
+    flat = est.reshape(-1)
+    lo_c = np.maximum(flat - hw_level.reshape(-1), 0.0)
+    hi_c = np.maximum(flat + hw_level.reshape(-1), 0.0)
+    diag = np.tile(np.where(a_idx == b_idx, 2.0, 1.0), rows)
+    out = {}
+    for side, idx in (("a", np.tile(a_idx, rows)), ("b", np.tile(b_idx, rows))):
+        n = p_counts[idx]
+        n_lo = np.maximum(n - p_hw[idx], 0.0)
+        n_hi = n + p_hw[idx]
+        with np.errstate(divide="ignore", invalid="ignore"):
+            out[f"people_{side}"] = pa.array(n)
+            out[f"{rate}_{side}"] = pa.array(np.where(n > 0, diag * flat / n, np.nan))
+            out[f"{rate}_{side}_lower"] = pa.array(np.where(n_hi > 0, diag * lo_c / n_hi, 0.0))
+            out[f"{rate}_{side}_upper"] = pa.array(np.where(n_lo > 0, diag * hi_c / n_lo, np.inf))
+    return out
 
 
 def _by_labels(supernodes, superedges, attribute, cols, quantity, confidence):

@@ -9,9 +9,9 @@ noise and post-process. Every sensitivity is derived in ``docs/privacy.md``.
 from __future__ import annotations
 
 __all__ = ["SuperedgeTruth", "dense_truth", "superedge_sparse_threshold", "release_superedge_counts",
-           "release_cell_counts", "released_sizes", "release_degree_histograms", "release_weight_totals",
-           "release_degree_sequences", "release_triangle_count", "Statistic", "STATISTICS", "StatisticsRun",
-           "release_statistics", "post_process"]
+           "release_cell_counts", "released_sizes", "checked_sizes", "release_degree_histograms",
+           "release_weight_totals", "release_degree_sequences", "release_triangle_count", "Statistic",
+           "STATISTICS", "StatisticsRun", "release_statistics", "post_process"]
 
 from dataclasses import dataclass, field
 from typing import Callable
@@ -23,7 +23,7 @@ from ..cells import n_cells
 from ..errors import PolicyError
 from .degree_histograms import release_degree_histograms
 from .degree_sequences import release_degree_sequences, sorted_sequences
-from .sizes import release_cell_counts, released_sizes
+from .sizes import checked_sizes, release_cell_counts, released_sizes
 from .superedges import SuperedgeTruth, dense_truth, release_superedge_counts, superedge_sparse_threshold
 from .triangles import ManifestFields, release_triangle_count, triangle_truth
 from .weight_totals import release_weight_totals

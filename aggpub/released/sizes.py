@@ -2,11 +2,12 @@
 
 from __future__ import annotations
 
-__all__ = ["release_cell_counts", "released_sizes"]
+__all__ = ["release_cell_counts", "released_sizes", "checked_sizes"]
 
 import numpy as np
 
 from ..budget import Spend
+from ..errors import PrivacyError
 from ..noise.mechanisms import GeometricMechanism
 
 
@@ -45,3 +46,19 @@ def released_sizes(grouping) -> np.ndarray:
     if grouping.noisy_cell_sizes is None:
         return grouping.sizes()
     return np.maximum(np.rint(np.asarray(grouping.noisy_cell_sizes, dtype=np.float64)), 0).astype(np.int64)
+
+
+def checked_sizes(grouping, min_size: int, progress) -> tuple[np.ndarray, bool]:
+    """The sizes every later step of a release uses (caps, histogram totals), and whether they are exact.
+
+    Public sizes, or released ones (:func:`released_sizes`, post-processing).
+    Exact sizes below ``min_size`` would be a bug in the grouping: refused. The
+    progress line names the smallest and largest size published.
+    """
+    sizes_exact = grouping.noisy_cell_sizes is None
+    sizes = released_sizes(grouping)
+    if sizes_exact and (sizes < min_size).any():
+        raise PrivacyError("internal check failed: a supernode is below min_size")  # pragma: no cover
+    progress(f"{grouping.n_supernodes:,} supernodes of {int(sizes.min()):,} to {int(sizes.max()):,} people"
+             + ("" if sizes_exact else " (noisy sizes)"))
+    return sizes, sizes_exact
