@@ -24,7 +24,7 @@ matrix's cells (Xiao, Wang, Gehrke, ICDE 2010; sanity bound ``s`` = 0.1% of the 
 as the audit uses), pooled over releases; the root mean squared error over cells and releases (what
 least squares minimises); ``cov95``, the share of cells whose 95% interval covers the truth (target
 0.95). Real networks: supernodes from all their listed attributes, minimum size 5, no layers.
-The release is simulated in numpy (``aggpub.estimates.simulate``) with the project's discrete
+The release is simulated in numpy (``aggpub.simulated_release``) with the project's discrete
 Laplace mechanism; the pipeline wiring is separate.
 
 Timing: the least-squares step plus its Monte Carlo intervals (2,000 draws, layered age matrix) on the
@@ -59,7 +59,7 @@ from aggpub.demo import (AGE_BANDS, AGE_HIERARCHY, NEIGHBOURHOOD_HIERARCHY, NEIG
                          generate_town)
 from aggpub.estimates.matrix import contact_matrix
 from aggpub.estimates.views import one_layer_per_contact
-from aggpub.estimates.simulate import simulate_release
+from aggpub.simulated_release import simulate_release
 from aggpub.noise.sampler import make_random_source
 
 REAL = Path("/work/shared/real-networks")

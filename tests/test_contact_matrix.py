@@ -32,7 +32,7 @@ from aggpub.cells import all_cells
 from aggpub.estimates.matrix import (FineTable, ViewRelease, consistent_estimates, contact_matrix,
                                      contact_matrix_square, possible_values_from_labels, possible_values_from_people)
 from aggpub.estimates.matrix import _dl_variance, _exact_half_width
-from aggpub.estimates.simulate import simulate_release
+from aggpub.simulated_release import simulate_release
 from aggpub.estimates.views import view_cell_count, view_cell_index
 from aggpub.noise.sampler import make_random_source
 

@@ -16,11 +16,11 @@ from dataclasses import dataclass, field
 import numpy as np
 import pyarrow as pa
 
-from ..cells import all_cells, cell_index, possible_pairs
-from ..released import SuperedgeTruth, release_superedge_counts
-from ..grouping import group_by_attributes
-from ..noise.mechanisms import GeometricMechanism
-from .views import combine_codes, true_view_table, view_sensitivity, view_table
+from .cells import all_cells, cell_index, possible_pairs
+from .released import SuperedgeTruth, release_superedge_counts
+from .grouping import group_by_attributes
+from .noise.mechanisms import GeometricMechanism
+from .estimates.views import combine_codes, true_view_table, view_sensitivity, view_table
 
 
 def attribute_codes(people: pa.Table, attribute: str, domain=None):
