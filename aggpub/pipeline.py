@@ -22,7 +22,7 @@ import pyarrow as pa
 
 from .budget import ReleaseBudget, check_contact_cap
 from .budget.ledger import ChargeOnFirstDraw, ReleaseLedger
-from .bundle.datacard import render_datacard
+from .bundle.guide import render_guide
 from .bundle.manifest import build_manifest
 from .bundle.write import write_bundle
 from .errors import PrivacyError
@@ -61,8 +61,8 @@ class Release:
     def superedges(self) -> pa.Table | None:
         return self.tables.get("superedges")
 
-    def datacard(self) -> str:
-        return render_datacard(self.manifest)
+    def guide(self) -> str:
+        return render_guide(self.manifest)
 
 
 class ReleaseRun(tuple):
@@ -226,7 +226,7 @@ def publish(release: Release, out, *, overwrite: bool = False, _fault=None) -> P
     >>> {"README.md", "manifest.json", "supernodes.parquet", "superedges.parquet"} <= {p.name for p in path.iterdir()}
     True
     """
-    return write_bundle(out, release.tables, release.manifest, render_datacard(release.manifest),
+    return write_bundle(out, release.tables, release.manifest, render_guide(release.manifest),
                         overwrite=overwrite, _fault=_fault)
 
 
