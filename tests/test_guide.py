@@ -39,7 +39,9 @@ def _tables():
         # a layer by a public rule on the edge itself: ties seen in at least 3 contexts are 'strong'
         "kind": ["strong" if G.edges[u, v]["weight"] >= 3 else "weak" for u, v in G.edges()],
     })
-    people = pa.table({"node": [str(v) for v in G], "club": [G.nodes[v]["club"] for v in G]})
+    people = pa.table({"node": [str(v) for v in G], "club": [G.nodes[v]["club"] for v in G],
+                       # an invented public attribute outside the grouping (first and second half of the ids)
+                       "cohort": ["first" if v < 17 else "second" for v in G]})
     return edges, people
 
 
@@ -126,7 +128,7 @@ def test_sparse_guide_gives_the_threshold_of_the_manifest(threshold):
     text = rel.guide()
     files = _section(text, "Files")
     assert f"**T = {t}**" in files and f"**An absent cell means \"noisy count below T = {t}\"**" in files
-    assert f"({m['rows']['superedges']} of the {m['superedge_cells']} pairs" in files
+    assert f"({m['rows']['superedges']:,} of the {m['superedge_cells']:,} pairs" in files
     assert "**zeros included**" not in files and "not an unbiased total" in files
     # the listed cells are exactly those at or above T
     assert (np.asarray(rel.superedges.column("edge_count_unclamped").to_numpy()) >= t).all()
@@ -138,7 +140,7 @@ def test_dense_guide_has_no_threshold_and_lists_every_cell():
     text = rel.guide()
     files = _section(text, "Files")
     n = rel.manifest["rows"]["supernodes"]
-    assert f"({n * (n + 1) // 2} rows), **zeros included**" in files
+    assert f"({n * (n + 1) // 2:,} rows), **zeros included**" in files
     assert rel.superedges.num_rows == n * (n + 1) // 2
     assert "threshold" not in text.lower() and "absent cell" not in text
     assert "Sums of `edge_count_unclamped` are unbiased" in files
@@ -190,6 +192,19 @@ def test_layered_views_guide_names_the_layers_and_the_view_weights():
     # without layers, none of this appears
     plain = _release(_policy()).guide()
     assert "one table per layer" not in plain and "Layers:" not in plain and "contact_view_weights" not in plain
+
+
+def test_person_unit_view_outside_the_grouping_is_named_and_its_people_are_noisy():
+    pol = _policy(unit="person", epsilon=2.0, domains={"cohort": {"values": ["first", "second"]}},
+                  components={"contact_views": {"attributes": ["club", "cohort"]}})
+    rel = _release(pol)
+    text = rel.guide()
+    assert "- `cohort` (view attribute, not used for grouping): values `first`, `second`." in text
+    assert "(`club`, `cohort`)" in _section(text, "Files")
+    assert "exact (the person table is public" not in text and "noisy count per value" in text
+    assert any(c["name"] == "view_people:cohort" for c in rel.manifest["components"])
+    edge = _release(_policy(components={"contact_views": {"attributes": ["club", "cohort"]}})).guide()
+    assert "exact (the person table is public under unit `edge`)" in edge and "noisy count per value" not in edge
 
 
 def test_components_present_are_the_components_described():

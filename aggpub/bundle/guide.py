@@ -224,7 +224,7 @@ def _grouping_text(m) -> str:
         text = (f"People were grouped by {_attrs_text(attrs)}: each supernode holds the people with one "
                 f"combination of values. Where a combination's {small} was below {k}, "
                 + (f"its values were replaced by broader ones from the policy's hierarchies of {_attrs_text(hier)}"
-                   + (f" ({_attrs_text(order)}, in this order)" if len(order) > 1 else "")
+                   + (" (first " + ", then ".join(_code(a) for a in order) + ")" if len(order) > 1 else "")
                    + ", and what was still too small" if hier else "it")
                 + " was merged into a residual supernode (or, if too small for one, into the smallest supernode).")
     elif method in ("structure", "attributes+structure"):
@@ -363,7 +363,7 @@ def _superedges_file(m) -> str:
     if m.get("superedges_sparse"):
         t = m.get("superedges_sparse_threshold")
         return (f"- `superedges.parquet`: **a sparse release.** Only the cells whose noisy count reached the "
-                f"threshold **T = {t}** are listed ({rows.get('superedges', '?')} of the {cells} pairs of "
+                f"threshold **T = {t}** are listed ({rows.get('superedges', '?'):,} of the {cells:,} pairs of "
                 f"supernodes `supernode_a <= supernode_b`). **An absent cell means \"noisy count below T = {t}\"**, "
                 "not zero: its true count is unknown, most likely small, but any count can fall below the "
                 "threshold once noise is added. The listed cells were kept for being high, so small listed counts "
@@ -373,7 +373,7 @@ def _superedges_file(m) -> str:
                 "Srivastava and Tran, \"Differentially private summaries for sparse data\", ICDT 2012.) "
                 + cols + "\n")
     return (f"- `superedges.parquet`: one row for every pair of supernodes `supernode_a <= supernode_b` "
-            f"({cells} rows), **zeros included**: a pair with no contact is released with its noise like any other. "
+            f"({cells:,} rows), **zeros included**: a pair with no contact is released with its noise like any other. "
             + cols + " Sums of `edge_count_unclamped` are unbiased; sums of `edge_count` are not (clamping lifts "
             "empty cells above zero)." + (f" Noise scale {_num(sp.get('scale'))}." if sp.get("scale") else "") + "\n")
 
