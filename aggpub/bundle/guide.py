@@ -269,9 +269,11 @@ def _sizes(m) -> str:
         lines.append(f"**Sizes are exact.** `supernodes.size` is the true number of people in each supernode, with "
                      f"no noise, and every supernode holds at least `min_size` = {k} people.")
         if _attribute_groupings(m):
-            lines.append(f"**So the number of people with each combination of {_attrs_text(attrs)} (after the "
-                         "generalisation above) is published exactly.** Anyone who knows that someone is in the "
-                         f"data, and knows their {_attrs_text(attrs)}, knows which supernode they belong to.")
+            lines.append(f"**So the number of people with each combination of {_attrs_text(attrs)} (as grouped "
+                         "into supernodes, after any generalisation) is published exactly.**"
+                         + (" Anyone who knows that someone is in the data, and knows their "
+                            f"{_attrs_text(attrs)}, knows which supernode they belong to."
+                            if m.get("grouping_method") == "attributes" else ""))
         if "view_people" in m.get("rows", {}):
             lines.append("`view_people.parquet` likewise gives the exact number of people with each value of every "
                          "view attribute.")
@@ -365,8 +367,8 @@ def _superedges_file(m) -> str:
         return (f"- `superedges.parquet`: **a sparse release.** Only the cells whose noisy count reached the "
                 f"threshold **T = {t}** are listed ({rows.get('superedges', '?'):,} of the {cells:,} pairs of "
                 f"supernodes `supernode_a <= supernode_b`). **An absent cell means \"noisy count below T = {t}\"**, "
-                "not zero: its true count is unknown, most likely small, but any count can fall below the "
-                "threshold once noise is added. The listed cells were kept for being high, so small listed counts "
+                "not zero: its true count is unknown. A true count well above T is rarely absent, but counts near "
+                "or below T often are, and noise can push any count below T. The listed cells were kept for being high, so small listed counts "
                 "are biased upwards, and a sum over the listed cells is not an unbiased total (it misses what the "
                 "absent cells hold, and empty cells that passed the threshold add their noise). (The listing has "
                 "exactly the law of noising every cell and then dropping those below T; Cormode, Procopiuc, "

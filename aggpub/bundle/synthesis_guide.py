@@ -178,7 +178,10 @@ def synthesis_guide(manifest) -> str:
     kind = release_kind(manifest)
     eps = _nearest_epsilon(manifest.get("epsilon_total"))
     ref = FIDELITY_REFERENCE[kind][eps]
-    keeps = ["the number of contacts in every superedge cell (its estimate, rounded without bias)"]
+    sparse = bool(manifest.get("superedges_sparse"))
+    keeps = (["the contacts of every listed superedge cell (its clamped count); the cells absent from this sparse "
+              "release get no contact at all"] if sparse else
+             ["the number of contacts in every superedge cell (its estimate, rounded without bias)"])
     loses = ["who is in contact with whom: synthetic people are invented and their contacts drawn at random",
              "any structure inside a supernode or between supernodes beyond what the released statistics carry "
              "(communities that the grouping attributes do not follow, for example)"]
@@ -204,7 +207,8 @@ def synthesis_guide(manifest) -> str:
         "",
         "Loses: " + "; ".join(loses) + ".",
         "",
-        f"How well that works was measured on releases of the same kind at epsilon {eps:g} (the benchmark "
+        f"How well that works was measured on {'dense ' if sparse else ''}releases of the same kind at epsilon "
+        f"{eps:g} (the benchmark "
         f"epsilon nearest this release's {manifest.get('epsilon_total')}), not on this release: its own true "
         "figures are confidential. Over the seven development networks, synthetic against true "
         "(lowest to highest, and on which network):",
