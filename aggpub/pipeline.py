@@ -22,7 +22,7 @@ import pyarrow as pa
 from .audit.run import audit_and_report, report_folder
 from .budget import ReleaseBudget, check_contact_cap
 from .budget.ledger import ChargeOnFirstDraw, ReleaseLedger
-from .bundle.datacard import render_datacard
+from .bundle.guide import render_guide
 from .bundle.manifest import applied_policy, build_manifest
 from .bundle.write import prepare_target, write_bundle
 from .engines import make_engine
@@ -172,7 +172,7 @@ def publish(release: Release, out, *, overwrite: bool = False, _fault=None) -> P
     >>> {"README.md", "manifest.json", "supernodes.parquet", "superedges.parquet"} <= {p.name for p in path.iterdir()}
     True
     """
-    return write_bundle(out, release.tables, release.manifest, render_datacard(release.manifest),
+    return write_bundle(out, release.tables, release.manifest, render_guide(release.manifest),
                         overwrite=overwrite, _fault=_fault)
 
 

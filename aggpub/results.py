@@ -13,7 +13,7 @@ from pathlib import Path
 
 import pyarrow as pa
 
-from .bundle.datacard import render_datacard
+from .bundle.guide import render_guide
 from .grouping import Grouping
 from .network import Network
 from .policy import ReleasePolicy
@@ -44,8 +44,8 @@ class Release:
     def superedges(self) -> pa.Table | None:
         return self.tables.get("superedges")
 
-    def datacard(self) -> str:
-        return render_datacard(self.manifest)
+    def guide(self) -> str:
+        return render_guide(self.manifest)
 
 
 class ReleaseRun(tuple):

@@ -23,10 +23,9 @@ MAX_PIPELINE_LINES = 250
 # branch (issue 16); the lead empties this list once that branch is merged. Nothing else belongs here.
 LONG_FUNCTION_ALLOWED = {"aggpub/audit/report.py::render_html"}
 
-# Named in DEVELOPERS.md's table before the file exists: bundle/datacard.py is being renamed to
-# bundle/guide.py in another branch (the reader's guide). Until that lands, the table may name guide.py and
-# leave datacard.py out. The lead empties this once the rename is merged (the check then needs nothing).
-PENDING_RENAMES = {"aggpub/bundle/guide.py": "aggpub/bundle/datacard.py"}
+# Paths the table may name before the file exists, as {new path: old path} during a rename in another branch.
+# Empty: no rename is pending.
+PENDING_RENAMES: dict = {}
 
 
 # --------------------------------------------------------------------------- reading the package

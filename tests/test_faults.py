@@ -74,7 +74,7 @@ STAGE_FAULTS = [
     ("noise", released_mod, "release_superedge_counts", _boom, 9),
     ("audit", audit_mod, "audit_release", _boom, 9),
     ("report_write", report_mod, "write_report", _boom, 9),
-    ("datacard", pipeline, "render_datacard", _boom, 9),
+    ("guide", pipeline, "render_guide", _boom, 9),
     ("parquet_write", pq, "write_table", _boom, 9),
     ("checksum", write_mod, "sha256_file", _boom, 9),
     ("manifest_write", write_mod, "write_synced", _boom, 9),

@@ -200,8 +200,8 @@ def test_person_grouping_needs_a_public_domain():
     assert "480" not in str(err.value) and "codebook" in str(err.value)  # no private figure; a public source
 
 
-def test_person_datacard_says_sizes_are_noisy(released):
+def test_person_guide_says_sizes_are_noisy(released):
     release, _ = released
-    card = release.datacard()
+    card = release.guide()
     assert "Sizes are noisy" in card and "supernode_sizes" in card
     assert "| superedge_counts | 1 | 30 | discrete_laplace | 30 |" in card

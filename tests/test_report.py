@@ -19,7 +19,7 @@ import pyarrow.parquet as pq
 import pytest
 
 from aggpub.audit.report import AUDIT_JSON, REPORT_HTML
-from aggpub.bundle.datacard import CAUTIONS
+from aggpub.bundle.guide import CAUTIONS
 from aggpub.cli import main
 from aggpub.demo import write_demo_inputs
 

@@ -195,10 +195,10 @@ def _old_style_bundle(rel, path):
                              "view_domains", "views")}
     manifest["components"] = [c for c in manifest["components"] if c["name"] == "superedge_counts"]
     manifest["rows"] = {k: t.num_rows for k, t in tables.items()}
-    from aggpub.bundle.datacard import render_datacard
+    from aggpub.bundle.guide import render_guide
     from aggpub.bundle.write import write_bundle
 
-    return write_bundle(path, tables, manifest, render_datacard(manifest))
+    return write_bundle(path, tables, manifest, render_guide(manifest))
 
 
 def test_cli_sample_with_and_without_the_new_tables(tmp_path, capsys):
@@ -325,21 +325,21 @@ def test_reader_guide_figures_are_the_committed_benchmark_results():
 
 
 def test_reader_guide_follows_the_manifest():
-    from aggpub.bundle.datacard import render_datacard
+    from aggpub.bundle.guide import render_guide
 
     g, rel = _release("karate")
-    text = render_datacard(rel.manifest)
+    text = render_guide(rel.manifest)
     assert "## Which column to use for what" in text and "edge_count_estimate" in text
     assert "with the degree-corrected sampler with affinity blocks" in text
     assert "local clustering, through blocks" in text
     g, rel = _release("karate", triangle_count={"enabled": False})
-    text = render_datacard(rel.manifest)
+    text = render_guide(rel.manifest)
     assert "(no triangle count released, so no affinity blocks)" in text and "Loses:" in text
     g, rel = _release("karate", degree_sequences={"enabled": False}, triangle_count={"enabled": False})
-    text = render_datacard(rel.manifest)
+    text = render_guide(rel.manifest)
     assert "uniform block sampler" in text and "degree heterogeneity" in text
     old = {k: v for k, v in rel.manifest.items() if k != "superedge_estimates"}
-    assert "sum of the unbiased" not in render_datacard(old) and "uniform block sampler" in render_datacard(old)
+    assert "sum of the unbiased" not in render_guide(old) and "uniform block sampler" in render_guide(old)
 
 
 # --------------------------------------------------------------------------- the audit draws with the same sampler

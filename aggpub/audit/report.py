@@ -21,7 +21,7 @@ from pathlib import Path
 import numpy as np
 
 from ..outputs import write_folder, write_synced
-from ..bundle.datacard import CAUTIONS
+from ..bundle.guide import CAUTIONS
 from ..errors import OutputError
 
 REPORT_HTML = "report.html"
@@ -438,8 +438,8 @@ def render_html(audit: dict) -> str:
                  for name, w in q.items() if "from_estimates" in w]
         if urows:
             parts.append('<p class="note">The same workloads answered by summing <code>edge_count_unclamped</code> '
-                         "(the noisy counts before clamping, also in the bundle, unbiased), as the researcher "
-                         "data card advises for sums:</p>")
+                         "(the noisy counts before clamping, also in the bundle, unbiased), as the bundle's "
+                         "reader's guide advises for sums:</p>")
             parts.append(_table(["workload", "mean abs. error", "median rel. error", "p90 rel. error"], urows))
         if erows:
             parts.append('<p class="note">And by summing <code>edge_count_estimate</code> (the consistent '

@@ -6,12 +6,12 @@ grouping's public description and the row counts of the released tables.
 
 from __future__ import annotations
 
-__all__ = ["build_manifest", "public_policy", "applied_policy"]
+__all__ = ["build_manifest", "public_policy", "applied_policy", "grouping_labels"]
 
 from datetime import datetime, timezone
 
 from .._version import BUNDLE_FORMAT, __version__
-from .datacard import CAUTIONS
+from .guide import CAUTIONS, DEFERENCE
 
 
 def applied_policy(policy, *, source=None, target=None, node=None, weight=None, drop_unknown=None):
@@ -51,6 +51,21 @@ def public_policy(policy) -> dict:
     return d
 
 
+def grouping_labels(grouping, attributes) -> dict:
+    """Each grouping attribute's distinct values in the supernode labels, in supernode order.
+
+    The labels are released in ``supernodes.parquet`` (public values or values the
+    grouping chose from noisy counts), so this repeats released values only; the
+    reader's guide names them.
+    """
+    labels = grouping.labels
+    out = {}
+    for a in attributes:
+        if a in labels.column_names:
+            out[a] = list(dict.fromkeys(str(v) for v in labels.column(a).to_pylist()))
+    return out
+
+
 def build_manifest(policy, grouping, budget, source, tables: dict, *, sizes_exact: bool, extra: dict,
                    ledger_charge=None, uncharged: str = "") -> dict:
     """The manifest dict of a release (without ``files`` and ``manifest_sha256``, added when written).
@@ -80,6 +95,8 @@ def build_manifest(policy, grouping, budget, source, tables: dict, *, sizes_exac
         "tool_version": __version__,
         "created_utc": datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ"),
         "title": policy.title,
+        # the dataset whose lifetime budget this release belongs to (the policy's [ledger]), or None
+        "dataset": policy.ledger.dataset if policy.ledger is not None else None,
         "policy": public_policy(policy),
         "privacy_unit": unit,
         "max_contacts": policy.privacy.max_contacts,
@@ -95,8 +112,9 @@ def build_manifest(policy, grouping, budget, source, tables: dict, *, sizes_exac
         "grouping_attributes": list(policy.grouping.attributes),
         "grouping_public": grouping.public,
         "grouping_notes": list(grouping.notes),
+        "grouping_labels": grouping_labels(grouping, policy.grouping.attributes),
         "rows": {name: t.num_rows for name, t in tables.items()},
-        "cautions": CAUTIONS,
+        "cautions": CAUTIONS + " " + DEFERENCE,
     }
     manifest.update(extra)
     if source.seeded:

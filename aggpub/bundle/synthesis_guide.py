@@ -1,6 +1,6 @@
 """The reader's guide on estimates and synthetic networks, written from a bundle's manifest only.
 
-Two parts of ``README.md`` (:func:`aggpub.bundle.datacard.render_datacard` places them):
+Two parts of ``README.md`` (:func:`aggpub.bundle.guide.render_guide` places them):
 which count column to use for what (:func:`columns_guide`), and what a synthetic network
 drawn from this release keeps and loses (:func:`synthesis_guide`). Both read the
 manifest alone: which statistics were released, with which epsilon, and the sampler
@@ -118,24 +118,33 @@ def columns_guide(manifest) -> str:
     lines = ["## Which column to use for what", ""]
     if has_estimate:
         lines += [
-            "- **`superedges.edge_count_estimate`** (the column to lead with): contact totals of a supernode or of "
-            "any group of supernodes, contact matrices, supergraph weights, synthetic networks. Non-negative, at "
-            "most `possible_pairs`, and made consistent: "
-            + ("every supernode's degree total (`2 x_AA + sum of x_AB`) and the whole table's total are the best "
-               "linear unbiased estimates from the noisy counts and the noisy degree sequences together."
-               if "degree_sequences" in rows else
-               "every supernode's degree total (`2 x_AA + sum of x_AB`) and the whole table's total are the sums "
-               "of the unbiased noisy counts.")
-            + (" (This release is sparse: its estimates are the clamped counts, biased upwards.)"
-               if manifest.get("superedges_sparse") else ""),
-            "- `superedges.edge_count_unclamped`: error bars. It is the mechanism's output itself (true count plus "
-            "noise of a known law, can be negative), so sums of it are unbiased and their intervals exact "
-            "(`aggpub.interval` uses it). Single cells are noisy; prefer the estimate for point values.",
+            ("- `superedges.edge_count_estimate`: in this sparse release, the clamped count of each listed cell "
+             "(no consistency step: the absent cells are unknown); like the listed counts it is biased upwards on "
+             "small cells. Absent cells have no estimate."
+             if manifest.get("superedges_sparse") else
+             "- **`superedges.edge_count_estimate`** (the column to lead with): contact totals of a supernode or of "
+             "any group of supernodes, contact matrices, supergraph weights, synthetic networks. Non-negative, at "
+             "most `possible_pairs`, and made consistent: "
+             + ("every supernode's degree total (`2 x_AA + sum of x_AB`) and the whole table's total are the best "
+                "linear unbiased estimates from the noisy counts and the noisy degree sequences together."
+                if "degree_sequences" in rows else
+                "every supernode's degree total (`2 x_AA + sum of x_AB`) and the whole table's total are the sums "
+                "of the unbiased noisy counts.")),
+            ("- `superedges.edge_count_unclamped`: the noisy counts as drawn (true count plus noise of a known law). "
+             "In this sparse release only cells at or above the threshold are listed, so a sum over the listed "
+             "cells is not an unbiased total: it misses what the absent cells hold, and empty cells that passed "
+             "the threshold add their noise." if manifest.get("superedges_sparse") else
+             "- `superedges.edge_count_unclamped`: error bars. It is the mechanism's output itself (true count plus "
+             "noise of a known law, can be negative), so sums of it are unbiased and their intervals exact "
+             "(`aggpub.interval` uses it). Single cells are noisy; prefer the estimate for point values."),
             "- `superedges.edge_count`: the noisy count clamped to `[0, possible_pairs]`, kept for older tools. "
             "Do not add it up: clamping lifts every empty cell above zero.",
         ]
     else:
-        lines += ["- `superedges.edge_count_unclamped` for sums and error bars (unbiased); `edge_count` "
+        lines += ["- `superedges.edge_count_unclamped` for error bars on listed cells; its sums are not "
+                  "unbiased in this sparse release (absent cells are missing, listed ones were kept for being high); "
+                  "`edge_count` (clamped) for single cells only." if manifest.get("superedges_sparse") else
+                  "- `superedges.edge_count_unclamped` for sums and error bars (unbiased); `edge_count` "
                   "(clamped) for single cells only."]
     if "degree_sequences" in rows:
         lines += [
@@ -169,7 +178,10 @@ def synthesis_guide(manifest) -> str:
     kind = release_kind(manifest)
     eps = _nearest_epsilon(manifest.get("epsilon_total"))
     ref = FIDELITY_REFERENCE[kind][eps]
-    keeps = ["the number of contacts in every superedge cell (its estimate, rounded without bias)"]
+    sparse = bool(manifest.get("superedges_sparse"))
+    keeps = (["the contacts of every listed superedge cell (its clamped count); the cells absent from this sparse "
+              "release get no contact at all"] if sparse else
+             ["the number of contacts in every superedge cell (its estimate, rounded without bias)"])
     loses = ["who is in contact with whom: synthetic people are invented and their contacts drawn at random",
              "any structure inside a supernode or between supernodes beyond what the released statistics carry "
              "(communities that the grouping attributes do not follow, for example)"]
@@ -195,7 +207,8 @@ def synthesis_guide(manifest) -> str:
         "",
         "Loses: " + "; ".join(loses) + ".",
         "",
-        f"How well that works was measured on releases of the same kind at epsilon {eps:g} (the benchmark "
+        f"How well that works was measured on {'dense ' if sparse else ''}releases of the same kind at epsilon "
+        f"{eps:g} (the benchmark "
         f"epsilon nearest this release's {manifest.get('epsilon_total')}), not on this release: its own true "
         "figures are confidential. Over the seven development networks, synthetic against true "
         "(lowest to highest, and on which network):",

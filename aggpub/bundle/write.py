@@ -18,9 +18,9 @@ from ._files import MANIFEST, check_outside_inputs, manifest_digest, prepare_tar
 PARQUET_META_KEY = b"aggpub.privacy"
 
 
-def write_bundle(target, tables: dict, manifest: dict, datacard: str, overwrite: bool = False,
+def write_bundle(target, tables: dict, manifest: dict, guide: str, overwrite: bool = False,
                  _fault=None) -> Path:
-    """Write ``tables`` (name -> pyarrow.Table), the manifest and the data card as a bundle.
+    """Write ``tables`` (name -> pyarrow.Table), the manifest and the reader's guide as a bundle.
 
     Parameters
     ----------
@@ -32,8 +32,8 @@ def write_bundle(target, tables: dict, manifest: dict, datacard: str, overwrite:
     manifest : dict
         The manifest without ``files``; ``files`` (SHA-256 of every other file) and
         ``manifest_sha256`` are added here.
-    datacard : str
-        Markdown text of the researcher data card (``README.md``).
+    guide : str
+        Markdown text of the reader's guide (``README.md``).
     overwrite : bool
         Replace an existing bundle (atomically).
     _fault : callable, optional
@@ -73,7 +73,7 @@ def write_bundle(target, tables: dict, manifest: dict, datacard: str, overwrite:
             if _fault:
                 _fault(f"wrote {name}")
             files[name] = sha256_file(path)
-        write_synced(tmp / "README.md", datacard)
+        write_synced(tmp / "README.md", guide)
         files["README.md"] = sha256_file(tmp / "README.md")
         manifest = dict(manifest)
         manifest["files"] = dict(sorted(files.items()))
