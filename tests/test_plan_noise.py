@@ -1,0 +1,85 @@
+"""The pre-flight predicts the budget split the release really uses.
+
+Under unit ``edge`` the person table is public and the split depends on the
+number of people: an unset ``triangle_count`` is on only up to
+``aggpub.policy.TRIANGLE_AUTO_MAX_PEOPLE`` people, and when it is off its share
+goes to the other components. ``aggpub plan`` (:func:`aggpub.plan.run_plan`)
+must then list, for every component, the epsilon, sensitivity and noise scale
+that the release's manifest records. The network is Zachary's karate club as
+networkx ships it (Zachary, "An information flow model for conflict and fission
+in small groups", J. Anthropological Research 1977), grouped by its ``club``
+attribute (17 and 17 members).
+"""
+
+from __future__ import annotations
+
+import math
+
+import networkx as nx
+import pyarrow as pa
+import pytest
+
+import aggpub
+import aggpub.policy
+from aggpub.plan import run_plan
+from aggpub.policy import parse_policy
+
+
+def _karate():
+    g = nx.karate_club_graph()
+    edges = pa.table({"source": [str(u) for u, v in g.edges()], "target": [str(v) for u, v in g.edges()]})
+    people = pa.table({"node": [str(n) for n in g], "club": [g.nodes[n]["club"] for n in g]})
+    return edges, people
+
+
+def _policy(extra: dict | None = None):
+    d = {"privacy": {"unit": "edge", "epsilon": 1.0},
+         "grouping": {"method": "attributes", "attributes": ["club"], "min_size": 5}}
+    d.update(extra or {})
+    return d
+
+
+def _by_name(components):
+    return {c["name"]: c for c in components}
+
+
+def _assert_same_noise(planned, released):
+    assert set(planned) == set(released), (sorted(planned), sorted(released))
+    for name, p in planned.items():
+        r = released[name]
+        assert p["mechanism"] == r["mechanism"], name
+        assert math.isclose(p["epsilon"], r["epsilon"], rel_tol=1e-12), (name, p["epsilon"], r["epsilon"])
+        assert math.isclose(p["sensitivity"], r["sensitivity"], rel_tol=1e-12), name
+        assert math.isclose(p["scale"], r["scale"], rel_tol=1e-12), (name, p["scale"], r["scale"])
+
+
+@pytest.mark.parametrize("triangle_limit", [None, 10])
+def test_plan_noise_equals_the_release_manifest_under_edge(monkeypatch, triangle_limit):
+    """With the default limit the triangle count is on (34 people); with a limit of 10 it is off and the
+    release gives its share to the others. A plan that split without the number of people would count it
+    on in both cases and predict the superedge counts' scale at 2/7 instead of 1/3 of epsilon."""
+    if triangle_limit is not None:
+        monkeypatch.setattr(aggpub.policy, "TRIANGLE_AUTO_MAX_PEOPLE", triangle_limit)
+    edges, people = _karate()
+    policy = _policy()
+    plan = run_plan(parse_policy(policy), people)
+    release = aggpub.release_tables(edges, people, policy, seed=7)  # seeded: a test, NOT private
+    planned = _by_name(plan.rows[0].noise)
+    released = _by_name(release.manifest["components"])
+    assert ("triangle_count" in released) == (triangle_limit is None)
+    _assert_same_noise(planned, released)
+
+
+def test_plan_noise_with_explicit_shares_and_weighted_views(monkeypatch):
+    """Explicit shares, weight totals and weighted views (several spends per view statistic)."""
+    monkeypatch.setattr(aggpub.policy, "TRIANGLE_AUTO_MAX_PEOPLE", 10)
+    edges, people = _karate()
+    weight = pa.array([1 + (i % 7) for i in range(edges.num_rows)], pa.int64())
+    edges = edges.append_column("minutes", weight)
+    policy = _policy({"components": {
+        "superedge_counts": {"share": 0.4},
+        "weight_totals": {"enabled": True, "share": 0.2, "column": "minutes", "clip": 5},
+        "contact_views": {"share": 0.4, "weighted": True, "column": "minutes", "clip": 5}}})
+    plan = run_plan(parse_policy(policy), people)
+    release = aggpub.release_tables(edges, people, policy, seed=3, weight="minutes")
+    _assert_same_noise(_by_name(plan.rows[0].noise), _by_name(release.manifest["components"]))
