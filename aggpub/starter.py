@@ -840,7 +840,9 @@ def _ledger_and_gate_lines(dataset, attributes) -> list:
         "# release charges its epsilon there, and one that would exceed lifetime_epsilon is refused.",
     ]
     lines += _key_lines("ledger.path", f"{dataset}.ledger", active=False)
-    lines += _key_lines("ledger.dataset", dataset, active=False)
+    lines += _key_lines("ledger.dataset", dataset, active=False, extra=(
+        "Written from the person file's name: name the data instead (e.g. the study and its year), the",
+        "same in every policy that releases these people."))
     lines += _key_lines("ledger.lifetime_epsilon", 3.0, active=False)
     lines += _section_lines("gate", active=False)
     lines += [
