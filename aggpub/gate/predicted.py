@@ -109,7 +109,7 @@ def _stand_in_grouping(policy, people: pa.Table | None, assumptions: Assumptions
         notes.append(f"supernodes: grouping method '{g.method}' under unit '{unit}' reads private data (or "
                      "draws at random); the pre-flight uses a stand-in of the same number of people in groups "
                      "of about min_size")
-    return sizes.astype(np.int64), labels, exact, people.num_rows, notes
+    return sizes.astype(np.int64), labels, exact, people, notes
 
 
 def stand_in_release(policy, people: pa.Table | None = None) -> StandIn:
@@ -124,7 +124,9 @@ def stand_in_release(policy, people: pa.Table | None = None) -> StandIn:
     from ..policy import epsilon_shares
 
     assumptions = _assumptions(policy)
-    sizes, labels, exact, n_people, notes = _stand_in_grouping(policy, people, assumptions)
+    # people: the public person table under unit edge, the stand-in spread over the declared domains under person
+    sizes, labels, exact, people, notes = _stand_in_grouping(policy, people, assumptions)
+    n_people = people.num_rows
     unit, D = policy.privacy.unit, policy.privacy.max_contacts
     # the split the release will use: it depends on the number of people (whether an unset triangle count
     # is on), which is public under unit edge only; under person the release splits without it (None)
