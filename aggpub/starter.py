@@ -66,8 +66,11 @@ aggpub draft-policy --nodes people.csv --attributes age_band,neighbourhood --uni
 
 writes a starting policy in which every key is commented with what it does and the choices: epsilon 1.0,
 `min_size` 20 (`--epsilon`, `--min-size` to change), grouping by the given attributes, superedge counts released,
-a `[ledger]` section commented out (one ledger file per dataset), `[gate]` thresholds only as commented examples,
-and `[input]` with the person id column (`--node-column`, default `node`). As written it parses strictly and
+the contact views (`[components.contact_views]`: a contact matrix per grouping attribute, on by default) with
+their options commented out, a `[layers]` section commented out (the setting of each contact, declared from the
+study design; with `--edges` the edge file's other columns are listed as candidates), example shares commented
+out that add up to 1, a `[ledger]` section commented out (one ledger file per dataset), `[gate]` thresholds only
+as commented examples, and `[input]` with the person id column (`--node-column`, default `node`). As written it parses strictly and
 releases; review it before a real release. The same in Python: `aggpub.starter.draft_policy(...)` returns the text
 and the notes, `aggpub.starter.write_draft_policy(...)` writes it (atomically; an existing file is replaced only
 with `--overwrite`). Exit codes: 0 written, 2 usage error, 3 input error (a file missing, unreadable or not
@@ -663,7 +666,8 @@ def _render(people: Path, attributes, *, unit, max_contacts, node_column, epsilo
     lines = _header_lines(people, attributes, unit, codebook, title, dataset)
     lines += _privacy_lines(unit, epsilon, max_contacts, codebook, hierarchies)
     lines += _grouping_lines(people, attributes, min_size, small_note, hierarchies)
-    lines += _component_lines(unit)
+    lines += _component_lines(unit, attributes)
+    lines += _layer_lines(edge_columns)
     lines += _ledger_and_gate_lines(dataset, attributes)
     lines += _input_lines(people, node_column, edge_columns)
     return "\n".join(lines) + "\n"
@@ -753,11 +757,11 @@ def _grouping_lines(people, attributes, min_size, small_note, hierarchies) -> li
     return lines
 
 
-def _component_lines(unit) -> list:
+def _component_lines(unit, attributes) -> list:
     lines = ["", f"# {'-' * 98}",
              f"# [components]: {_plain(next(s for s in POLICY_SECTIONS if s.name == 'components').meaning)}",
              "# Components without a share split what the shares leave (the triangle count takes half the",
-             "# part of each other one)."]
+             "# part of each other one). The example shares commented out below add up to 1."]
     if unit == "edge":
         lines.append("# With nothing set: superedge counts, contact views, degree sequences 2/7 each, triangles 1/7.")
     sizes_extra = (("Exact and free under unit \"edge\" (the person table is public).",) if unit == "edge" else
@@ -768,7 +772,7 @@ def _component_lines(unit) -> list:
         lines += _key_lines("components.supernode_sizes.share", 0.2, active=False)
     lines += ["", "[components.superedge_counts]"]
     lines += _key_lines("components.superedge_counts.enabled", True)
-    lines += _key_lines("components.superedge_counts.share", 0.8 if unit == "person" else 0.4, active=False)
+    lines += _key_lines("components.superedge_counts.share", 0.5 if unit == "person" else 0.3, active=False)
     lines += _key_lines("components.superedge_counts.method", "auto", active=False)
     lines += ["", "[components.degree_histograms]"]
     lines += _key_lines("components.degree_histograms.enabled", False)
@@ -777,15 +781,54 @@ def _component_lines(unit) -> list:
     lines += _key_lines("components.weight_totals.enabled", False)
     lines += _key_lines("components.weight_totals.column", "minutes", active=False)
     lines += _key_lines("components.weight_totals.clip", 120, active=False)
+    lines += _view_lines(unit, attributes)
     if unit == "edge":  # under person neither has a derived sensitivity: the policy refuses them
         lines += ["", "# Degree sequences and the triangle count make synthetic networks (aggpub sample) keep degree",
                   "# heterogeneity and local clustering; both are on by default under unit \"edge\".",
                   "[components.degree_sequences]"]
         lines += _key_lines("components.degree_sequences.enabled", True, active=False)
-        lines += _key_lines("components.degree_sequences.share", 0.4, active=False)
+        lines += _key_lines("components.degree_sequences.share", 0.3, active=False)
         lines += ["", "[components.triangle_count]"]
         lines += _key_lines("components.triangle_count.enabled", True, active=False)
-        lines += _key_lines("components.triangle_count.share", 0.2, active=False)
+        lines += _key_lines("components.triangle_count.share", 0.1, active=False)
+    return lines
+
+
+def _view_lines(unit, attributes) -> list:
+    """``[components.contact_views]``: on by default, every key commented out (docs/policy.md)."""
+    lines = ["", f"# {_plain(next(s for s in POLICY_SECTIONS if s.name == 'components.contact_views').meaning)}",
+             "# With no key set here, every grouping attribute gets a complete contact matrix (a view), per",
+             "# layer when [layers] is declared, as long as no other component sets a share: a policy that",
+             "# splits epsilon by shares lists every component it wants, so give the views a share there.",
+             "# 'aggpub matrix' and aggpub.contact_matrix read them (docs/contact-matrices.md).",
+             "[components.contact_views]"]
+    lines += _key_lines("components.contact_views.enabled", True, active=False)
+    lines += _key_lines("components.contact_views.share", 0.3, active=False)
+    lines += _key_lines("components.contact_views.attributes", list(attributes), active=False, extra=(
+        ("Under unit \"person\" an attribute outside the grouping needs [domains.<attribute>] values",
+         "from a public codebook.") if unit == "person" else ()))
+    if len(attributes) > 1:
+        lines += _key_lines("components.contact_views.combinations", [",".join(attributes[:2])], active=False)
+    lines += _key_lines("components.contact_views.weighted", True, active=False)
+    lines += _key_lines("components.contact_views.column", "minutes", active=False)
+    lines += _key_lines("components.contact_views.clip", 120, active=False)
+    return lines
+
+
+def _layer_lines(edge_columns) -> list:
+    """``[layers]``, commented out: the setting of each contact is declared, never read from the data."""
+    lines = _section_lines("layers", active=False)
+    lines += [
+        "# Not active: remove the leading '# ' of the section and its keys to use it. With it, the contact",
+        "# matrices come per setting (aggpub matrix --layer NAME). Declare the values from the study design,",
+        "# never from the data; their order places a pair of people recorded in several settings.",
+    ]
+    if edge_columns is not None and len(edge_columns) > 2:
+        lines += textwrap.wrap("Columns of the edge file besides the first two (a layer column may be one of them): "
+                               + ", ".join(edge_columns[2:]) + ".", width=_WIDTH, initial_indent="# ",
+                               subsequent_indent="# ")
+    lines += _key_lines("layers.column", "setting", active=False)
+    lines += _key_lines("layers.values", ["household", "school", "work", "community"], active=False)
     return lines
 
 
@@ -797,7 +840,9 @@ def _ledger_and_gate_lines(dataset, attributes) -> list:
         "# release charges its epsilon there, and one that would exceed lifetime_epsilon is refused.",
     ]
     lines += _key_lines("ledger.path", f"{dataset}.ledger", active=False)
-    lines += _key_lines("ledger.dataset", dataset, active=False)
+    lines += _key_lines("ledger.dataset", dataset, active=False, extra=(
+        "Written from the person file's name: name the data instead (e.g. the study and its year), the",
+        "same in every policy that releases these people."))
     lines += _key_lines("ledger.lifetime_epsilon", 3.0, active=False)
     lines += _section_lines("gate", active=False)
     lines += [

@@ -390,3 +390,76 @@ def test_edges_header_names_the_edge_columns_and_a_semicolon_file_is_explained(t
     assert main(["draft-policy", "--nodes", str(semi), "--node-column", "ClientID", "--attributes", "Area",
                  "--out", str(tmp_path / "p2.toml")]) == 3
     assert "';'-delimited" in capsys.readouterr().err
+
+
+# --------------------------------------------------------------------------- contact views and layers (issue 13)
+
+
+def _uncomment(text: str, section: str, keys) -> str:
+    """Remove the leading '# ' of ``[section]`` (if commented out) and of the listed keys inside it."""
+    out, current = [], None
+    for line in text.splitlines():
+        head = re.match(r"^(# )?\[([a-z_.]+)\]$", line)
+        if head:
+            current = head.group(2)
+            if current == section:
+                line = f"[{section}]"
+        elif current == section and any(line.startswith(f"# {k} = ") for k in keys):
+            line = line[2:]
+        out.append(line)
+    return "\n".join(out) + "\n"
+
+
+def test_draft_mentions_views_and_layers_and_keeps_the_default_views(town, tmp_path, capsys):
+    """The views are on by default in the written policy (every key commented out, as docs/policy.md
+    documents them), [layers] is commented out, and the release of the demo town carries both views."""
+    draft = draft_policy(town["people"], ["age_band", "neighbourhood"], edges=town["edges"])
+    text = draft.text
+    decoded = tomllib.loads(text)
+    assert decoded["components"]["contact_views"] == {} and "layers" not in decoded
+    for key in ("enabled", "share", "attributes", "combinations", "weighted", "column", "clip"):
+        assert f"# {key} = " in text.split("[components.contact_views]")[1].split("[components.degree_sequences]")[0]
+    assert "# [layers]" in text and '# column = "setting"' in text
+    assert "Columns of the edge file besides the first two" in text and "setting, minutes" in text
+    path = tmp_path / "policy.toml"
+    path.write_text(text, encoding="utf-8")
+    bundle = tmp_path / "bundles" / "views"
+    bundle.parent.mkdir()
+    release(path, town, bundle, capsys)
+    manifest = read_bundle_manifest(bundle)
+    names = [c["name"] for c in manifest["components"]]
+    assert "contact_views:age_band" in names and "contact_views:neighbourhood" in names
+    assert not manifest.get("layers")
+
+
+@pytest.mark.parametrize("unit", ["edge", "person"])
+def test_uncommented_example_shares_add_up_to_one(town, tmp_path, unit):
+    kwargs = {}
+    if unit == "person":
+        kwargs = {"unit": "person", "codebook": demo_codebook(tmp_path / "codebook.csv"), "max_contacts": 60}
+    text = draft_policy(town["people"], ["age_band", "neighbourhood"], **kwargs).text
+    for section in ("components.supernode_sizes", "components.superedge_counts", "components.contact_views",
+                    "components.degree_sequences", "components.triangle_count"):
+        text = _uncomment(text, section, ["share"])
+    decoded = tomllib.loads(text)
+    shares = [t["share"] for t in decoded["components"].values() if "share" in t]
+    assert abs(sum(shares) - 1.0) < 1e-12, shares
+    parse_policy(decoded)  # strict: the shares add up to 1 and every share's component is on
+
+
+def test_uncommented_layers_release_the_demo_town_per_setting(town, tmp_path, capsys):
+    text = _uncomment(draft_policy(town["people"], ["age_band", "neighbourhood"]).text, "layers",
+                      ["column", "values"])
+    path = tmp_path / "policy.toml"
+    path.write_text(text, encoding="utf-8")
+    bundle = tmp_path / "bundles" / "layers"
+    bundle.parent.mkdir()
+    release(path, town, bundle, capsys)
+    manifest = read_bundle_manifest(bundle)
+    assert manifest["layers"]["values"] == list(demo.SETTINGS)
+
+
+def read_bundle_manifest(bundle):
+    import json
+
+    return json.loads((Path(bundle) / "manifest.json").read_text(encoding="utf-8"))

@@ -109,7 +109,7 @@ def _stand_in_grouping(policy, people: pa.Table | None, assumptions: Assumptions
         notes.append(f"supernodes: grouping method '{g.method}' under unit '{unit}' reads private data (or "
                      "draws at random); the pre-flight uses a stand-in of the same number of people in groups "
                      "of about min_size")
-    return sizes.astype(np.int64), labels, exact, people.num_rows, notes
+    return sizes.astype(np.int64), labels, exact, people, notes
 
 
 def stand_in_release(policy, people: pa.Table | None = None) -> StandIn:
@@ -124,15 +124,21 @@ def stand_in_release(policy, people: pa.Table | None = None) -> StandIn:
     from ..policy import epsilon_shares
 
     assumptions = _assumptions(policy)
-    sizes, labels, exact, n_people, notes = _stand_in_grouping(policy, people, assumptions)
+    # people: the public person table under unit edge, the stand-in spread over the declared domains under person
+    sizes, labels, exact, people, notes = _stand_in_grouping(policy, people, assumptions)
+    n_people = people.num_rows
     unit, D = policy.privacy.unit, policy.privacy.max_contacts
-    shares = epsilon_shares(policy)
+    # the split the release will use: it depends on the number of people (whether an unset triangle count
+    # is on), which is public under unit edge only; under person the release splits without it (None)
+    public_people = n_people if unit == "edge" else None
+    shares = epsilon_shares(policy, public_people)
     comps = []
     for name in ("superedge_counts", "degree_histograms"):
         option = getattr(policy.components, name)
         if option.enabled:
             comps.append({"name": name, "epsilon": shares[name], "sensitivity": sensitivity(unit, name, D)})
     tables = {"supernodes": labels.add_column(1, "size", pa.array(sizes))}
+    manifest = {"components": comps, "max_contacts": D}
     c = assumptions.contacts_per_person
     if c is not None:
         a, b = all_cells(len(sizes))
@@ -145,8 +151,46 @@ def stand_in_release(policy, people: pa.Table | None = None) -> StandIn:
                      "in proportion to their possible pairs; the edge file is never read")
         if policy.components.degree_histograms.enabled:
             tables["degree_histograms"] = _stand_in_histograms(sizes, c, policy.components.degree_histograms.max_degree)
-    return StandIn(tables=tables, manifest={"components": comps, "max_contacts": D}, n_people=int(n_people),
-                   notes=notes, grouping_exact=exact)
+        _stand_in_view(policy, people, c, n_people, public_people, tables, manifest, notes)
+    return StandIn(tables=tables, manifest=manifest, n_people=int(n_people), notes=notes, grouping_exact=exact)
+
+
+def _stand_in_view(policy, people, c, n_people, public_people, tables, manifest, notes) -> None:
+    """The released view of the gate's attribute, when the release will have one: homogeneous mixing.
+
+    The release's gate reads the contact matrix from that view (:func:`aggpub.gate.released.released_metrics`),
+    so the pre-flight predicts it from the same table: ``c * n / 2`` contacts spread over the pairs of values
+    in proportion to their possible pairs, split evenly over the declared layers, and the view's own noise.
+    """
+    from ..policy import view_names
+    from ..released.contact_views import view_codes, view_domains
+    from . import gate_attribute
+
+    option = policy.components.contact_views
+    attr = gate_attribute(policy)
+    if people is None or not option.enabled or attr not in view_names(option):
+        return
+    noise = {x["name"]: x for x in _noise_of(policy, public_people)}
+    spend = noise.get(f"contact_views:{attr}")
+    if spend is None:
+        return
+    from ..estimates.views import view_cells, view_table
+
+    domains = view_domains(policy, people)
+    (code,), (k,) = view_codes(people, [attr], domains)
+    per = np.bincount(code[code >= 0], minlength=k).astype(np.float64)
+    a, b = view_cells(k)
+    pairs = np.where(a == b, per[a] * (per[a] - 1) / 2.0, per[a] * per[b])
+    expected = c * n_people / 2.0 * pairs / max(float(pairs.sum()), 1.0)
+    layers = list(policy.layers.values or ())
+    n_layers = max(1, len(layers))
+    counts = np.rint(np.tile(expected / n_layers, (n_layers, 1))).astype(np.int64)
+    tables["contact_views"] = view_table(attr, domains[attr], counts, spend["scale"], layers or None)
+    manifest["components"].append({k2: spend[k2] for k2 in ("name", "epsilon", "sensitivity")})
+    manifest["layers"] = {"values": layers}
+    notes.append(f"contact matrix by '{attr}': predicted from its released view (its people per value from "
+                 "the person table under unit 'edge', the declared domain under 'person'; contacts spread over "
+                 "the pairs of values in proportion to their possible pairs)")
 
 
 def _stand_in_histograms(sizes, c: float, cap: int) -> pa.Table:
@@ -162,17 +206,48 @@ def _stand_in_histograms(sizes, c: float, cap: int) -> pa.Table:
                      "people": people.reshape(-1)})
 
 
-def _noise_of(policy) -> list:
-    """Each budgeted statistic's epsilon, sensitivity and scale (the policy alone)."""
-    from ..policy import epsilon_shares
+def _noise_of(policy, n_people: int | None = None) -> list:
+    """Every budgeted statistic's noise as the release will draw it: name, mechanism, epsilon, sensitivity, scale.
+
+    Reads the policy and, under unit ``edge``, the public number of people ``n_people`` (it decides whether
+    an unset triangle count is on, and so the split); ``None`` under ``person``, as the release does. The
+    names are the manifest's spend names (one ``contact_views:<view>`` per view). The private grouping's
+    own rounds (``grouping.epsilon_share``) are not listed.
+    """
+    from ..budget import equal_split
+    from ..noise.ladder import LadderMechanism
+    from ..noise.mechanisms import GeometricMechanism
+    from ..policy import epsilon_shares, view_names
 
     unit, D = policy.privacy.unit, policy.privacy.max_contacts
-    shares = epsilon_shares(policy)
+    shares = epsilon_shares(policy, n_people)
     out = []
-    for name in ("supernode_sizes", "superedge_counts", "degree_histograms"):
-        if name in shares and getattr(policy.components, name).enabled:
-            sens = sensitivity(unit, name, D)
-            out.append({"name": name, "epsilon": shares[name], "sensitivity": sens, "scale": sens / shares[name]})
+
+    def add(name, eps, sens):
+        m = GeometricMechanism(epsilon=eps, sensitivity=sens)
+        out.append({"name": name, "mechanism": m.name, "epsilon": eps, "sensitivity": float(sens),
+                    "scale": float(m.scale)})
+
+    for name, eps in shares.items():
+        option = getattr(policy.components, name, None)
+        if option is None:  # "grouping": the private grouping's rounds
+            continue
+        if name == "contact_views":
+            names = view_names(option)
+            grouping_attrs = set(policy.grouping.attributes)
+            jobs = [("contact_views", n) for n in names]
+            if option.weighted:
+                jobs += [("contact_view_weights", n) for n in names]
+            if unit == "person":
+                jobs += [("view_people", n) for n in names if "," not in n and n not in grouping_attrs]
+            for (kind, view), part in zip(jobs, equal_split(eps, len(jobs))):
+                add(f"{kind}:{view}", part, sensitivity(unit, kind, D, option.clip))
+        elif name == "triangle_count":
+            m = LadderMechanism(epsilon=eps)
+            out.append({"name": name, "mechanism": "ladder", "epsilon": eps, "sensitivity": float(m.sensitivity),
+                        "scale": float(m.scale)})
+        else:
+            add(name, eps, sensitivity(unit, name, D, option.clip if name == "weight_totals" else None))
     return out
 
 
@@ -211,5 +286,5 @@ def predicted_metrics(policy, people: pa.Table | None = None) -> dict:
                          "size_max": int(sizes.max()), "people": stand.n_people}
     out["grouping_exact"] = stand.grouping_exact
     out["notes"] = stand.notes
-    out["noise"] = _noise_of(policy)
+    out["noise"] = _noise_of(policy, stand.n_people if policy.privacy.unit == "edge" else None)
     return out
