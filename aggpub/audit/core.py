@@ -21,7 +21,7 @@ from ..progress import silent
 from ..released import release_degree_histograms
 from . import degrees as deg
 from . import network_stats as struct
-from .draws import audit_source, default_monte_carlo, map_draws, mc_errors, post_process, spread
+from .draws import audit_source, default_monte_carlo, draw_noise, map_draws, mc_errors, post_process, spread
 from .metrics import distribution_distances, error_summary
 from .truth import released_cells, truth_of_release
 
@@ -230,9 +230,9 @@ def _monte_carlo(truth, mech, monte_carlo, source, deg_mc):
     mc = {w.name: {"mean_absolute_error": [], "median_relative_error": [], "p90_relative_error": []}
           for w in truth.workloads}
 
-    def one_draw(i, draw_source):
+    def one_draw(i, rng):
         """Figures of fresh noise draw ``i`` (inputs already validated; runs in a worker thread)."""
-        noisy = st.count + mech.noise(len(st.count), draw_source)
+        noisy = st.count + draw_noise(mech, len(st.count), rng)
         degree = None
         if deg_mc is not None and i < deg_mc["draws"]:  # the degree distribution's spread
             pmf, _ = deg.implied_degree_pmf(st.a, st.b, post_process(noisy, truth.cap_true, truth.threshold),
