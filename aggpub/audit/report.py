@@ -366,8 +366,21 @@ window.addEventListener('load', function () {
 def render_html(audit: dict) -> str:
     """The board report as one self-contained HTML page (figures embedded as PNG)."""
     plots = _plots(audit)
-    gate = audit.get("gate", {"passed": True, "checked": []})
-    dd = audit.get("degree_distribution", {})
+    parts = _title_parts(audit)
+    parts += _gate_parts(audit)
+    parts += _degree_parts(audit, plots)
+    parts += _query_parts(audit, plots)
+    if audit.get("contact_views"):  # issue 13
+        parts += _views_html(audit["contact_views"], plots)
+    parts += _structure_parts(audit)
+    parts += _budget_parts(audit, plots)
+    parts += _grouping_parts(audit, plots)
+    parts += _caution_parts(audit)
+    return _page(audit, parts)
+
+
+def _title_parts(audit: dict) -> list:
+    """The title and what the report was made from."""
     parts = []
     title = audit.get("title") or "release"
     parts.append(f"<h1>Utility audit: {html.escape(str(title))}</h1>")
@@ -377,8 +390,13 @@ def render_html(audit: dict) -> str:
     if audit.get("seeded_release"):
         parts.append('<p class="verdict fail">This release was built with a fixed noise seed (tests only): '
                      "it is NOT private and must not be published.</p>")
+    return parts
 
-    # decision
+
+def _gate_parts(audit: dict) -> list:
+    """Section 1: the gate's decision, from released values only."""
+    parts = []
+    gate = audit.get("gate", {"passed": True, "checked": []})
     parts.append("<h2>1. Gate decision (from released values only)</h2>")
     parts.append(f'<p class="note">{html.escape(GATE_BASIS_NOTE)}</p>')
     if gate.get("checked"):
@@ -402,8 +420,14 @@ def render_html(audit: dict) -> str:
     else:
         parts.append('<p class="verdict pass">The policy sets no gate thresholds; nothing was checked.</p>')
     parts.append(f'<p class="note">{html.escape(audit.get("decides", ""))}</p>')
+    return parts
 
-    # degree distribution
+
+
+def _degree_parts(audit: dict, plots: dict) -> list:
+    """Section 2: the degree distribution, true against released."""
+    parts = []
+    dd = audit.get("degree_distribution", {})
     parts.append("<h2>2. Degree distribution</h2>")
     if "ks" in dd:
         parts.append(f'<p class="note">Released side: {html.escape(dd.get("basis", ""))}. True mean degree '
@@ -428,8 +452,13 @@ def render_html(audit: dict) -> str:
                      "Distances do not add up, so the noise row is a difference of two distances.</p>")
     else:
         parts.append(f"<p>{html.escape(dd.get('basis', 'not measured'))}</p>")
+    return parts
 
-    # queries
+
+
+def _query_parts(audit: dict, plots: dict) -> list:
+    """Section 3: the error of each query workload."""
+    parts = []
     parts.append("<h2>3. Query error</h2>")
     q = audit.get("queries", {})
     if q:
@@ -484,10 +513,13 @@ def render_html(audit: dict) -> str:
     else:
         parts.append("<p>No superedge counts were released; no query workload was measured.</p>")
 
-    if audit.get("contact_views"):  # issue 13
-        parts += _views_html(audit["contact_views"], plots)
+    return parts
 
-    # structure
+
+
+def _structure_parts(audit: dict) -> list:
+    """Section 4: structure of the networks sampled from the release."""
+    parts = []
     parts.append("<h2>4. Structure of networks sampled from the release</h2>")
     st = audit.get("structure", {})
     if "true" in st:
@@ -504,8 +536,13 @@ def render_html(audit: dict) -> str:
         parts += _fidelity_parts(st.get("fidelity"))
     else:
         parts.append(f"<p>Skipped: {html.escape(str(st.get('skipped', 'not run')))}.</p>")
+    return parts
 
-    # budget
+
+
+def _budget_parts(audit: dict, plots: dict) -> list:
+    """Section 5: the privacy budget."""
+    parts = []
     parts.append("<h2>5. Privacy budget</h2>")
     b = audit.get("budget", {})
     parts.append(f"<p>Privacy unit <b>{html.escape(str(b.get('privacy_unit')))}</b>, total epsilon "
@@ -515,8 +552,13 @@ def render_html(audit: dict) -> str:
              _fmt(c["scale"])] for c in b.get("components", [])]
     if rows:
         parts.append(_table(["component", "epsilon", "sensitivity", "mechanism", "noise scale"], rows))
+    return parts
 
-    # grouping
+
+
+def _grouping_parts(audit: dict, plots: dict) -> list:
+    """Section 6: the grouping."""
+    parts = []
     parts.append("<h2>6. Grouping</h2>")
     g = audit.get("grouping", {})
     parts.append(f"<p>Method <b>{html.escape(str(g.get('method')))}</b> "
@@ -534,14 +576,24 @@ def render_html(audit: dict) -> str:
                              "left open (*)", "distinct label values"], rows))
     for n in g.get("notes", []):
         parts.append(f'<p class="note">{html.escape(n)}</p>')
+    return parts
 
-    # cautions
+
+
+def _caution_parts(audit: dict) -> list:
+    """Section 7: cautions and the audit's notes."""
+    parts = []
     parts.append("<h2>7. Cautions</h2>")
     parts.append(f'<div class="caution"><p>{html.escape(CAUTIONS)}</p><p>{html.escape(DEFERENCE)}</p></div>')
     for n in audit.get("notes", []):
         parts.append(f'<p class="note">{html.escape(n)}</p>')
     parts.append('<p id="image-check" class="note">Figures: not yet checked.</p>')
+    return parts
 
+
+def _page(audit: dict, parts: list) -> str:
+    """The sections in the page, with the CONFIDENTIAL marks, the style and the figure check."""
+    title = audit.get("title") or "release"
     body = "\n".join(parts)
     mark = html.escape(CONFIDENTIAL)
     return f"""<!DOCTYPE html>
