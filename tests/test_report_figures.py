@@ -38,3 +38,42 @@ def test_blocks_hold_the_contacts_between_value_groups():
         for y in range(x, 5):
             sel = ((ga == x) & (gb == y)) | ((ga == y) & (gb == x))
             assert m[x, y] == data[sel].sum()
+
+
+def test_svg_figures_are_well_formed_and_scaled():
+    # Python's xml.etree parses every figure; points land inside the plot area; the heat map has one
+    # rectangle per cell coloured by value (the largest value gets the scale's top colour)
+    import xml.etree.ElementTree as ET
+
+    from aggpub.audit import _svg as svg
+
+    ns = "{http://www.w3.org/2000/svg}"
+    chart = svg.line_chart([("a", [1, 10, 100], [1e-3, 1e-2, 1e-1], "#000000", ""),
+                            ("b <&>", [1, 2, 3], [0.5, 0.0, 0.2], "#c0392b", "4,2")],
+                           xlog=True, ylog=True, title="t", xlabel="x", ylabel="y")
+    root = ET.fromstring(chart)
+    lines = root.findall(f"{ns}polyline")
+    assert len(lines) == 2
+    pts = [tuple(map(float, p.split(","))) for p in lines[0].get("points").split()]
+    # x = 1, 10, 100 on a log axis: equally spaced
+    assert abs((pts[1][0] - pts[0][0]) - (pts[2][0] - pts[1][0])) < 0.2
+    assert len(lines[1].get("points").split()) == 2  # y = 0 cannot be drawn on a log axis
+    m = np.array([[0.0, 1.0], [1.0, 4.0]])
+    root = ET.fromstring(svg.heatmap(m, ["p", "q"], vmin=0.0, vmax=4.0, title="h"))
+    rects = root.findall(f"{ns}rect")
+    cells = rects[1:5]  # after the background
+    assert [c.get("fill") for c in cells][3] == "#fde725" and cells[0].get("fill") == "#440154"
+    ET.fromstring(svg.stacked_bar([("a", 0.3, "#111111"), ("b", 0.5, "#222222")], total=1.0, title="b"))
+    ET.fromstring(svg.histogram(np.arange(50), bins=10, marker=20, marker_label="m", title="s"))
+
+
+def test_report_figures_need_no_plotting_library():
+    import subprocess
+    import sys
+
+    code = ("import sys; import numpy as np; from aggpub.audit.report import _plots; "
+            "p = _plots({'_plot': {'true_pmf': np.array([0.1, 0.5, 0.4]), 'released_pmf': np.array([0.2, 0.4, 0.4]),"
+            " 'sizes': np.array([20, 30, 40]), 'rel_errors': {'w': np.array([0.1, 0.2])}},"
+            " 'grouping': {'min_size_policy': 20}}); print(sorted(p), 'matplotlib' in sys.modules)")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout
+    assert out.strip() == "['degrees', 'errors', 'sizes'] False"
