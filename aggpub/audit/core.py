@@ -333,9 +333,6 @@ def _structure_section(release, truth, samples, rng, progress) -> dict:
     true network, for "grouping alone" (the sampler fed the true aggregate) and for
     "the release".
     """
-    from ..synthesis import draw_network, inputs_from_release, inputs_from_truth
-    from . import fidelity as fid
-
     network, st = release.network, truth.st
     if st is None or "superedges" not in release.tables:
         return {"skipped": "no superedge counts in the release"}
@@ -344,6 +341,10 @@ def _structure_section(release, truth, samples, rng, progress) -> dict:
     if network.n_edges > MAX_STRUCTURE_EDGES:
         return {"skipped": f"network has more than {MAX_STRUCTURE_EDGES:,} contacts; structure comparison "
                            "is done in memory and was left out"}
+    # imported here, after the checks: the fidelity figures load scipy.stats (about a second), which a
+    # release whose structure comparison is skipped does not need
+    from ..synthesis import draw_network, inputs_from_release, inputs_from_truth
+    from . import fidelity as fid
     progress(f"audit: structure of the true network and of {samples} + {samples} sampled networks")
     codes = {c: np.unique(np.asarray(vals, dtype=str), return_inverse=True)[1] for c, vals in truth.labels.items()}
     u, v = network.engine.edge_arrays()
