@@ -88,8 +88,9 @@ class Workload:
         """Variance of each query answer from independent cell noise (before clamping)."""
         if self.matrix is None:
             return np.full(self.n_cells, float(cell_variance))
-        sq = self.matrix.multiply(self.matrix)
-        return np.asarray(sq.sum(axis=1)).ravel() * float(cell_variance)
+        m = self.matrix  # CSR: row sums of the squared entries, without a squared copy of the matrix
+        rows = np.repeat(np.arange(m.shape[0]), np.diff(m.indptr))
+        return np.bincount(rows, weights=np.square(m.data), minlength=m.shape[0]) * float(cell_variance)
 
     @property
     def n_queries(self) -> int:
