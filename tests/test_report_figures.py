@@ -58,11 +58,22 @@ def test_svg_figures_are_well_formed_and_scaled():
     # x = 1, 10, 100 on a log axis: equally spaced
     assert abs((pts[1][0] - pts[0][0]) - (pts[2][0] - pts[1][0])) < 0.2
     assert len(lines[1].get("points").split()) == 2  # y = 0 cannot be drawn on a log axis
-    m = np.array([[0.0, 1.0], [1.0, 4.0]])
-    root = ET.fromstring(svg.heatmap(m, ["p", "q"], vmin=0.0, vmax=4.0, title="h"))
-    rects = root.findall(f"{ns}rect")
-    cells = rects[1:5]  # after the background
-    assert [c.get("fill") for c in cells][3] == "#fde725" and cells[0].get("fill") == "#440154"
+    # the heat map's cells: one embedded k x k PNG, decoded by Pillow (the reference decoder), each pixel the
+    # scale's colour of its cell (0 -> the scale's bottom colour, the largest value -> its top colour)
+    import base64
+    import io
+
+    from PIL import Image
+
+    m = np.array([[0.0, 1.0, 2.0], [1.0, 4.0, 0.0], [2.0, 0.0, 3.0]])
+    root = ET.fromstring(svg.heatmap(m, ["p", "q", "r"], vmin=0.0, vmax=4.0, title="h"))
+    (image,) = root.findall(f"{ns}image")
+    href = image.get("href")
+    assert href.startswith("data:image/png;base64,")
+    pixels = np.asarray(Image.open(io.BytesIO(base64.b64decode(href.split(",", 1)[1]))).convert("RGB"))
+    assert pixels.shape == (3, 3, 3)
+    assert tuple(pixels[1, 1]) == (253, 231, 37) and tuple(pixels[0, 0]) == (68, 1, 84)
+    assert tuple(pixels[0, 2]) == tuple(pixels[2, 0]) == (33, 145, 140)  # 2 of 4: the middle anchor
     ET.fromstring(svg.stacked_bar([("a", 0.3, "#111111"), ("b", 0.5, "#222222")], total=1.0, title="b"))
     ET.fromstring(svg.histogram(np.arange(50), bins=10, marker=20, marker_label="m", title="s"))
 
