@@ -164,6 +164,7 @@ RELEASE_MARKERS = (
     ("auditing", "audit: true tables and workloads"),
     ("audit: degree distribution", "audit: degree distribution"),
     ("audit: query workloads", "audit: query workloads"),
+    ("audit: contact views", "audit: contact views (researchers' contact matrices)"),
     ("audit: structure", "audit: structure (true and sampled networks)"),
     ("drawing the figures", "report: figures and files"),
     ("confidential report written", "report written to bundle start"),

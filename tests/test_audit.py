@@ -11,6 +11,7 @@ Laplace pmf for the exact expected error under clamping.
 from __future__ import annotations
 
 import itertools
+import math
 
 import networkx as nx
 import numpy as np
@@ -391,3 +392,48 @@ def test_audit_under_the_person_unit_uses_the_noisy_sizes_and_the_cap_d():
     est = rel.tables["superedges"].column("edge_count_estimate").to_numpy()
     mean_degree = out["structure"]["sampled_from_release"]["mean_degree"]["mean"]
     assert 2 * np.floor(est).sum() / noisy_sizes.sum() <= mean_degree <= 2 * np.ceil(est).sum() / noisy_sizes.sum()
+
+
+def test_monte_carlo_noise_follows_the_discrete_laplace_pmf():
+    # The audit's fast Monte Carlo noise (difference of two geometrics) against the two-sided geometric pmf
+    # (1 - a) / (1 + a) a^|z| of Ghosh, Roughgarden, Sundararajan (STOC 2009): a chi-square goodness-of-fit
+    # test (scipy) and the variance 2 a / (1 - a)^2, at three scales; fixed seed, deterministic.
+    from scipy import stats
+
+    from aggpub.audit.draws import draw_noise
+    from aggpub.noise.mechanisms import GeometricMechanism
+
+    for epsilon, sensitivity in ((1.0, 1.0), (0.25, 1.0), (1.0, 4.0)):
+        mech = GeometricMechanism(epsilon=epsilon, sensitivity=sensitivity)
+        z = draw_noise(mech, 400_000, np.random.default_rng(7))
+        a = math.exp(-epsilon / sensitivity)
+        top = int(np.ceil(math.log(1e-4) / math.log(a)))  # bins |z| <= top, then one tail bin each side
+        edges = np.arange(-top, top + 1)
+        pmf = (1 - a) / (1 + a) * a ** np.abs(edges)
+        tail = a ** (top + 1) / (1 + a)  # P(Z > top) = P(Z < -top)
+        expected = np.concatenate([[tail], pmf, [tail]]) * len(z)
+        observed = np.concatenate([[np.sum(z < -top)], np.bincount(z[np.abs(z) <= top] + top, minlength=len(edges)),
+                                   [np.sum(z > top)]])
+        p = stats.chisquare(observed, expected).pvalue
+        assert p > 1e-4, (epsilon, sensitivity, p)
+        assert abs(z.var() / mech.variance() - 1) < 0.02
+        # a scale 30% too small is rejected by the same test (the check has power)
+        wrong = draw_noise(GeometricMechanism(epsilon=epsilon * 1.3, sensitivity=sensitivity), 400_000,
+                           np.random.default_rng(7))
+        obs_w = np.concatenate([[np.sum(wrong < -top)],
+                                np.bincount(wrong[np.abs(wrong) <= top] + top, minlength=len(edges)),
+                                [np.sum(wrong > top)]])
+        assert stats.chisquare(obs_w, expected).pvalue < 1e-6
+
+
+def test_triangles_per_node_match_networkx_on_random_graphs():
+    # degree-ordered counting against networkx.triangles on Erdos-Renyi and power-law-ish graphs (ties in degree)
+    from aggpub.audit.network_stats import adjacency, triangles_per_node
+
+    for seed, G in enumerate([nx.gnp_random_graph(60, 0.15, seed=1), nx.barabasi_albert_graph(80, 4, seed=2),
+                              nx.complete_graph(7), nx.empty_graph(5)]):
+        u = np.array([e[0] for e in G.edges()], dtype=np.int64)
+        v = np.array([e[1] for e in G.edges()], dtype=np.int64)
+        got = triangles_per_node(adjacency(u, v, G.number_of_nodes()))
+        want = nx.triangles(G)
+        assert got.tolist() == [want[i] for i in range(G.number_of_nodes())], seed

@@ -104,3 +104,36 @@ def test_degrees_are_kept_per_load_and_forgotten_on_reload(tmp_path):
     assert engine.degrees(4).tolist() == [2, 2, 1, 1]
     load_network(write(tmp_path, "f.csv", "source,target\np3,p4\n"), people, engine=engine)
     assert engine.degrees(4).tolist() == [0, 0, 1, 1]
+
+
+@pytest.mark.parametrize("offset", [0, 100, -5])
+def test_contiguous_integer_ids_map_like_the_join(tmp_path, offset):
+    # Native integer ids offset, offset + 1, ... in file order take the arithmetic path of the DuckDB
+    # engine; the same people listed out of order take the join. Both must give the same contacts, the
+    # same report (unknown, self-loop, duplicate rows) and the same dense ids per person.
+    import numpy as np
+
+    rng = np.random.default_rng(offset + 10)
+    n = 40
+    src = rng.integers(offset - 3, offset + n + 3, 300)  # some ends outside the ids: unknown people
+    tgt = rng.integers(offset - 3, offset + n + 3, 300)
+    edges = pa.table({"source": pa.array(src, pa.int64()), "target": pa.array(tgt, pa.int64())})
+    pq.write_table(edges, tmp_path / "e.parquet")
+    ids = np.arange(offset, offset + n)
+    pq.write_table(pa.table({"node": ids, "g": ["x"] * n}), tmp_path / "p_in_order.parquet")
+    perm = rng.permutation(n)
+    pq.write_table(pa.table({"node": ids[perm], "g": ["x"] * n}), tmp_path / "p_shuffled.parquet")
+    a = load_network(tmp_path / "e.parquet", tmp_path / "p_in_order.parquet", drop_unknown=True)
+    b = load_network(tmp_path / "e.parquet", tmp_path / "p_shuffled.parquet", drop_unknown=True)
+    assert a.report == b.report
+    assert a.report.unknown_person_rows_dropped > 0
+    ua, va = a.engine.edge_arrays()
+    ub, vb = b.engine.edge_arrays()
+    # person of dense id i: ids[i] in file order, ids[perm[i]] when shuffled
+    pa_ = {tuple(sorted((int(ids[x]), int(ids[y])))) for x, y in zip(ua, va)}
+    pb_ = {tuple(sorted((int(ids[perm[x]]), int(ids[perm[y]])))) for x, y in zip(ub, vb)}
+    assert pa_ == pb_ and len(pa_) == a.n_edges
+    # the reference: distinct unordered pairs of known, different people, computed in Python
+    known = set(ids.tolist())
+    ref = {tuple(sorted((int(x), int(y)))) for x, y in zip(src, tgt) if x in known and y in known and x != y}
+    assert pa_ == ref

@@ -74,8 +74,15 @@ def test_report_html_is_self_contained_and_marked_confidential(released):
     text = (report / REPORT_HTML).read_text()
     p = _Collect()
     p.feed(text)
-    # 5 figures: issue 13 added the contact matrices of the default views
-    assert len(p.imgs) == 5 and all(src.startswith("data:image/png;base64,") for src in p.imgs)
+    # 5 figures: issue 13 added the contact matrices of the default views; each an SVG image (issue 15:
+    # written directly, no plotting library) that decodes to an <svg> element with a size
+    import base64
+
+    assert len(p.imgs) == 5 and all(src.startswith("data:image/svg+xml;base64,") for src in p.imgs)
+    for src in p.imgs:
+        svg_text = base64.b64decode(src.split(",", 1)[1]).decode("utf-8")
+        assert re.match(r'<svg xmlns="http://www.w3.org/2000/svg" width="\d+" height="\d+"', svg_text)
+        assert svg_text.endswith("</svg>")
     assert p.links == []  # nothing loaded from outside the file
     assert not re.search(r"""(src|href)=["']https?:""", text)
     assert sorted(p.marks) == ["mark bottom", "mark top"]  # fixed header and footer: on every printed page

@@ -21,7 +21,7 @@ from ..progress import silent
 from ..released import release_degree_histograms
 from . import degrees as deg
 from . import network_stats as struct
-from .draws import audit_source, default_monte_carlo, map_draws, mc_errors, post_process, spread
+from .draws import audit_source, default_monte_carlo, draw_noise, map_draws, mc_errors, post_process, spread
 from .metrics import distribution_distances, error_summary
 from .truth import released_cells, truth_of_release
 
@@ -230,9 +230,9 @@ def _monte_carlo(truth, mech, monte_carlo, source, deg_mc):
     mc = {w.name: {"mean_absolute_error": [], "median_relative_error": [], "p90_relative_error": []}
           for w in truth.workloads}
 
-    def one_draw(i, draw_source):
+    def one_draw(i, rng):
         """Figures of fresh noise draw ``i`` (inputs already validated; runs in a worker thread)."""
-        noisy = st.count + mech.noise(len(st.count), draw_source)
+        noisy = st.count + draw_noise(mech, len(st.count), rng)
         degree = None
         if deg_mc is not None and i < deg_mc["draws"]:  # the degree distribution's spread
             pmf, _ = deg.implied_degree_pmf(st.a, st.b, post_process(noisy, truth.cap_true, truth.threshold),
@@ -333,9 +333,6 @@ def _structure_section(release, truth, samples, rng, progress) -> dict:
     true network, for "grouping alone" (the sampler fed the true aggregate) and for
     "the release".
     """
-    from ..synthesis import draw_network, inputs_from_release, inputs_from_truth
-    from . import fidelity as fid
-
     network, st = release.network, truth.st
     if st is None or "superedges" not in release.tables:
         return {"skipped": "no superedge counts in the release"}
@@ -344,6 +341,10 @@ def _structure_section(release, truth, samples, rng, progress) -> dict:
     if network.n_edges > MAX_STRUCTURE_EDGES:
         return {"skipped": f"network has more than {MAX_STRUCTURE_EDGES:,} contacts; structure comparison "
                            "is done in memory and was left out"}
+    # imported here, after the checks: the fidelity figures load scipy.stats (about a second), which a
+    # release whose structure comparison is skipped does not need
+    from ..synthesis import draw_network, inputs_from_release, inputs_from_truth
+    from . import fidelity as fid
     progress(f"audit: structure of the true network and of {samples} + {samples} sampled networks")
     codes = {c: np.unique(np.asarray(vals, dtype=str), return_inverse=True)[1] for c, vals in truth.labels.items()}
     u, v = network.engine.edge_arrays()
@@ -408,43 +409,27 @@ VIEW_AUDIT_DRAWS = 500
 def _views_section(release, truth, plot) -> dict:
     """Every released view, true against released (issue 13): the estimate ``aggpub matrix`` gives researchers
     (least squares over every released table), overall and per layer, and the raw view; the share of
-    contacts the supernode labels alone cannot place by exact value (generalised or ``*`` labels)."""
-    from ..estimates.release_matrix import contact_matrix
+    contacts the supernode labels alone cannot place by exact value (generalised or ``*`` labels).
 
+    When the least squares falls back to the raw view (a release too large for it, decided from public
+    sizes), the raw view's figures are the same table and are not computed twice.
+    """
     true_views = release.truth["contact_views"]["counts"]
-    layers = list(release.network.layers)
     out = {}
     plot["views"] = {}
     for name, true in true_views.items():
         entry = {}
         for method in ("consistent", "view"):
-            try:
-                m = contact_matrix(release, name, method=method, draws=VIEW_AUDIT_DRAWS, seed=0)
-            except Exception as exc:  # the audit reports what it cannot compute; it never stops the release
-                entry[method] = {"skipped": f"{type(exc).__name__}: {exc}"}
+            m = _view_matrix(release, name, method, entry)
+            if m is None:
                 continue
-            tm = true.sum(axis=0).astype(np.float64)
-            est = np.asarray(m.column("contacts").to_numpy(), dtype=np.float64)
-            lo, hi = (np.asarray(m.column(c).to_numpy(), dtype=np.float64) for c in ("lower", "upper"))
-            summ = error_summary(tm, est, truth.s_bound)
-            summ["coverage"] = float(np.mean((lo <= tm) & (tm <= hi)))
-            summ["confidence"] = 0.95
-            summ["method_used"] = dict((m.schema.metadata or {}).items()).get(b"method", b"").decode()
-            if layers and method == "consistent":
-                ml = contact_matrix(release, name, method=method, draws=VIEW_AUDIT_DRAWS, seed=0, every_layer=True)
-                el = np.asarray(ml.column("contacts").to_numpy(), dtype=np.float64).reshape(len(layers), -1)
-                llo = np.asarray(ml.column("lower").to_numpy()).reshape(len(layers), -1)
-                lhi = np.asarray(ml.column("upper").to_numpy()).reshape(len(layers), -1)
-                summ["per_layer"] = {
-                    lay: {**{k: v for k, v in error_summary(true[i], el[i], truth.s_bound).items()
-                             if k in ("mean_absolute_error", "median_relative_error", "rmse")},
-                          "coverage": float(np.mean((llo[i] <= true[i]) & (true[i] <= lhi[i])))}
-                    for i, lay in enumerate(layers)}
+            summ, tm, est = _view_figures(release, truth, name, method, true, m)
             entry[method] = summ
             if method == "consistent":
-                values = list(dict.fromkeys(m.column("value_a").to_pylist()))
-                plot["views"][name] = (values, m.column("value_a").to_pylist(), m.column("value_b").to_pylist(),
-                                       tm, est)
+                plot["views"][name] = _view_plot_data(m, tm, est)
+                if summ["method_used"] == "view":  # the fallback: the raw view is this very table
+                    entry["view"] = {k: v for k, v in summ.items() if k != "per_layer"}
+                    break
         attr = name.split(",")[0]
         if "," not in name and attr in truth.labels:  # what the supernode table alone could place exactly
             domain = set(release.manifest.get("view_domains", {}).get(attr, []))
@@ -455,3 +440,52 @@ def _views_section(release, truth, plot) -> dict:
                                                                      max(truth.st.count.sum(), 1))
         out[name] = entry
     return out
+
+
+def _view_matrix(release, name, method, entry):
+    """The researcher's contact matrix of one view (or ``None``, the reason recorded in ``entry``)."""
+    from ..estimates.release_matrix import contact_matrix
+
+    try:
+        return contact_matrix(release, name, method=method, draws=VIEW_AUDIT_DRAWS, seed=0)
+    except Exception as exc:  # the audit reports what it cannot compute; it never stops the release
+        entry[method] = {"skipped": f"{type(exc).__name__}: {exc}"}
+        return None
+
+
+def _view_figures(release, truth, name, method, true, m):
+    """Error figures and interval coverage of one estimate of a view (overall, and per layer)."""
+    from ..estimates.release_matrix import contact_matrix
+
+    layers = list(release.network.layers)
+    tm = true.sum(axis=0).astype(np.float64)
+    est = np.asarray(m.column("contacts").to_numpy(), dtype=np.float64)
+    lo, hi = (np.asarray(m.column(c).to_numpy(), dtype=np.float64) for c in ("lower", "upper"))
+    summ = error_summary(tm, est, truth.s_bound)
+    summ["coverage"] = float(np.mean((lo <= tm) & (tm <= hi)))
+    summ["confidence"] = 0.95
+    summ["method_used"] = dict((m.schema.metadata or {}).items()).get(b"method", b"").decode()
+    if layers and method == "consistent":
+        ml = contact_matrix(release, name, method=method, draws=VIEW_AUDIT_DRAWS, seed=0, every_layer=True)
+        el = np.asarray(ml.column("contacts").to_numpy(), dtype=np.float64).reshape(len(layers), -1)
+        llo = np.asarray(ml.column("lower").to_numpy()).reshape(len(layers), -1)
+        lhi = np.asarray(ml.column("upper").to_numpy()).reshape(len(layers), -1)
+        summ["per_layer"] = {
+            lay: {**{k: v for k, v in error_summary(true[i], el[i], truth.s_bound).items()
+                     if k in ("mean_absolute_error", "median_relative_error", "rmse")},
+                  "coverage": float(np.mean((llo[i] <= true[i]) & (true[i] <= lhi[i])))}
+            for i, lay in enumerate(layers)}
+    return summ, tm, est
+
+
+def _view_plot_data(m, tm, est):
+    """``(values, code_a, code_b, true, estimate)`` of a view for the report's heat maps (integer codes,
+    not a Python string per cell)."""
+    import pyarrow as pa
+    import pyarrow.compute as pc
+
+    values = pc.unique(m.column("value_a")).to_pylist()  # in order of first appearance: the declared order
+    value_set = pa.array(values, pa.string())
+    ia = np.asarray(pc.index_in(m.column("value_a"), value_set=value_set).to_numpy(zero_copy_only=False))
+    ib = np.asarray(pc.index_in(m.column("value_b"), value_set=value_set).to_numpy(zero_copy_only=False))
+    return values, ia.astype(np.int64), ib.astype(np.int64), tm, est

@@ -6,7 +6,8 @@ the true network is private: the audit's report only):
 
 ``contacts_ratio``            synthetic contacts / true contacts;
 ``degree_ks``                 two-sample Kolmogorov-Smirnov distance of the degree distributions
-                              (lower is better; ``scipy.stats.ks_2samp``);
+                              (lower is better; the statistic of ``scipy.stats.ks_2samp``,
+                              computed here with numpy: :func:`ks_statistic`);
 ``largest_degree_ratio``      largest synthetic degree / largest true degree;
 ``clustering_ratio``          average local clustering (networkx's definition: people with fewer
                               than two contacts count 0) synthetic / true;
@@ -30,11 +31,11 @@ D. J. Watts, S. H. Strogatz, "Collective dynamics of 'small-world' networks", Na
 
 from __future__ import annotations
 
-__all__ = ["TARGET_R", "FIGURES", "transmissibility", "final_size", "network_figures", "compare_figures",
+__all__ = ["TARGET_R", "FIGURES", "transmissibility", "final_size", "network_figures", "compare_figures", "ks_statistic",
            "summarise"]
 
 import numpy as np
-from scipy import sparse, stats
+from scipy import sparse
 from scipy.sparse import csgraph
 
 from .network_stats import adjacency
@@ -87,13 +88,33 @@ def network_figures(u, v, n: int, T: float, rng, draws: int = 10, average_cluste
             "average_clustering": float(average_clustering), "final_size": final_size(u, v, n, T, rng, draws)}
 
 
+def ks_statistic(x, y) -> float:
+    """The two-sample Kolmogorov-Smirnov statistic ``max |F_x - F_y|`` over the pooled sample.
+
+    The empirical distribution functions are evaluated at every observed value (right-continuous),
+    as ``scipy.stats.ks_2samp`` does; numpy only, so that the audit does not load scipy.stats
+    (about a second of imports) for one statistic.
+
+    References
+    ----------
+    N. Smirnov, "Table for estimating the goodness of fit of empirical distributions", Annals of
+    Mathematical Statistics 19(2), 1948.
+    """
+    x = np.sort(np.asarray(x, dtype=np.float64))
+    y = np.sort(np.asarray(y, dtype=np.float64))
+    pooled = np.concatenate([x, y])
+    fx = np.searchsorted(x, pooled, side="right") / len(x)
+    fy = np.searchsorted(y, pooled, side="right") / len(y)
+    return float(np.max(np.abs(fx - fy)))
+
+
 def compare_figures(true: dict, synthetic: dict) -> dict:
     """The figures of :data:`FIGURES` for one synthetic network against the true one."""
     def ratio(x, y):
         return float(x / y) if y else float("nan")
 
     return {"contacts_ratio": ratio(synthetic["contacts"], true["contacts"]),
-            "degree_ks": float(stats.ks_2samp(true["degrees"], synthetic["degrees"]).statistic),
+            "degree_ks": ks_statistic(true["degrees"], synthetic["degrees"]),
             "largest_degree_ratio": ratio(synthetic["largest_degree"], true["largest_degree"]),
             "clustering_ratio": ratio(synthetic["average_clustering"], true["average_clustering"]),
             "final_size_ratio": ratio(synthetic["final_size"], true["final_size"])}

@@ -23,7 +23,7 @@ Nature 393, 1998 (clustering coefficient).
 from __future__ import annotations
 
 __all__ = ["structure_statistics", "attribute_assortativity", "degree_assortativity",
-           "clustering", "largest_component_fraction", "adjacency"]
+           "clustering", "triangles_per_node", "largest_component_fraction", "adjacency"]
 
 import numpy as np
 from scipy import sparse
@@ -42,10 +42,37 @@ def adjacency(u, v, n: int) -> sparse.csr_matrix:
     return m
 
 
+def triangles_per_node(adj: sparse.csr_matrix) -> np.ndarray:
+    """Number of triangles through each node of a symmetric 0/1 adjacency matrix.
+
+    Degree-ordered orientation (each edge points from the lower to the higher
+    degree rank) keeps the sparse products small: with ``L`` the oriented
+    adjacency, a triangle ``a < b < c`` (by rank) is the entry ``(a, c)`` of
+    ``(L @ L) .* L`` (counted for ``a`` and ``c``) and the entry ``(b, c)`` of
+    ``(L' @ L) .* L`` (counted for ``b``), each once.
+
+    References
+    ----------
+    T. Schank, D. Wagner, "Finding, counting and listing all triangles in large
+    graphs, an experimental study", WEA 2005 (degree ordering).
+    """
+    n = adj.shape[0]
+    deg = np.diff(adj.indptr)
+    rank = np.empty(n, dtype=np.int64)
+    rank[np.lexsort((np.arange(n), deg))] = np.arange(n)
+    coo = adj.tocoo()
+    up = rank[coo.row] < rank[coo.col]
+    L = sparse.csr_matrix((np.ones(int(up.sum())), (coo.row[up], coo.col[up])), shape=(n, n))
+    ends = (L @ L).multiply(L).tocsr()    # (a, c): triangles a < b < c, counted at a and at c
+    middle = (L.T @ L).multiply(L).tocsr()  # (b, c): the same triangles, counted at b
+    return (np.asarray(ends.sum(axis=1)).ravel() + np.asarray(ends.sum(axis=0)).ravel()
+            + np.asarray(middle.sum(axis=1)).ravel())
+
+
 def clustering(adj: sparse.csr_matrix) -> tuple[float, float]:
     """Average local clustering coefficient (nodes of degree < 2 count 0) and transitivity."""
-    deg = np.asarray(adj.sum(axis=1)).ravel()
-    tri2 = np.asarray((adj @ adj).multiply(adj).sum(axis=1)).ravel()  # 2 x triangles at each node
+    deg = np.diff(adj.indptr).astype(np.float64)
+    tri2 = 2.0 * triangles_per_node(adj)  # 2 x triangles at each node
     pairs = deg * (deg - 1)
     with np.errstate(divide="ignore", invalid="ignore"):
         local = np.where(pairs > 0, tri2 / np.where(pairs > 0, pairs, 1), 0.0)

@@ -29,13 +29,40 @@ Workloads
 
 from __future__ import annotations
 
-__all__ = ["superedge_cells_workload", "contact_matrix_workload", "cut_workload", "degree_totals_workload",
+__all__ = ["PairLabels", "superedge_cells_workload", "contact_matrix_workload", "cut_workload", "degree_totals_workload",
            "Workload", "CutWorkload"]
 
+from collections.abc import Sequence
 from dataclasses import dataclass, field
 
 import numpy as np
 from scipy import sparse
+
+
+class PairLabels(Sequence):
+    """The ``(value_a, value_b)`` label of each contact-matrix query, built when read.
+
+    A workload over thousands of values has millions of queries; their labels
+    are read by nobody on the release's path, so they are kept as the value
+    names and the pair codes of each query and made into tuples only on access.
+    """
+
+    def __init__(self, cats, first, second):
+        self._cats = np.asarray(cats)
+        self._first = np.asarray(first, dtype=np.int64)
+        self._second = np.asarray(second, dtype=np.int64)
+
+    def __len__(self) -> int:
+        return len(self._first)
+
+    def __getitem__(self, i):
+        if isinstance(i, slice):
+            return [self[j] for j in range(*i.indices(len(self)))]
+        return (str(self._cats[self._first[i]]), str(self._cats[self._second[i]]))
+
+    def __iter__(self):
+        cats = [str(c) for c in self._cats]
+        return ((cats[x], cats[y]) for x, y in zip(self._first.tolist(), self._second.tolist()))
 
 
 @dataclass
@@ -61,8 +88,9 @@ class Workload:
         """Variance of each query answer from independent cell noise (before clamping)."""
         if self.matrix is None:
             return np.full(self.n_cells, float(cell_variance))
-        sq = self.matrix.multiply(self.matrix)
-        return np.asarray(sq.sum(axis=1)).ravel() * float(cell_variance)
+        m = self.matrix  # CSR: row sums of the squared entries, without a squared copy of the matrix
+        rows = np.repeat(np.arange(m.shape[0]), np.diff(m.indptr))
+        return np.bincount(rows, weights=np.square(m.data), minlength=m.shape[0]) * float(cell_variance)
 
     @property
     def n_queries(self) -> int:
@@ -150,8 +178,10 @@ def contact_matrix_workload(a, b, values, attribute: str) -> Workload:
     n_cells = len(a)
     # one entry per column: built as CSC without sorting, then turned into CSR (a counting sort)
     mat = sparse.csc_matrix((np.ones(n_cells), q, np.arange(n_cells + 1)), shape=(len(used), n_cells)).tocsr()
-    ti, tj = np.triu_indices(k)
-    labels = [(str(cats[ti[u]]), str(cats[tj[u]])) for u in used]
+    # the value pair of upper-triangle index u, without the k x k index arrays of numpy.triu_indices
+    first = np.searchsorted(np.cumsum(np.arange(k, 0, -1)), used, side="right")
+    second = used - (first * k - (first * (first - 1)) // 2) + first
+    labels = PairLabels(cats, first, second)
     generalised = int(sum(1 for c in cats if c == "*"))
     notes = [f"{k} value(s) of '{attribute}' as stated in the supernode labels"
              + (" (including '*' for supernodes that leave it open)" if generalised else "")]

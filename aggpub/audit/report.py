@@ -12,7 +12,6 @@ __all__ = ["write_report", "render_html", "audit_to_json", "check_report_target"
 
 import base64
 import html
-import io
 import json
 import math
 import os
@@ -21,6 +20,7 @@ from pathlib import Path
 import numpy as np
 
 from ..outputs import write_folder, write_synced
+from . import _svg as svg
 from ..bundle.guide import CAUTIONS
 from ..errors import OutputError
 
@@ -103,136 +103,123 @@ def audit_to_json(audit: dict) -> str:
 # ---------------------------------------------------------------------- plots
 
 
-#: Points drawn of an error distribution curve (a few per pixel of the figure's width).
-ECDF_POINTS = 4000
-
-
-def _png(fig) -> str:
-    buf = io.BytesIO()
-    fig.savefig(buf, format="png", dpi=80)
-    import matplotlib.pyplot as plt
-
-    plt.close(fig)
-    return base64.b64encode(buf.getvalue()).decode("ascii")
+#: Points drawn of an error distribution curve (about two per pixel of the figure's width).
+ECDF_POINTS = 1000
+#: Largest side of a contact-matrix heat map in cells; a view with more values is drawn in blocks of values.
+HEATMAP_MAX_SIDE = 100
 
 
 def _plots(audit: dict) -> dict:
-    import matplotlib
-
-    matplotlib.use("Agg", force=True)
-    import matplotlib.pyplot as plt
-
+    """Every figure of the report as SVG text (:mod:`aggpub.audit._svg`), by key."""
     plot = audit.get("_plot", {})
     out = {}
     if "true_pmf" in plot and "released_pmf" in plot:
-        fig, (ax1, ax2) = plt.subplots(1, 2, figsize=(10, 4.2))
-        fig.subplots_adjust(left=0.08, right=0.98, bottom=0.16, top=0.9, wspace=0.25)
-        series = [("true network", plot["true_pmf"], "-", "#222222"),
-                  (plot.get("released_basis", "released"), plot["released_pmf"], "--", "#c0392b")]
-        if "grouping_pmf" in plot:
-            series.append(("aggregate without noise", plot["grouping_pmf"], ":", "#2471a3"))
-        for name, pmf, ls, colour in series:
-            pmf = np.asarray(pmf, dtype=float)
-            k = np.arange(len(pmf))
-            keep = (k >= 1) & (pmf > 1e-9)
-            ax1.plot(k[keep], pmf[keep], ls, color=colour, label=name, marker="o", markersize=2.5)
-            ccdf = 1 - np.cumsum(pmf)
-            keep2 = (k >= 1) & (ccdf > 1e-9)
-            ax2.plot(k[keep2], ccdf[keep2], ls, color=colour, label=name)
-        for ax, title in ((ax1, "share of people with degree k"), (ax2, "share with degree above k")):
-            ax.set_xscale("log")
-            ax.set_yscale("log")
-            ax.set_xlabel("degree k (log scale; degree 0 in the table)")
-            ax.set_title(title, fontsize=10)
-            ax.grid(True, which="both", alpha=0.3)
-        ax1.legend(fontsize=8)
-        out["degrees"] = _png(fig)
-    rel = plot.get("rel_errors", {})
-    if rel:
-        fig, ax = plt.subplots(figsize=(8, 4.2))
-        fig.subplots_adjust(left=0.1, right=0.97, bottom=0.16, top=0.9)
-        floor = 1e-4
-        for name, r in rel.items():
-            r = np.sort(np.maximum(np.asarray(r, dtype=float), floor))
-            share = np.arange(1, len(r) + 1) / len(r)
-            if len(r) > ECDF_POINTS:  # the curve at the figure's resolution: evenly spaced shares
-                pick = np.unique(np.linspace(0, len(r) - 1, ECDF_POINTS).astype(np.int64))
-                r, share = r[pick], share[pick]
-            ax.plot(r, share, label=name)
-        ax.set_xscale("log")
-        ax.set_xlabel(f"relative error |released - true| / max(true, s)  (values below {floor:g} drawn at {floor:g})")
-        ax.set_ylabel("share of queries at or below")
-        ax.set_title("error distribution of each query workload", fontsize=10)
-        ax.grid(True, which="both", alpha=0.3)
-        ax.legend(fontsize=8)
-        out["errors"] = _png(fig)
+        out["degrees"] = _degree_figure(plot)
+    if plot.get("rel_errors"):
+        out["errors"] = _error_figure(plot["rel_errors"])
     comps = audit.get("budget", {}).get("components") or []
     if comps:
-        fig, ax = plt.subplots(figsize=(7, 2.4))
-        fig.subplots_adjust(left=0.05, right=0.97, bottom=0.55, top=0.85)
-        names = [c["name"] for c in comps]
-        eps = [c["epsilon"] for c in comps]
-        total = audit["budget"].get("epsilon_total") or sum(eps)
-        unspent = max(0.0, total - sum(eps))
-        left = 0.0
-        colours = ["#2471a3", "#c0392b", "#239b56", "#b9770e", "#7d3c98", "#566573"]
-        for i, (n, e) in enumerate(zip(names, eps)):
-            ax.barh([0], [e], left=left, color=colours[i % len(colours)], label=f"{n}: {e:.3g}")
-            left += e
-        if unspent > 1e-12:
-            ax.barh([0], [unspent], left=left, color="#d5d8dc", label=f"unspent: {unspent:.3g}")
-        ax.set_yticks([])
-        ax.set_xlim(0, max(total, left))
-        ax.set_xlabel("epsilon")
-        ax.set_title(f"privacy budget of this release (total epsilon {total:g})", fontsize=10)
-        ax.legend(fontsize=8, loc="upper center", bbox_to_anchor=(0.5, -0.6), ncol=3)
-        out["budget"] = _png(fig)
+        out["budget"] = _budget_figure(comps, audit["budget"].get("epsilon_total"))
     if plot.get("views"):
-        out["views"] = _views_plot(plot["views"], plt)
+        out["views"] = _views_plot(plot["views"])
     if "sizes" in plot:
-        sizes = np.asarray(plot["sizes"])
-        fig, ax = plt.subplots(figsize=(7, 3.4))
-        fig.subplots_adjust(left=0.1, right=0.97, bottom=0.17, top=0.9)
-        ax.hist(sizes, bins=min(40, max(5, len(sizes) // 4)), color="#566573")
-        ax.axvline(audit["grouping"]["min_size_policy"], color="#c0392b", ls="--", label="min_size")
-        ax.set_xlabel("people in the supernode")
-        ax.set_ylabel("supernodes")
-        ax.set_title("supernode sizes", fontsize=10)
-        ax.legend(fontsize=8)
-        out["sizes"] = _png(fig)
+        out["sizes"] = svg.histogram(plot["sizes"], bins=min(40, max(5, len(plot["sizes"]) // 4)),
+                                     marker=audit["grouping"]["min_size_policy"], marker_label="min_size",
+                                     title="supernode sizes", xlabel="people in the supernode",
+                                     ylabel="supernodes")
     return out
 
 
-def _views_plot(views: dict, plt) -> str:
-    """True against released contact matrices of (at most) the first two views, all layers together."""
-    items = list(views.items())[:2]
-    fig, axes = plt.subplots(len(items), 3, figsize=(13, 4.3 * len(items)), squeeze=False)
-    for row, (name, (values, va, vb, true, est)) in zip(axes, items):
-        pos = {v: i for i, v in enumerate(values)}
-        k = len(values)
-        t = np.full((k, k), np.nan)
-        e = np.full((k, k), np.nan)
-        ia = np.array([pos[x] for x in va])
-        ib = np.array([pos[x] for x in vb])
-        t[ia, ib] = t[ib, ia] = true
-        e[ia, ib] = e[ib, ia] = est
+def _degree_figure(plot) -> str:
+    """Degree distributions on log axes: the share with degree k, and the share above k."""
+    series = [("true network", plot["true_pmf"], "", "#222222"),
+              (plot.get("released_basis", "released"), plot["released_pmf"], "6,3", "#c0392b")]
+    if "grouping_pmf" in plot:
+        series.append(("aggregate without noise", plot["grouping_pmf"], "2,2", "#2471a3"))
+    pmfs, ccdfs = [], []
+    for name, pmf, dash, colour in series:
+        pmf = np.asarray(pmf, dtype=float)
+        k = np.arange(len(pmf))
+        keep = (k >= 1) & (pmf > 1e-9)
+        pmfs.append((name, k[keep], pmf[keep], colour, dash))
+        ccdf = 1 - np.cumsum(pmf)
+        keep2 = (k >= 1) & (ccdf > 1e-9)
+        ccdfs.append((name, k[keep2], ccdf[keep2], colour, dash))
+    xlabel = "degree k (log scale; degree 0 in the table)"
+    left = svg.line_chart(pmfs, xlog=True, ylog=True, title="share of people with degree k", xlabel=xlabel,
+                          legend="bottom left")
+    right = svg.line_chart(ccdfs, xlog=True, ylog=True, title="share with degree above k", xlabel=xlabel,
+                           legend="")
+    return svg.side_by_side([left, right], [500, 500], 330)
+
+
+def _error_figure(rel) -> str:
+    """The distribution of relative errors of each workload (log x axis)."""
+    floor = 1e-4
+    series = []
+    for i, (name, r) in enumerate(rel.items()):
+        r = np.sort(np.maximum(np.asarray(r, dtype=float), floor))
+        share = np.arange(1, len(r) + 1) / len(r)
+        if len(r) > ECDF_POINTS:  # the curve at the figure's resolution: evenly spaced shares
+            pick = np.unique(np.linspace(0, len(r) - 1, ECDF_POINTS).astype(np.int64))
+            r, share = r[pick], share[pick]
+        series.append((name, r, share, svg.COLOURS[(i + 2) % len(svg.COLOURS)], ""))
+    return svg.line_chart(series, width=700, height=340, xlog=True,
+                          title="error distribution of each query workload",
+                          xlabel=f"relative error |released - true| / max(true, s) (below {floor:g} drawn at {floor:g})",
+                          ylabel="share of queries at or below", legend="bottom right")
+
+
+def _budget_figure(comps, total) -> str:
+    """The release's epsilon by component, and what is left unspent."""
+    eps = [c["epsilon"] for c in comps]
+    total = total or sum(eps)
+    colours = ["#2471a3", "#c0392b", "#239b56", "#b9770e", "#7d3c98", "#566573"]
+    segments = [(f"{c['name']}: {c['epsilon']:.3g}", c["epsilon"], colours[i % len(colours)])
+                for i, c in enumerate(comps)]
+    unspent = max(0.0, total - sum(eps))
+    if unspent > 1e-12:
+        segments.append((f"unspent: {unspent:.3g}", unspent, "#d5d8dc"))
+    return svg.stacked_bar(segments, total=total, title=f"privacy budget of this release (total epsilon {total:g})",
+                           xlabel="epsilon")
+
+
+def _block_matrix(values, ia, ib, data, side: int):
+    """The symmetric matrix of one view in blocks of ``ceil(k / side)`` consecutive values (sums per block).
+
+    Returns the matrix and the block size (1: every value its own row).
+    """
+    k = len(values)
+    block = max(1, -(-k // side))
+    n = -(-k // block)
+    ba, bb = np.asarray(ia) // block, np.asarray(ib) // block
+    m = np.zeros((n, n))
+    np.add.at(m, (ba, bb), data)
+    off = ba != bb
+    np.add.at(m, (bb[off], ba[off]), np.asarray(data)[off])
+    return m, block
+
+
+def _views_plot(views: dict) -> str:
+    """True against released contact matrices of (at most) the first two views, all layers together.
+
+    A view with more than :data:`HEATMAP_MAX_SIDE` values is drawn in blocks of consecutive values
+    (contacts summed per block; the title says so): the figure has fewer pixels than cells anyway.
+    """
+    rows = []
+    for name, (values, ia, ib, true, est) in list(views.items())[:2]:
+        t, block = _block_matrix(values, ia, ib, true, HEATMAP_MAX_SIDE)
+        e, _ = _block_matrix(values, ia, ib, est, HEATMAP_MAX_SIDE)
+        labels = [str(v) for v in values[::block]]
         top = float(np.nanmax(np.abs(t))) or 1.0
-        for ax, data, title, cmap, lim in ((row[0], t, f"true contacts by {name}", "viridis", (0, top)),
-                                           (row[1], e, "released estimate (aggpub matrix)", "viridis", (0, top)),
-                                           (row[2], e - t, "released minus true", "RdBu_r", None)):
-            if lim is None:
-                m = float(np.nanmax(np.abs(data))) or 1.0
-                lim = (-m, m)
-            im = ax.imshow(data, cmap=cmap, vmin=lim[0], vmax=lim[1])
-            ax.set_title(title, fontsize=10)
-            step = max(1, k // 12)
-            ax.set_xticks(range(0, k, step))
-            ax.set_yticks(range(0, k, step))
-            ax.set_xticklabels(values[::step], rotation=90, fontsize=7)
-            ax.set_yticklabels(values[::step], fontsize=7)
-            fig.colorbar(im, ax=ax, fraction=0.046, pad=0.04)
-    fig.tight_layout()
-    return _png(fig)
+        diff = e - t
+        m = float(np.nanmax(np.abs(diff))) or 1.0
+        what = f" (blocks of {block} values)" if block > 1 else ""
+        panels = [svg.heatmap(t, labels, vmin=0.0, vmax=top, title=f"true contacts by {name}{what}"),
+                  svg.heatmap(e, labels, vmin=0.0, vmax=top, title="released estimate (aggpub matrix)"),
+                  svg.heatmap(diff, labels, vmin=-m, vmax=m, diverging=True, title="released minus true")]
+        rows.append(svg.side_by_side(panels, [476] * 3, 434))
+    return svg.stack(rows, 3 * 476, 434)
 
 
 def _views_html(views: dict, plots: dict) -> list:
@@ -289,7 +276,8 @@ def _table(header, rows, cls="") -> str:
 def _img(key, plots, alt) -> str:
     if key not in plots:
         return ""
-    return f'<figure><img class="plot" alt="{html.escape(alt)}" src="data:image/png;base64,{plots[key]}"></figure>'
+    data = base64.b64encode(plots[key].encode("utf-8")).decode("ascii")
+    return f'<figure><img class="plot" alt="{html.escape(alt)}" src="data:image/svg+xml;base64,{data}"></figure>'
 
 
 def _spread_text(mc):
@@ -340,10 +328,23 @@ window.addEventListener('load', function () {
 
 
 def render_html(audit: dict) -> str:
-    """The board report as one self-contained HTML page (figures embedded as PNG)."""
+    """The board report as one self-contained HTML page (figures embedded as SVG images)."""
     plots = _plots(audit)
-    gate = audit.get("gate", {"passed": True, "checked": []})
-    dd = audit.get("degree_distribution", {})
+    parts = _title_parts(audit)
+    parts += _gate_parts(audit)
+    parts += _degree_parts(audit, plots)
+    parts += _query_parts(audit, plots)
+    if audit.get("contact_views"):  # issue 13
+        parts += _views_html(audit["contact_views"], plots)
+    parts += _structure_parts(audit)
+    parts += _budget_parts(audit, plots)
+    parts += _grouping_parts(audit, plots)
+    parts += _caution_parts(audit)
+    return _page(audit, parts)
+
+
+def _title_parts(audit: dict) -> list:
+    """The title and what the report was made from."""
     parts = []
     title = audit.get("title") or "release"
     parts.append(f"<h1>Utility audit: {html.escape(str(title))}</h1>")
@@ -353,8 +354,13 @@ def render_html(audit: dict) -> str:
     if audit.get("seeded_release"):
         parts.append('<p class="verdict fail">This release was built with a fixed noise seed (tests only): '
                      "it is NOT private and must not be published.</p>")
+    return parts
 
-    # decision
+
+def _gate_parts(audit: dict) -> list:
+    """Section 1: the gate's decision, from released values only."""
+    parts = []
+    gate = audit.get("gate", {"passed": True, "checked": []})
     parts.append("<h2>1. Gate decision (from released values only)</h2>")
     parts.append(f'<p class="note">{html.escape(GATE_BASIS_NOTE)}</p>')
     if gate.get("checked"):
@@ -378,8 +384,14 @@ def render_html(audit: dict) -> str:
     else:
         parts.append('<p class="verdict pass">The policy sets no gate thresholds; nothing was checked.</p>')
     parts.append(f'<p class="note">{html.escape(audit.get("decides", ""))}</p>')
+    return parts
 
-    # degree distribution
+
+
+def _degree_parts(audit: dict, plots: dict) -> list:
+    """Section 2: the degree distribution, true against released."""
+    parts = []
+    dd = audit.get("degree_distribution", {})
     parts.append("<h2>2. Degree distribution</h2>")
     if "ks" in dd:
         parts.append(f'<p class="note">Released side: {html.escape(dd.get("basis", ""))}. True mean degree '
@@ -404,8 +416,13 @@ def render_html(audit: dict) -> str:
                      "Distances do not add up, so the noise row is a difference of two distances.</p>")
     else:
         parts.append(f"<p>{html.escape(dd.get('basis', 'not measured'))}</p>")
+    return parts
 
-    # queries
+
+
+def _query_parts(audit: dict, plots: dict) -> list:
+    """Section 3: the error of each query workload."""
+    parts = []
     parts.append("<h2>3. Query error</h2>")
     q = audit.get("queries", {})
     if q:
@@ -460,10 +477,13 @@ def render_html(audit: dict) -> str:
     else:
         parts.append("<p>No superedge counts were released; no query workload was measured.</p>")
 
-    if audit.get("contact_views"):  # issue 13
-        parts += _views_html(audit["contact_views"], plots)
+    return parts
 
-    # structure
+
+
+def _structure_parts(audit: dict) -> list:
+    """Section 4: structure of the networks sampled from the release."""
+    parts = []
     parts.append("<h2>4. Structure of networks sampled from the release</h2>")
     st = audit.get("structure", {})
     if "true" in st:
@@ -480,8 +500,13 @@ def render_html(audit: dict) -> str:
         parts += _fidelity_parts(st.get("fidelity"))
     else:
         parts.append(f"<p>Skipped: {html.escape(str(st.get('skipped', 'not run')))}.</p>")
+    return parts
 
-    # budget
+
+
+def _budget_parts(audit: dict, plots: dict) -> list:
+    """Section 5: the privacy budget."""
+    parts = []
     parts.append("<h2>5. Privacy budget</h2>")
     b = audit.get("budget", {})
     parts.append(f"<p>Privacy unit <b>{html.escape(str(b.get('privacy_unit')))}</b>, total epsilon "
@@ -491,8 +516,13 @@ def render_html(audit: dict) -> str:
              _fmt(c["scale"])] for c in b.get("components", [])]
     if rows:
         parts.append(_table(["component", "epsilon", "sensitivity", "mechanism", "noise scale"], rows))
+    return parts
 
-    # grouping
+
+
+def _grouping_parts(audit: dict, plots: dict) -> list:
+    """Section 6: the grouping."""
+    parts = []
     parts.append("<h2>6. Grouping</h2>")
     g = audit.get("grouping", {})
     parts.append(f"<p>Method <b>{html.escape(str(g.get('method')))}</b> "
@@ -510,14 +540,24 @@ def render_html(audit: dict) -> str:
                              "left open (*)", "distinct label values"], rows))
     for n in g.get("notes", []):
         parts.append(f'<p class="note">{html.escape(n)}</p>')
+    return parts
 
-    # cautions
+
+
+def _caution_parts(audit: dict) -> list:
+    """Section 7: cautions and the audit's notes."""
+    parts = []
     parts.append("<h2>7. Cautions</h2>")
     parts.append(f'<div class="caution"><p>{html.escape(CAUTIONS)}</p><p>{html.escape(DEFERENCE)}</p></div>')
     for n in audit.get("notes", []):
         parts.append(f'<p class="note">{html.escape(n)}</p>')
     parts.append('<p id="image-check" class="note">Figures: not yet checked.</p>')
+    return parts
 
+
+def _page(audit: dict, parts: list) -> str:
+    """The sections in the page, with the CONFIDENTIAL marks, the style and the figure check."""
+    title = audit.get("title") or "release"
     body = "\n".join(parts)
     mark = html.escape(CONFIDENTIAL)
     return f"""<!DOCTYPE html>

@@ -3,7 +3,8 @@
 A :class:`Spend` is one use of the budget (recorded in the manifest's
 ``components``); :class:`ReleaseBudget` checks before spending, spends once and
 raises :class:`~aggpub.errors.BudgetError` when the release's epsilon would be
-exceeded (a thin layer over diffprivlib's ``BudgetAccountant``);
+exceeded (a thin layer over :class:`aggpub.budget.accountant.SumAccountant`, which the
+tests hold against diffprivlib's ``BudgetAccountant``);
 :func:`split_epsilon` is the one place a total is cut into shares.
 
 References
@@ -21,9 +22,7 @@ import math
 from dataclasses import dataclass
 
 from ..errors import BudgetError
-
-# diffprivlib is imported where it is used: importing it loads scikit-learn (about 1.5 s), which
-# commands that spend no budget (check, sample, ledger) need not pay
+from .accountant import ExceededError, SumAccountant
 
 
 @dataclass(frozen=True)
@@ -91,30 +90,26 @@ class ReleaseBudget:
     """
 
     def __init__(self, epsilon: float):
-        from diffprivlib.accountant import BudgetAccountant
-
         self.epsilon = float(epsilon)
-        self._accountant = BudgetAccountant(epsilon=self.epsilon, delta=0.0)
+        self._accountant = SumAccountant(self.epsilon)
         self.spends = []
 
     def check(self, spend) -> None:
         """Raise :class:`BudgetError` if ``spend`` would exceed what is left."""
-        from diffprivlib.utils import BudgetError as _DPLBudgetError
-
         try:
-            self._accountant.check(spend.epsilon, 0.0)
-        except _DPLBudgetError:
+            self._accountant.check(spend.epsilon)
+        except ExceededError:
             raise BudgetError(f"component '{spend.name}' needs epsilon {spend.epsilon:g} but only "
                               f"{self.remaining():g} of {self.epsilon:g} is left") from None
 
     def spend(self, spend) -> None:
         """Check, then record ``spend`` (a :class:`Spend`) once."""
         self.check(spend)
-        self._accountant.spend(spend.epsilon, 0.0)
+        self._accountant.spend(spend.epsilon)
         self.spends.append(spend)
 
     def spent(self) -> float:
-        return float(self._accountant.total()[0])
+        return float(self._accountant.total())
 
     def remaining(self) -> float:
         return max(0.0, self.epsilon - self.spent())

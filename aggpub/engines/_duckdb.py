@@ -132,6 +132,20 @@ def _unreadable(source: Source, exc: Exception) -> InputError:
     """The error for a failed read of ``source`` (the reason names no private value unless debugging)."""
     return InputError(f"{source.unreadable}: {_clean_duckdb_message(exc, source.debug)}")
 
+def _contiguous_offset(ids: pa.Table):
+    """``o`` when the id table's native ids are ``o, o + 1, ...`` in dense-id order, else ``None``."""
+    nid = ids.column("nid")
+    if nid.null_count or not pa.types.is_integer(nid.type) or ids.num_rows == 0:
+        return None
+    values = np.asarray(nid.to_numpy(), dtype=np.int64)
+    first = int(values[0])
+    if first < -(2 ** 62) or first > 2 ** 62 - len(values):
+        return None
+    if not np.array_equal(values - first, np.arange(len(values), dtype=np.int64)):
+        return None
+    return first
+
+
 class DuckDBEngine:
     """Counting in an embedded DuckDB database.
 
@@ -296,20 +310,36 @@ class DuckDBEngine:
         if "nid" in ids.column_names and columns.source_type.kind == columns.target_type.kind == INTEGER:
             a_sql, b_sql, id_col = quote_ident(columns.source), quote_ident(columns.target), "nid"
             missing = "(e.a IS NULL OR e.b IS NULL)"
+        offset = _contiguous_offset(ids) if id_col == "nid" else None
+        if offset is not None:
+            # the native ids are offset, offset + 1, ... in the order of the dense ids: the dense id is
+            # the native one minus the offset, no join (the same pairs, about 3x faster)
+            last = offset + ids.num_rows - 1
+            dense = {x: f"CASE WHEN e.{x} BETWEEN {offset} AND {last} THEN CAST(e.{x} - {offset} AS INTEGER) "
+                        f"ELSE {UNKNOWN_ID} END" for x in ("a", "b")}
+            mapped = (f"SELECT CASE WHEN {missing} THEN {MISSING_ID} ELSE {dense['a']} END AS s, "
+                      f"CASE WHEN {missing} THEN {MISSING_ID} ELSE {dense['b']} END AS t, e.w, e.l FROM e")
+        else:
+            mapped = (f"SELECT CASE WHEN {missing} THEN {MISSING_ID} ELSE coalesce(ps.idx, {UNKNOWN_ID}) END AS s, "
+                      f"CASE WHEN {missing} THEN {MISSING_ID} ELSE coalesce(pt.idx, {UNKNOWN_ID}) END AS t, "
+                      f"e.w, e.l FROM e LEFT JOIN __ids ps ON e.a = ps.{id_col} LEFT JOIN __ids pt "
+                      f"ON e.b = pt.{id_col}")
+        # without a weight (a layer) column the aggregates over it are constants: not computed per row
+        w_select = f"{self._weight_sql(columns)} AS w," if columns.weight else ""
+        l_select = f"{self._layer_sql(columns)} AS l" if columns.layer else "NULL AS l"
+        w_aggs = ("sum(w) AS w, count(*) FILTER (WHERE w IS NULL OR isnan(w) OR isinf(w) OR w < 0) AS bad_w"
+                  if columns.weight else "CAST(NULL AS DOUBLE) AS w, CAST(0 AS BIGINT) AS bad_w")
+        l_aggs = ("coalesce(min(l), 0) AS layer, count(*) FILTER (WHERE l IS NULL) AS bad_l" if columns.layer
+                  else "CAST(0 AS SMALLINT) AS layer, CAST(0 AS BIGINT) AS bad_l")
+        if not columns.weight:
+            mapped = mapped.replace(", e.w, e.l", ", e.l")
         # issue 13: the layer's position among the declared layers (NULL when undeclared); the GROUP BY that
         # collapses a pair's rows keeps its first declared layer (the public one-layer rule)
         q = f"""
             CREATE OR REPLACE TEMP TABLE __mapped AS
-            WITH e AS (SELECT {a_sql} AS a, {b_sql} AS b, {self._weight_sql(columns)} AS w,
-                              {self._layer_sql(columns)} AS l
-                       FROM {e_sql}),
-                 m AS (SELECT CASE WHEN {missing} THEN {MISSING_ID} ELSE coalesce(ps.idx, {UNKNOWN_ID}) END AS s,
-                              CASE WHEN {missing} THEN {MISSING_ID} ELSE coalesce(pt.idx, {UNKNOWN_ID}) END AS t,
-                              e.w, e.l
-                       FROM e LEFT JOIN __ids ps ON e.a = ps.{id_col} LEFT JOIN __ids pt ON e.b = pt.{id_col})
-            SELECT least(s, t) AS u, greatest(s, t) AS v, count(*) AS mult, sum(w) AS w,
-                   count(*) FILTER (WHERE w IS NULL OR isnan(w) OR isinf(w) OR w < 0) AS bad_w,
-                   coalesce(min(l), 0) AS layer, count(*) FILTER (WHERE l IS NULL) AS bad_l
+            WITH e AS (SELECT {a_sql} AS a, {b_sql} AS b, {w_select} {l_select} FROM {e_sql}),
+                 m AS ({mapped})
+            SELECT least(s, t) AS u, greatest(s, t) AS v, count(*) AS mult, {w_aggs}, {l_aggs}
             FROM m GROUP BY 1, 2
         """
         try:
