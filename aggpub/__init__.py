@@ -20,7 +20,7 @@ from .estimates.intervals import SumInterval, cell_mask, interval
 from .estimates.supergraph import supergraph
 from .estimates.release_matrix import contact_matrix, plot_contact_matrix
 from .synthesis import sample_network, synthetic_people, write_sample
-from .audit.sweep import SweepResult, run_sweep, write_sweep
+from .sweep import SweepResult, run_sweep, write_sweep
 
 __all__ = [
     "__version__",

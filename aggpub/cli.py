@@ -135,9 +135,12 @@ def _add_ledger_parser(sub):
 def _add_sample_parser(sub):
     p = _subcommand(sub, "sample", "draw a synthetic network consistent with a bundle (researcher view)",
                     "Verify a bundle, then draw a synthetic contact network in which every "
-                    "superedge cell holds exactly its released number of distinct contacts, uniformly "
-                    "placed among the cell's possible pairs. The people are invented and numbered per "
-                    "supernode. Post-processing of public data: costs no privacy budget.")
+                    "superedge cell holds exactly its estimated number of distinct contacts. With the "
+                    "released degree sequences, people get their supernode's estimated degrees (a "
+                    "degree-corrected block model) and, with the released triangle count, clustering "
+                    "fitted to it; otherwise contacts are placed uniformly among the cell's possible "
+                    "pairs. The people are invented and numbered per supernode. Post-processing of "
+                    "public data: costs no privacy budget.")
     p.add_argument("bundle", type=Path, help="bundle folder")
     _add_out_option(p, "Parquet file to write (columns source, target)")
     p.add_argument("--people", type=Path, help="also write the person -> supernode table (Parquet)")
@@ -405,7 +408,7 @@ def cmd_sample(args):
 def cmd_plan(args):
     import json
 
-    from .audit.sweep import parse_grid
+    from .sweep import parse_grid
     from .plan import run_plan
     from .progress import Progress
 
@@ -433,9 +436,10 @@ def _print_plan(result):
         figs = "".join(f"{_fmt_metric(r.gate[k]):>12}" for k in keys)
         print(f"{r.epsilon:>8g} {r.min_size:>8} {count:>10} {sizes:>13}  {figs}  {r.verdict}")
     if result.rows:
-        print("noise per component at the first setting: " + "; ".join(
-            f"{c['name']} scale {c['scale']:.4g} (sensitivity {c['sensitivity']:g}, epsilon {c['epsilon']:.4g})"
-            for c in result.rows[0].noise))
+        print("noise per component at the first setting:")
+        for c in result.rows[0].noise:
+            print(f"  {c['name']}: scale {c['scale']:.4g} (sensitivity {c['sensitivity']:g}, "
+                  f"epsilon {c['epsilon']:.4g})")
     for k in keys:
         print(f"  {_short(k)} = {k} <= {result.rows[0].gate[k]['allowed']:g}")
     for n in result.notes:
@@ -454,7 +458,7 @@ def _fmt_metric(entry):
 
 def cmd_sweep(args):
     from .progress import Progress
-    from .audit.sweep import PLANNING_NOTE, parse_grid, run_sweep, write_sweep
+    from .sweep import PLANNING_NOTE, parse_grid, run_sweep, write_sweep
 
     epsilons = parse_grid(args.epsilons, float, "--epsilons")
     min_sizes = parse_grid(args.min_sizes, int, "--min-sizes")

@@ -5,7 +5,7 @@ is read: under unit ``edge`` the person table (public there) forms the
 supernodes exactly as the release will; under unit ``person`` only the policy is
 read (with its ``[assumptions]``). The contacts are never read. Grids of epsilon
 and ``min_size`` let a steward choose parameters before touching private data;
-the confidential sweep (:mod:`aggpub.audit.sweep`), which compares releases with
+the confidential sweep (:mod:`aggpub.sweep`), which compares releases with
 the truth, is a different tool, and choosing by it is a data-dependent step.
 """
 

@@ -5,7 +5,7 @@ folder, then times, interleaved:
 
 * one release as ``aggpub release`` runs it (``aggpub.run_release``: read, group, count,
   noise, audit, confidential report, bundle), and
-* one sweep over an epsilon x min_size grid (``aggpub.audit.sweep.run_sweep`` from the same files,
+* one sweep over an epsilon x min_size grid (``aggpub.sweep.run_sweep`` from the same files,
   plus writing its folder).
 
 The figure of merit is the sweep's time per grid point divided by one release's time:
@@ -25,7 +25,7 @@ from pathlib import Path
 
 from aggpub.demo import write_demo_inputs
 from aggpub.pipeline import run_release
-from aggpub.audit.sweep import parse_grid, run_sweep, write_sweep
+from aggpub.sweep import parse_grid, run_sweep, write_sweep
 
 
 def main():

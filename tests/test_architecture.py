@@ -195,6 +195,22 @@ def import_cycles(root: Path = PACKAGE) -> list:
     return [sorted(c) for c in nx.strongly_connected_components(graph) if len(c) > 1]
 
 
+def package_cycles(root: Path = PACKAGE) -> list:
+    """Every circle of import-time imports between aggpub's parts (a subpackage or a top-level module,
+    ``aggpub.gate.released`` counting as ``gate``): the one-way flow of DEVELOPERS.md's diagram, one level
+    up from :func:`import_cycles`. The package's own ``__init__`` (the public API) is left out."""
+    top = root.name
+    def part(module):
+        pieces = module.split(".")
+        return pieces[1] if len(pieces) > 1 else None
+    graph = nx.DiGraph()
+    for a, b in import_graph(root).edges:
+        pa_, pb = part(a), part(b)
+        if pa_ and pb and pa_ != pb:
+            graph.add_edge(f"{top}.{pa_}", f"{top}.{pb}")
+    return [sorted(c) for c in nx.strongly_connected_components(graph) if len(c) > 1]
+
+
 def engine_imports_of_ingest(root: Path = PACKAGE) -> list:
     """Imports of ``aggpub.ingest`` anywhere in ``aggpub/engines`` (function bodies included): the engines
     receive plain values from ingest and never call back into it."""
@@ -297,6 +313,10 @@ def test_no_import_circle():
     assert import_cycles() == []
 
 
+def test_no_import_circle_between_parts():
+    assert package_cycles() == []
+
+
 def test_engines_never_import_ingest():
     assert engine_imports_of_ingest() == []
 
@@ -338,9 +358,13 @@ def test_checks_catch_planted_violations(tmp_path):
                       "from . import long\nlong._hidden()\nimport aggpub.pkg._common\n",
         "engines/__init__.py": "def load():\n    from ..ingest import read\n",
         "ingest/__init__.py": "",
+        # a circle between parts only: up.x -> down.y and down.z -> up.w, no circle between modules
+        "up/__init__.py": "", "up/x.py": "from ..down import y\n", "up/w.py": "",
+        "down/__init__.py": "", "down/y.py": "", "down/z.py": "from ..up import w\n",
     })
     assert long_functions(root) == {"aggpub/long.py::too_long": MAX_FUNCTION_LINES + 1}
     assert import_cycles(root) == [["aggpub.a", "aggpub.b"]]
+    assert sorted(package_cycles(root)) == [["aggpub.a", "aggpub.b"], ["aggpub.down", "aggpub.up"]]
     assert engine_imports_of_ingest(root) == ["__init__.py:2: aggpub.ingest"]
     found = private_imports(root)
     assert [f.split(": ", 1)[1] for f in found] == [

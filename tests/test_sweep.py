@@ -1,4 +1,4 @@
-"""Tests for the trade-off explorer (:mod:`aggpub.audit.sweep`, ``aggpub sweep``) on a small demo town.
+"""Tests for the trade-off explorer (:mod:`aggpub.sweep`, ``aggpub sweep``) on a small demo town.
 
 Outside references: separate releases audited by the auditor (``aggpub.audit.audit_release``,
 another engineer's code path) for agreement within sampling error; ``scipy.stats.dlaplace``
@@ -19,7 +19,7 @@ import pytest
 from scipy import stats
 
 import aggpub
-from aggpub.audit import sweep as S
+from aggpub import sweep as S
 from aggpub.audit import audit_release
 from aggpub.cli import main
 from aggpub.demo import demo_policy_text, generate_town, write_demo_inputs

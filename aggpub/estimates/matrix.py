@@ -889,35 +889,47 @@ def _view_values(name: str, domains) -> list:
     return out
 
 
+def _codes_in(column, values):
+    """Position of every entry of an Arrow column in ``values`` (numpy int64); the first entry not in
+    ``values`` is raised as ``KeyError(entry)``."""
+    col = column.cast(pa.string()) if column.type != pa.string() else column
+    idx = pc.index_in(col, value_set=pa.array([str(v) for v in values], pa.string()))
+    if idx.null_count:
+        first = int(np.argmax(np.asarray(idx.is_null(), dtype=bool)))
+        raise KeyError(col[first].as_py())
+    return np.asarray(idx.to_numpy(zero_copy_only=False), dtype=np.int64)
+
+
 def _read_views(views: pa.Table, names, domains, layers, column):
-    """Dense arrays of the named views from the Arrow view table (inputs validated here)."""
+    """Dense arrays of the named views from the Arrow view table (inputs validated here).
+
+    Arrow compute throughout (a filter per view, ``index_in`` for the value and layer codes, a
+    ``bincount`` for the every-cell-once check): no Python object per row.
+    """
     need = {"view", "layer", "value_a", "value_b", column, "noise_scale"}
     missing = need - set(views.column_names)
     if missing:
         raise ValueError(f"view table: missing column(s) {sorted(missing)}")
-    vname = np.asarray(views.column("view").to_pylist(), dtype=object)
     out = []
     for name in names:
-        rows = np.flatnonzero(vname == name)
-        if not len(rows):
+        sub = views.filter(pc.equal(views.column("view"), name))
+        if not sub.num_rows:
             raise ValueError(f"view table: no view named {name!r}")
-        sub = views.take(pa.array(rows))
         values = _view_values(name, domains)
-        code = {v: i for i, v in enumerate(values)}
         k = len(values)
         try:
-            a = np.array([code[x] for x in sub.column("value_a").to_pylist()], dtype=np.int64)
-            b = np.array([code[x] for x in sub.column("value_b").to_pylist()], dtype=np.int64)
+            a = _codes_in(sub.column("value_a"), values)
+            b = _codes_in(sub.column("value_b"), values)
         except KeyError as exc:
             raise ValueError(f"view {name!r}: value {exc.args[0]!r} is not in the declared domain") from None
-        lay = sub.column("layer").to_pylist()
-        if any(x is not None for x in lay):
+        lay = sub.column("layer")
+        if lay.null_count < len(lay):  # some row names a layer
             if layers is None:
                 raise ValueError(f"view {name!r} is layered: pass the declared 'layers'")
-            lcode = {x: i for i, x in enumerate(layers)}
-            if any(x not in lcode for x in lay):
-                raise ValueError(f"view {name!r}: a layer is not in the declared layers")
-            li = np.array([lcode[x] for x in lay], dtype=np.int64)
+            try:
+                li = _codes_in(lay, layers)
+            except KeyError:
+                raise ValueError(f"view {name!r}: a layer is not in the declared layers") from None
             n_l = len(layers)
         else:
             li = np.zeros(len(a), dtype=np.int64)
@@ -925,14 +937,14 @@ def _read_views(views: pa.Table, names, domains, layers, column):
         n_c = view_cell_count(k)
         lo, hi = np.minimum(a, b), np.maximum(a, b)
         flat = li * n_c + lo * k - (lo * (lo - 1)) // 2 + (hi - lo)
-        if len(flat) != n_l * n_c or len(np.unique(flat)) != len(flat):
+        if len(flat) != n_l * n_c or np.bincount(flat, minlength=n_l * n_c).max(initial=0) > 1:
             raise ValueError(f"view {name!r}: expected every one of the {n_l * n_c} cells exactly once")
         noisy = np.zeros(n_l * n_c)
         noisy[flat] = np.asarray(sub.column(column).to_numpy(zero_copy_only=False), dtype=np.float64)
-        scales = np.unique(np.asarray(sub.column("noise_scale").to_numpy(zero_copy_only=False), dtype=np.float64))
-        if len(scales) != 1:
+        mm = pc.min_max(sub.column("noise_scale").cast(pa.float64()))
+        if mm["min"].as_py() != mm["max"].as_py():
             raise ValueError(f"view {name!r}: one noise scale per view expected")
-        out.append(ViewRelease(tuple(name.split(",")), noisy.reshape(n_l, n_c), float(scales[0])))
+        out.append(ViewRelease(tuple(name.split(",")), noisy.reshape(n_l, n_c), float(mm["min"].as_py())))
     return out
 
 

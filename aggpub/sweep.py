@@ -45,18 +45,18 @@ from pathlib import Path
 import numpy as np
 import pyarrow as pa
 
-from ..budget import ReleaseBudget, check_contact_cap, sensitivity
-from ..errors import PolicyError, PrivacyError, UsageError
-from ..gate import evaluate_gate, gate_attribute
-from ..gate.released import released_metrics
-from ..noise.mechanisms import GeometricMechanism
-from ..noise.sampler import make_random_source
-from ..policy import PRIVACY_UNITS, ReleasePolicy, epsilon_shares, read_policy
-from ..progress import silent
-from ..released import release_degree_histograms, release_superedge_counts, superedge_sparse_threshold
-from .degrees import implied_degree_pmf, released_histogram_degrees
-from .metrics import distribution_distances, error_summary
-from .truth import truth_of_grouping
+from .budget import ReleaseBudget, check_contact_cap, sensitivity
+from .errors import PolicyError, PrivacyError, UsageError
+from .gate import evaluate_gate, gate_attribute
+from .gate.released import released_metrics
+from .noise.mechanisms import GeometricMechanism
+from .noise.sampler import make_random_source
+from .policy import PRIVACY_UNITS, ReleasePolicy, epsilon_shares, read_policy
+from .progress import silent
+from .released import release_degree_histograms, release_superedge_counts, superedge_sparse_threshold
+from .audit.degrees import implied_degree_pmf, released_histogram_degrees
+from .audit.metrics import distribution_distances, error_summary
+from .audit.truth import truth_of_grouping
 
 PLANNING_NOTE = (
     "INTERNAL PLANNING AID - CONFIDENTIAL, NOT A RELEASE. These figures were measured on the private data. "
@@ -301,7 +301,7 @@ GATE_KEYS = ("max_degree_ks", "max_degree_wasserstein", "max_contact_matrix_medi
 
 
 def _s_bound(network, sanity_bound) -> float:
-    from .metrics import DEFAULT_SANITY_FRACTION
+    from .audit.metrics import DEFAULT_SANITY_FRACTION
 
     return float(sanity_bound) if sanity_bound else max(1.0, DEFAULT_SANITY_FRACTION * network.n_edges)
 
@@ -325,8 +325,8 @@ def _check_grid(policy, epsilons, min_sizes, units, draws, max_contacts) -> dict
 
 def _read_once(policy, edges, people, progress, *, engine, memory_limit, debug, source, target, node,
                drop_unknown):
-    from ..engines import make_engine
-    from ..ingest import load_policy_inputs
+    from .engines import make_engine
+    from .ingest import load_policy_inputs
 
     progress("reading edges and people (once for the whole sweep)")
     unweighted = policy.replace(components=dataclasses.replace(
@@ -339,7 +339,7 @@ def _read_once(policy, edges, people, progress, *, engine, memory_limit, debug, 
 
 def _sweep_grid(network, policy, grid, draws, source, sanity_bound, notes, progress):
     """Every grid point: the grouping (once per unit and min_size when public), then each epsilon."""
-    from ..grouping import make_grouping
+    from .grouping import make_grouping
 
     s_bound = _s_bound(network, sanity_bound)
     hp = policy.components.degree_histograms
@@ -415,7 +415,7 @@ def _simulated_release(truth, pol, shares, unit, D, mech, threshold, source):
 
 
 def _nonzero(st):
-    from ..released import SuperedgeTruth
+    from .released import SuperedgeTruth
 
     nz = st.count != 0
     return SuperedgeTruth(a=st.a[nz], b=st.b[nz], count=st.count[nz], complete=False)
@@ -423,7 +423,7 @@ def _nonzero(st):
 
 def _true_errors(truth, tables, cm_attr, hp, figs) -> None:
     """The simulated release against the truth (confidential columns)."""
-    from ..cells import scatter_cells
+    from .cells import scatter_cells
 
     se = tables["superedges"]
     col = lambda name: np.asarray(se.column(name).to_numpy())  # noqa: E731
@@ -590,7 +590,7 @@ def write_sweep(result: SweepResult, out, *, overwrite: bool = False) -> Path:
     Written into a temporary folder beside ``out`` and moved into place; an existing
     ``out`` is replaced only with ``overwrite`` and only if it is a sweep folder.
     """
-    from ..outputs import check_folder_target, write_folder
+    from .outputs import check_folder_target, write_folder
 
     out = Path(out).absolute()
 
