@@ -656,6 +656,12 @@ POLICY_KEYS: tuple[PolicyKey, ...] = (
         '[components.weight_totals]\nenabled = true\ncolumn = "minutes"\nclip = 120\n',
         range=Range(1, None),
         needed_when=When("enabled", (True,), "weight totals need the edge weight column and the clip bound")),
+    PolicyKey(
+        "components.weight_totals", "unit", "string", None, "the unit of the weights, as the reader's guide names it",
+        "Free text for readers (e.g. `minutes`); aggpub neither converts nor checks it. Without it the guide says "
+        "the weights are in the unit of the column.",
+        '[components.weight_totals]\nenabled = true\ncolumn = "minutes"\nclip = 120\nunit = "minutes"\n',
+        nonempty=True, attr="weight_unit"),
     # ---------------------------------------------------------------- contact views, layers, domains (issue 13)
     PolicyKey(
         "components.contact_views", "enabled", "boolean", None, "release contact matrices (views) by attribute",
@@ -711,6 +717,11 @@ POLICY_KEYS: tuple[PolicyKey, ...] = (
         '[components.contact_views]\nweighted = true\ncolumn = "minutes"\nclip = 120\n',
         range=Range(1, None),
         needed_when=When("weighted", (True,), "weighted views need the edge weight column and the clip bound")),
+    PolicyKey(
+        "components.contact_views", "unit", "string", None, "weighted views: the unit of the weights, for readers",
+        "Free text for readers (e.g. `minutes`); aggpub neither converts nor checks it.",
+        '[components.contact_views]\nweighted = true\ncolumn = "minutes"\nclip = 120\nunit = "minutes"\n',
+        nonempty=True, attr="weight_unit"),
     PolicyKey(
         "layers", "column", "string", None, "the edge column holding each contact's layer (setting)",
         "Read as text and compared with `values` exactly. `--layer-column` on the command line overrides it.",
@@ -1008,6 +1019,7 @@ class ComponentPolicy:
     max_degree: int | None = None  # degree histograms: public cap (top bin = cap or more)
     column: str | None = None  # weight totals: the edge weight column
     clip: int | None = None  # weight totals: weights clipped to [0, clip]
+    weight_unit: str | None = None  # weight totals, weighted views: the weights' unit, for readers only
     method: str = _default("components.superedge_counts", "method")  # superedge counts: dense, sparse or auto
     sparse_threshold: float | None = None  # sparse release: noisy cells below are dropped
     sparse_above_cells: int = _default("components.superedge_counts", "sparse_above_cells")

@@ -781,6 +781,7 @@ def _component_lines(unit, attributes) -> list:
     lines += _key_lines("components.weight_totals.enabled", False)
     lines += _key_lines("components.weight_totals.column", "minutes", active=False)
     lines += _key_lines("components.weight_totals.clip", 120, active=False)
+    lines += _key_lines("components.weight_totals.unit", "minutes", active=False)
     lines += _view_lines(unit, attributes)
     if unit == "edge":  # under person neither has a derived sensitivity: the policy refuses them
         lines += ["", "# Degree sequences and the triangle count make synthetic networks (aggpub sample) keep degree",
@@ -812,6 +813,7 @@ def _view_lines(unit, attributes) -> list:
     lines += _key_lines("components.contact_views.weighted", True, active=False)
     lines += _key_lines("components.contact_views.column", "minutes", active=False)
     lines += _key_lines("components.contact_views.clip", 120, active=False)
+    lines += _key_lines("components.contact_views.unit", "minutes", active=False)
     return lines
 
 

@@ -149,6 +149,21 @@ def test_dense_guide_has_no_threshold_and_lists_every_cell():
 # --------------------------------------------------------------------------- weights, histograms, views, layers
 
 
+def test_weighted_guide_names_the_declared_unit_of_the_weights():
+    """Issue 14.6: the guide names the weights' unit when the policy declares one (`unit`), for the weight
+    totals and for weighted views alike, and says it is the column's own unit otherwise."""
+    comps = {"superedge_counts": {"share": 0.4},
+             "weight_totals": {"enabled": True, "share": 0.3, "column": "weight", "clip": 2,
+                               "unit": "interaction rounds"},
+             "contact_views": {"share": 0.3, "weighted": True, "column": "weight", "clip": 2, "unit": "rounds"}}
+    rel = _release(_policy(epsilon=10.0, components=comps))
+    files = _section(rel.guide(), "Files")
+    assert "column `weight` of the contacts, in `interaction rounds` (the unit the policy declares" in files
+    assert "from column `weight` (in `rounds` (the unit the policy declares" in files
+    assert "own unit" not in files
+    assert rel.manifest["policy"]["components"]["weight_totals"]["weight_unit"] == "interaction rounds"
+
+
 def test_weighted_guide_names_the_column_and_the_clip_and_the_totals_are_clipped():
     comps = {"superedge_counts": {"share": 0.4}, "degree_histograms": {"enabled": True, "share": 0.1,
                                                                        "max_degree": 10},

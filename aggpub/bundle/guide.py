@@ -383,7 +383,13 @@ def _superedges_file(m) -> str:
 def _weight_source(m, name) -> tuple:
     cp = _component_policy(m, name)
     col = cp.get("column") or (_policy(m).get("input") or {}).get("weight")
-    return col, cp.get("clip")
+    return col, cp.get("clip"), cp.get("weight_unit")
+
+
+def _in_unit(unit) -> str:
+    """How the guide names the weights' unit: the policy's own words, or the column's unit."""
+    return f"in {_code(unit)} (the unit the policy declares; aggpub does not convert it)" if unit else \
+        "in that column's own unit (aggpub does not convert it; the policy declares none)"
 
 
 def _files(m) -> str:
@@ -411,11 +417,11 @@ def _files(m) -> str:
                      + (f" Bins above {D} are known to be empty (nobody has more than {D} contacts under this "
                         "release's promise) and are 0." if unit == "person" and D is not None else "") + "\n")
     if "weight_totals" in rows:
-        col, clip = _weight_source(m, "weight_totals")
+        col, clip, wunit = _weight_source(m, "weight_totals")
         sp = _spend(m, "weight_totals") or {}
         lines.append(f"- `weight_totals.parquet`: `supernode_a`, `supernode_b`, `weight_total`: the noisy total of "
                      f"contact weights per pair of supernodes, every pair including zeros. The weights are column "
-                     f"{_code(col)} of the contacts, in that column's own unit (aggpub does not convert it); a pair "
+                     f"{_code(col)} of the contacts, {_in_unit(wunit)}; a pair "
                      f"of people recorded in several rows has the sum of its rows' weights. Each contact's weight "
                      f"is clipped to **[0, {clip}]** and rounded to a whole unit before summing, so one contact adds "
                      f"at most {clip} (sensitivity {_num(sp.get('sensitivity'))}, noise scale {_num(sp.get('scale'))}): "
@@ -457,9 +463,9 @@ def _views_files(m) -> str:
            "--out FILE.csv` (or `aggpub.contact_matrix` in Python) gives the most precise consistent matrix with "
            "intervals.\n"]
     if "contact_view_weights" in rows:
-        col, clip = _weight_source(m, "contact_views")
+        col, clip, wunit = _weight_source(m, "contact_views")
         out.append(f"- `contact_view_weights.parquet`: the same with `weight_total`: contact weights from column "
-                   f"{_code(col)} (in that column's own unit), each clipped to **[0, {clip}]** and rounded to a "
+                   f"{_code(col)} ({_in_unit(wunit)}), each clipped to **[0, {clip}]** and rounded to a "
                    "whole unit, instead of counts; `aggpub matrix --weight`.\n")
     if "view_people" in rows:
         if unit == "edge":
