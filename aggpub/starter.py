@@ -46,6 +46,7 @@ import pyarrow.compute as pc
 
 from ._version import __version__
 from .errors import InputError, OutputError, PolicyError, UsageError, closest_name
+from .ingest import check_input_path
 from .policy import (KINDS, POLICY_SECTIONS, PRIVACY_UNITS, REQUIRED, Depends, check_value, parse_policy,
                      policy_key)
 
@@ -122,22 +123,6 @@ neighbourhood,Dovecote Green,Northreach
 
 
 # --------------------------------------------------------------------------- reading files
-
-
-def _check_file(path, what: str) -> Path:
-    path = Path(path)
-    if not path.exists():
-        raise InputError(f"{path}: {what} file not found")
-    if path.is_dir():
-        raise InputError(f"{path}: {what} path is a folder, expected a file")
-    try:
-        with open(path, "rb") as fh:
-            first = fh.read(1)
-    except OSError as exc:
-        raise InputError(f"{path}: cannot read {what} file ({exc.strerror})") from None
-    if not first:
-        raise InputError(f"{path}: {what} file is empty")
-    return path
 
 
 def _first_bad_utf8_line(path: Path):
@@ -303,7 +288,7 @@ def read_codebook(path) -> Codebook:
     """
     import csv
 
-    path = _check_file(path, "codebook")
+    path = check_input_path(path, "codebook")
     try:
         text = path.read_bytes().decode("utf-8-sig")
     except UnicodeDecodeError:
@@ -533,7 +518,7 @@ def draft_policy(people, attributes, *, unit: str = "edge", codebook=None, max_c
     """
     attributes = _check_draft_arguments(attributes, unit, codebook, max_contacts, node_column, epsilon, min_size)
 
-    people = _check_file(people, "person")
+    people = check_input_path(people, "person")
     fmt, columns = _person_columns(people)
     _check_columns(people, columns, attributes, node_column)
     if codebook is not None and not isinstance(codebook, Codebook):
@@ -563,7 +548,7 @@ def draft_policy(people, attributes, *, unit: str = "edge", codebook=None, max_c
 
     edge_columns = None
     if edges is not None:
-        edges = _check_file(edges, "edge")
+        edges = check_input_path(edges, "edge")
         edge_columns = _person_columns(edges)[1]
         if len(edge_columns) < 2:
             raise InputError(f"{edges}: the edge file's header has fewer than two columns")
