@@ -40,6 +40,7 @@ class _Context:
     source: object
     progress: Callable
     budget: object = None  # the release's budget (a statistic of several spends splits its share against it)
+    counted: dict = field(default_factory=dict)  # true tables counted so far (confidential; a later count may reuse them)
 
 
 @dataclass(frozen=True)
@@ -203,11 +204,11 @@ def release_statistics(network, grouping, policy, sizes, epsilons: dict, source,
     """
     from ..policy import component_enabled
 
+    run = StatisticsRun()
     ctx = _Context(network=network, grouping=grouping, policy=policy, sizes=sizes, source=source,
-                   progress=progress, budget=budget)
+                   progress=progress, budget=budget, counted=run.truth)
     unit, D = policy.privacy.unit, policy.privacy.max_contacts
     people = network.n_people if unit == "edge" else None  # public under edge only
-    run = StatisticsRun()
     for stat in STATISTICS:
         option = getattr(policy.components, stat.name)
         if not component_enabled(policy, stat.name, people):

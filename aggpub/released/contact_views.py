@@ -23,7 +23,8 @@ sensitivities are in :data:`aggpub.budget.SENSITIVITY` and derived in
 
 from __future__ import annotations
 
-__all__ = ["view_domains", "view_codes", "count_contact_views", "release_contact_views", "VIEW_TABLES"]
+__all__ = ["view_domains", "view_codes", "supernode_values", "views_from_superedges", "count_contact_views",
+           "release_contact_views", "VIEW_TABLES"]
 
 import numpy as np
 import pyarrow as pa
@@ -112,15 +113,93 @@ def view_codes(people: pa.Table, names, domains: dict):
     return codes, sizes
 
 
+def supernode_values(assignment, code, n_supernodes: int):
+    """The value of every supernode when each is pure in ``code``, else ``None`` (inputs already validated).
+
+    A supernode is *pure* when all its people hold the same value; a supernode without people
+    (none in practice) gets value 0, which changes nothing below since it has no contacts.
+
+    Parameters
+    ----------
+    assignment : numpy.ndarray of int
+        Supernode of every person.
+    code : numpy.ndarray of int
+        Value code of every person (same length).
+    n_supernodes : int
+
+    Returns
+    -------
+    numpy.ndarray of int64 or None
+    """
+    assignment = np.asarray(assignment, dtype=np.int64)
+    code = np.asarray(code, dtype=np.int64)
+    value = np.zeros(int(n_supernodes), dtype=np.int64)
+    value[assignment] = code  # one member's value per supernode (whichever numpy writes last)
+    return value if np.array_equal(value[assignment], code) else None
+
+
+def views_from_superedges(superedges, values, n_values):
+    """True view counts (one layer) summed from true superedge counts over pure supernodes.
+
+    When every supernode is pure in a view's attribute (:func:`supernode_values`), every contact
+    of superedge cell ``{A, B}`` joins a person of value ``values[A]`` and one of value ``values[B]``,
+    so view cell ``{values[A], values[B]}`` is the sum of those superedge cells: the same integers
+    the engine counts in its own pass over the contacts (an execution path only; inputs already
+    validated).
+
+    Parameters
+    ----------
+    superedges : SuperedgeTruth
+        True superedge counts (every cell, or the non-zero ones of a sparse release).
+    values : sequence of numpy.ndarray of int64
+        Value of every supernode, one array per view.
+    n_values : sequence of int
+        Number of values of each view.
+
+    Returns
+    -------
+    list of numpy.ndarray of int64, shape ``(1, K (K + 1) / 2)``
+        As :meth:`aggpub.engines._duckdb.DuckDBEngine.view_counts` with one layer.
+    """
+    from ..estimates.views import view_cell_count, view_cell_index
+
+    a = np.asarray(superedges.a, dtype=np.int64)
+    b = np.asarray(superedges.b, dtype=np.int64)
+    weight = np.asarray(superedges.count, dtype=np.float64)  # integers far below 2**53: sums are exact
+    out = []
+    for value, k in zip(values, n_values):
+        cell = view_cell_index(value[a], value[b], int(k))
+        total = np.bincount(cell, weights=weight, minlength=view_cell_count(k))
+        out.append(np.rint(total).astype(np.int64).reshape(1, -1))
+    return out
+
+
+def _true_view_counts(ctx, codes, sizes, n_layers: int) -> list:
+    """Each view's true counts: summed from the superedge counts when possible, else counted by the engine."""
+    superedges = ctx.counted.get("superedges")
+    grouping = ctx.grouping
+    if n_layers == 1 and superedges is not None:
+        values = [supernode_values(grouping.assignment, c, grouping.n_supernodes) for c in codes]
+        if all(v is not None for v in values):
+            return views_from_superedges(superedges, values, sizes)
+    return ctx.network.engine.view_counts(codes, sizes, n_layers)
+
+
 def count_contact_views(ctx, option, on_refusal=None):
-    """The true views (confidential) and the public description of the views for the manifest."""
+    """The true views (confidential) and the public description of the views for the manifest.
+
+    Without layers, when the superedge counts are already counted and every supernode is pure in
+    every view's values (grouping by attributes that include the view's), the views are summed
+    from the superedge counts instead of a second pass over the contacts (the same counts:
+    :func:`views_from_superedges`).
+    """
     policy = ctx.policy
     network = ctx.network
     names = view_names(option)
     domains = view_domains(policy, network.people, on_refusal)
     codes, sizes = view_codes(network.people, names, domains)
     n_layers = max(1, len(network.layers))
-    truth = {"counts": dict(zip(names, network.engine.view_counts(codes, sizes, n_layers)))}
+    truth = {"counts": dict(zip(names, _true_view_counts(ctx, codes, sizes, n_layers)))}
     if option.weighted:
         if not network.weighted:
             raise PolicyError("'components.contact_views.weighted': the network was read without a weight column")
