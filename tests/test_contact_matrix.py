@@ -454,6 +454,23 @@ def test_possible_values_from_the_demo_hierarchies():
                                                                                [False, False, True]]
 
 
+def test_distinct_supernode_kinds_count_like_numpy_unique_rows():
+    """The planner's count of supernode kinds (distinct rows of possible values, packed into bytes) equals
+    ``len(numpy.unique(rows, axis=0))`` on the demo hierarchies' labels and on random boolean matrices."""
+    from aggpub.demo import AGE_BANDS, AGE_HIERARCHY
+    from aggpub.estimates.release_matrix import _distinct_rows
+
+    labels = ["0-4", "0-9", "0-19", "80+", "*", "0-4", "*", "5-9"]
+    p = possible_values_from_labels(labels, AGE_BANDS, AGE_HIERARCHY)
+    assert _distinct_rows(p) == len(np.unique(p, axis=0)) == 6
+    rng = np.random.default_rng(3)
+    for g, k in [(1, 1), (40, 7), (300, 8), (300, 9), (500, 70), (2, 0), (0, 5)]:
+        for share in (0.05, 0.5, 0.95):
+            m = rng.random((g, k)) < share
+            m[::4] = m[:1]  # repeated rows
+            assert _distinct_rows(m) == len(np.unique(m, axis=0)), (g, k, share)
+
+
 def test_rates_read_by_row_and_counts_are_symmetric():
     sim, hier = _karate_release(31)
     counts = np.bincount(sim.codes["grp"], minlength=4)

@@ -1185,11 +1185,11 @@ def _matrix_columns(values, est, var, hw, quantity: str, layers=None) -> dict:
     k = len(values)
     a_idx, b_idx = view_cells(k)
     rows = est.shape[0]
-    vals = np.asarray(values, dtype=object)
+    vals = pa.array([str(v) for v in values], pa.string())
     flat = est.reshape(-1)
-    out = {
-        "value_a": pa.array(np.tile(vals[a_idx], rows), pa.string()),
-        "value_b": pa.array(np.tile(vals[b_idx], rows), pa.string()),
+    out = {  # Arrow gathers the value names: no Python string per row
+        "value_a": vals.take(pa.array(np.tile(a_idx, rows))),
+        "value_b": vals.take(pa.array(np.tile(b_idx, rows))),
     }
     if layers is not None:
         out["layer"] = pa.array(np.repeat(np.asarray(layers, dtype=object), len(a_idx)), pa.string())
