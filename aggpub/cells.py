@@ -47,8 +47,14 @@ def flat_to_pair(flat, n: int):
 def possible_pairs(sizes, a, b):
     """Number of possible contacts in each cell: ``s_a s_b``, or ``s_a (s_a - 1) / 2`` on the diagonal."""
     sizes = np.maximum(np.asarray(sizes, dtype=np.int64), 0)
-    sa, sb = sizes[a], sizes[b]
-    return np.where(a == b, sa * (sa - 1) // 2, sa * sb)
+    a, b = np.asarray(a), np.asarray(b)
+    if a.ndim == 0:
+        return np.where(a == b, sizes[a] * (sizes[a] - 1) // 2, sizes[a] * sizes[b])
+    sa = sizes[a]
+    out = sa * sizes[b]
+    diag = np.flatnonzero(a == b)  # the diagonal only: one cell per supernode, not a division per cell
+    out[diag] = sa[diag] * (sa[diag] - 1) // 2
+    return out
 
 
 def unrank_pairs(r: np.ndarray):

@@ -120,16 +120,29 @@ class CutWorkload(Workload):
         cells = np.asarray(cells, dtype=np.float64)
         rows = cells[None, :] if cells.ndim == 1 else cells
         n = self.sides.shape[1]
-        first = (self.sides == 0).astype(np.float64)
-        second = (self.sides == 1).astype(np.float64)
+        first, second, upper, lower = self._layout()
         out = np.empty((len(rows), len(self.sides)))
-        m = np.empty((n, n))
+        m = np.empty(n * n)
+        complete = len(self.a) == n * (n + 1) // 2  # every entry of m is written below
         for i, row in enumerate(rows):
-            m.fill(0.0)
-            m[self.a, self.b] = row
-            m += m.T  # the diagonal doubles, but no cut counts it: the sets are disjoint
-            out[i] = np.einsum("qi,qi->q", first @ m, second)
+            if not complete:
+                m.fill(0.0)
+            # both triangles at once (the diagonal is written twice with the same value; no cut counts it:
+            # the sets are disjoint, so its entries meet a zero of ``first`` or ``second``)
+            m[upper] = row
+            m[lower] = row
+            out[i] = np.einsum("qi,qi->q", first @ m.reshape(n, n), second)
         return out[0] if cells.ndim == 1 else out
+
+    def _layout(self):
+        """Indicators of the two sets and flat positions of every cell in the square matrix (made once)."""
+        cached = getattr(self, "_cached_layout", None)
+        if cached is None:
+            n = self.sides.shape[1]
+            cached = ((self.sides == 0).astype(np.float64), (self.sides == 1).astype(np.float64),
+                      self.a * n + self.b, self.b * n + self.a)
+            self._cached_layout = cached
+        return cached
 
     def noise_variance(self, cell_variance: float) -> np.ndarray:
         # each query sums the cells that cross it, once each: as many as its answer on a table of ones
