@@ -188,8 +188,12 @@ def _degree_section(release, truth, monte_carlo, source, plot, notes):
     have_edges = st is not None and "superedges" in release.tables
     if have_edges:
         rel = released_cells(release, truth.n_groups)
-        group_pmf, method = deg.implied_degree_pmf(st.a, st.b, st.count, truth.true_sizes)
-        block_pmf, _ = deg.implied_degree_pmf(st.a, st.b, rel, truth.pub_sizes, method=method)
+        # the block model's fixed parts once per set of sizes (the released sizes are the true ones under edge)
+        true_terms = deg.block_model_terms(st.a, st.b, truth.true_sizes)
+        pub_terms = (true_terms if np.array_equal(truth.pub_sizes, truth.true_sizes)
+                     else deg.block_model_terms(st.a, st.b, truth.pub_sizes))
+        group_pmf, method = deg.implied_degree_pmf(st.a, st.b, st.count, truth.true_sizes, terms=true_terms)
+        block_pmf, _ = deg.implied_degree_pmf(st.a, st.b, rel, truth.pub_sizes, method=method, terms=pub_terms)
         plot["grouping_pmf"], plot["block_pmf"] = group_pmf, block_pmf
         dd["block_model_method"] = method
         dd["grouping_only"] = distribution_distances(truth.true_hist, group_pmf)
@@ -214,7 +218,7 @@ def _degree_section(release, truth, monte_carlo, source, plot, notes):
         if monte_carlo and release.mechanisms.get("superedge_counts") is not None:
             # filled by the Monte Carlo of the query workloads, from its first draws
             deg_mc = {"draws": int(min(monte_carlo, 5)), "method": method,  # each recomputes the mixture
-                      "terms": deg.block_model_terms(st.a, st.b, truth.true_sizes), "ks": [], "wasserstein1": [],
+                      "terms": true_terms, "ks": [], "wasserstein1": [],
                       "l1": []}
     else:
         dd["basis"] = "not measurable: the release has neither superedge counts nor degree histograms"
