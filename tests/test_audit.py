@@ -87,6 +87,23 @@ def test_relative_error_with_sanity_bound_worked_example():
         relative_errors(true, est, 0)
 
 
+def test_percentiles_by_sorting_equal_numpy_percentile():
+    """The audit's quantiles (sort, then numpy's selection) are numpy.percentile's numbers exactly: integer
+    and continuous values, ties, odd and even lengths, NaN; the caller's array is kept unless it is given up."""
+    from aggpub.audit.metrics import percentiles
+
+    rng = np.random.default_rng(12)
+    for n in (1, 2, 5, 10, 1001, 100_000):
+        for x in (rng.integers(0, 7, n).astype(float), rng.normal(size=n), np.abs(rng.standard_cauchy(n))):
+            q = [0, 5, 50, 90, 99, 100]
+            kept = x.copy()
+            assert np.array_equal(percentiles(x, q), np.percentile(kept, q))
+            assert np.array_equal(x, kept)
+            assert np.array_equal(percentiles(x, q, overwrite=True), np.percentile(kept, q))
+            assert np.array_equal(np.sort(x), np.sort(kept))  # reordered, the same values
+    assert np.isnan(percentiles([1.0, np.nan, 3.0], 50)) and np.isnan(np.percentile([1.0, np.nan, 3.0], 50))
+
+
 # --------------------------------------------------------------------------- block-model degrees
 
 

@@ -306,8 +306,9 @@ def _query_section(release, truth, monte_carlo, source, deg_mc, plot, progress) 
     cells = out["superedge_cells"]
     true_t = st.count.astype(np.float64)
     r1 = np.abs(rel - true_t) / np.maximum(true_t, 1.0)
-    cells["median_relative_error_s1"] = float(np.median(r1))
-    cells["p90_relative_error_s1"] = float(np.percentile(r1, 90))
+    r1.sort()  # numpy's sort beats its selection on millions of values; the order statistics are the same
+    cells["median_relative_error_s1"] = float(np.median(r1, overwrite_input=True))
+    cells["p90_relative_error_s1"] = float(np.percentile(r1, 90, overwrite_input=True))
     cells["zero_cells_true"] = int((st.count == 0).sum())
     cells["zero_cells_released"] = int((rel == 0).sum())
     # clamping at 0 lifts the empty cells: the bias every sum of many cells inherits

@@ -14,6 +14,8 @@ import os
 
 import numpy as np
 
+from .metrics import percentiles
+
 #: Above this many cells the Monte Carlo runs one draw at a time (each draw holds a few copies of the table).
 MC_PARALLEL_MAX_CELLS = 5_000_000
 #: Monte Carlo draws when none are asked for: as many as fit ``MC_DEFAULT_VALUES`` values
@@ -93,7 +95,7 @@ def mc_errors(true, estimate, sanity_bound: float) -> tuple[float, float, float]
     abs_err = np.abs(np.asarray(estimate, dtype=np.float64) - true)
     mean_abs = float(abs_err.mean())
     rel = np.divide(abs_err, np.maximum(true, sanity_bound), out=abs_err)  # abs_err is ours: reused in place
-    p50, p90 = np.percentile(rel, [50, 90], overwrite_input=True)
+    p50, p90 = percentiles(rel, [50, 90], overwrite=True)
     return mean_abs, float(p50), float(p90)
 
 

@@ -36,6 +36,7 @@ __all__ = [
     "distribution_distances",
     "histogram_from_values",
     "relative_errors",
+    "percentiles",
     "error_summary",
     "DEFAULT_SANITY_FRACTION",
 ]
@@ -131,6 +132,28 @@ def relative_errors(true, estimate, sanity_bound: float) -> np.ndarray:
     return np.abs(estimate - true) / np.maximum(true, sanity_bound)
 
 
+def percentiles(values, q, *, overwrite: bool = False) -> np.ndarray:
+    """``numpy.percentile(values, q)`` (linear interpolation), the same numbers, faster on millions of values.
+
+    A percentile is a function of the order statistics alone, so it is the same whether numpy selects
+    them from the values or from the values sorted; numpy's sort of floating-point values is several times
+    faster than its selection of a few order statistics, and the selection on sorted values is cheap.
+
+    Parameters
+    ----------
+    values : array_like
+        Any shape (flattened).
+    q : float or sequence of float
+        Percentiles in ``[0, 100]``.
+    overwrite : bool
+        Sort ``values`` itself when it is a float64 array (the caller's array is reordered).
+    """
+    x = np.asarray(values, dtype=np.float64)
+    x = x.ravel() if overwrite else x.flatten()
+    x.sort()
+    return np.percentile(x, q, overwrite_input=True)
+
+
 def error_summary(true, estimate, sanity_bound: float) -> dict:
     """Absolute and relative error figures of one query workload.
 
@@ -153,8 +176,8 @@ def error_summary(true, estimate, sanity_bound: float) -> dict:
     # the sums first: the quantiles below reorder both arrays in place (they are ours; no copy of each)
     mean_abs, rmse, max_abs = float(abs_err.mean()), float(np.sqrt(np.mean(abs_err ** 2))), float(abs_err.max())
     mean_rel = float(rel.mean())
-    p50, p90, p99 = np.percentile(rel, [50, 90, 99], overwrite_input=True)
-    a50, a90 = np.percentile(abs_err, [50, 90], overwrite_input=True)
+    p50, p90, p99 = percentiles(rel, [50, 90, 99], overwrite=True)
+    a50, a90 = percentiles(abs_err, [50, 90], overwrite=True)
     return {
         "n_queries": int(len(true)),
         "mean_absolute_error": mean_abs,
