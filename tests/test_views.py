@@ -320,3 +320,20 @@ def test_view_sensitivity_refuses_what_is_not_derived():
         view_sensitivity("group")
     assert view_sensitivity("person", max_contacts=30) == 30
     assert view_sensitivity("person", max_contacts=30, clip=60) == 1800
+
+
+def test_listed_views_in_order_of_first_appearance():
+    """The view names of a view table, each once, in order of first appearance: the same list as Python's
+    ``dict.fromkeys`` over the column, over several chunks, repeated runs, nulls and an empty table."""
+    from aggpub.estimates.views import listed_views
+
+    rng = np.random.default_rng(4)
+    names = ["age", "area", "age,area", "school"]
+    for _ in range(20):
+        col = [names[i] for i in rng.integers(0, 4, int(rng.integers(0, 40)))]
+        if col and rng.random() < 0.3:
+            col[int(rng.integers(0, len(col)))] = None
+        cut = int(rng.integers(0, len(col) + 1))
+        t = pa.concat_tables([pa.table({"view": pa.array(col[:cut], pa.string())}),
+                              pa.table({"view": pa.array(col[cut:], pa.string())})])
+        assert listed_views(t) == list(dict.fromkeys(col))

@@ -87,7 +87,7 @@ from scipy import sparse
 from scipy.sparse.csgraph import connected_components
 
 from ..cells import all_cells
-from .views import view_cell_count, view_cells
+from .views import listed_views, view_cell_count, view_cells
 
 RESIDUAL = "*"
 #: Largest total number of view cells (all views and layers) solved densely.
@@ -912,7 +912,8 @@ def _read_views(views: pa.Table, names, domains, layers, column):
         raise ValueError(f"view table: missing column(s) {sorted(missing)}")
     out = []
     for name in names:
-        sub = views.filter(pc.equal(views.column("view"), name))
+        mask = pc.equal(views.column("view"), name)
+        sub = views if mask.null_count == 0 and pc.all(mask).as_py() else views.filter(mask)  # one view: no copy
         if not sub.num_rows:
             raise ValueError(f"view table: no view named {name!r}")
         values = _view_values(name, domains)
@@ -1114,7 +1115,7 @@ def contact_matrix(supernodes: pa.Table, superedges, views, attribute: str, *, d
 def _view_names(attribute: str, method: str, views, use_views) -> list:
     """The views to read, the reported one first when it is not among them."""
     names = [attribute] if method == "view" else (list(use_views) if use_views is not None else
-                                                  list(dict.fromkeys(views.column("view").to_pylist())))
+                                                  listed_views(views))
     if attribute not in names:
         names = [attribute] + names
     return names

@@ -102,6 +102,7 @@ def contact_matrix(release, by: str, *, layer: str | None = None, per_person: bo
     through consistency", PVLDB 3(1), 2010.
     """
     from .matrix import contact_matrix as _matrix
+    from .views import listed_views
 
     tables, manifest = _tables(release)
     if method not in ("consistent", "view"):
@@ -115,7 +116,7 @@ def contact_matrix(release, by: str, *, layer: str | None = None, per_person: bo
         if weight:
             raise BundleError("the release has no weighted views (components.contact_views.weighted was off)")
         raise BundleError("the release has no contact views (components.contact_views was off)")
-    released = list(dict.fromkeys(views.column("view").to_pylist()))
+    released = listed_views(views)
     if name not in released:
         raise UsageError(f"no view '{by}' in the release; released views: {', '.join(released)}")
     domains = manifest.get("view_domains") or {}

@@ -26,7 +26,8 @@ release helper adds the noise.
 from __future__ import annotations
 
 __all__ = ["view_cell_count", "view_cells", "view_cell_index", "combine_codes", "clip_weights",
-           "one_layer_per_contact", "true_view_table", "view_sensitivity", "release_view", "view_table"]
+           "one_layer_per_contact", "true_view_table", "view_sensitivity", "release_view", "view_table",
+           "listed_views"]
 
 import numpy as np
 import pyarrow as pa
@@ -287,3 +288,17 @@ def view_table(name: str, values, noisy, scale: float, layers=None, *, column: s
         f"{column}_unclamped": pa.array(flat),
         "noise_scale": pa.array(np.full(len(flat), float(scale))),
     })
+
+
+def listed_views(table: pa.Table) -> list:
+    """The names in a view table's ``view`` column, each once, in order of first appearance.
+
+    The same list as ``list(dict.fromkeys(table.column("view").to_pylist()))``, read from the column's runs
+    (``pyarrow.compute.run_end_encode``: a view's rows are consecutive) instead of a Python string per row.
+    """
+    import pyarrow.compute as pc
+
+    names = []
+    for chunk in pc.run_end_encode(table.column("view")).chunks:
+        names.extend(chunk.values.to_pylist())
+    return list(dict.fromkeys(names))
