@@ -187,7 +187,7 @@ def _degree_section(release, truth, monte_carlo, source, plot, notes):
     deg_mc = None
     have_edges = st is not None and "superedges" in release.tables
     if have_edges:
-        rel = released_cells(release, truth.n_groups)
+        rel = released_cells(release, truth.n_groups, cells=(st.a, st.b))
         # the block model's fixed parts once per set of sizes (the released sizes are the true ones under edge)
         true_terms = deg.block_model_terms(st.a, st.b, truth.true_sizes)
         pub_terms = (true_terms if np.array_equal(truth.pub_sizes, truth.true_sizes)
@@ -286,10 +286,11 @@ def _workload_summary(w, tru, est, est_unclamped, mech, s_bound, mc, est_consist
 def _query_section(release, truth, monte_carlo, source, deg_mc, plot, progress) -> dict:
     st = truth.st
     mech = release.mechanisms.get("superedge_counts")
-    rel = released_cells(release, truth.n_groups)
+    cells = (st.a, st.b)
+    rel = released_cells(release, truth.n_groups, cells=cells)
     unclamped = None if truth.threshold is not None else released_cells(release, truth.n_groups,
-                                                                        "edge_count_unclamped")
-    consistent = released_cells(release, truth.n_groups, "edge_count_estimate")
+                                                                        "edge_count_unclamped", cells=cells)
+    consistent = released_cells(release, truth.n_groups, "edge_count_estimate", cells=cells)
     mc = {w.name: {"mean_absolute_error": []} for w in truth.workloads}
     if monte_carlo and mech is not None:
         progress(f"audit: {int(monte_carlo)} fresh noise draws on the true table (Monte Carlo)")

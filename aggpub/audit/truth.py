@@ -147,12 +147,20 @@ def truth_of_release(release, *, sanity_bound=None, cuts=200, rng=None) -> Audit
     return truth
 
 
-def released_cells(release, n_groups: int, column: str = "edge_count"):
-    """Released ``column`` of every cell in :func:`aggpub.cells.all_cells` order (absent cells: 0)."""
+def released_cells(release, n_groups: int, column: str = "edge_count", cells=None):
+    """Released ``column`` of every cell in :func:`aggpub.cells.all_cells` order (absent cells: 0).
+
+    ``cells``, when given, is ``all_cells(n_groups)`` (e.g. the audit truth's ``st.a``, ``st.b``): a table
+    listing exactly those cells in that order (a dense bundle) is then copied instead of scattered.
+    """
     t = release.tables["superedges"]
     if column not in t.column_names:
         return None
     col = lambda name: np.asarray(t.column(name).to_numpy(zero_copy_only=False))  # noqa: E731
     values = col(column)
-    return scatter_cells(n_groups, col("supernode_a"), col("supernode_b"), values,
-                         dtype=np.float64 if np.issubdtype(values.dtype, np.floating) else np.int64)
+    dtype = np.float64 if np.issubdtype(values.dtype, np.floating) else np.int64
+    a, b = col("supernode_a"), col("supernode_b")
+    if cells is not None and len(a) == n_cells(n_groups) and np.array_equal(a, cells[0]) \
+            and np.array_equal(b, cells[1]):
+        return np.array(values, dtype=dtype)  # the scatter would be the identity
+    return scatter_cells(n_groups, a, b, values, dtype=dtype)
