@@ -275,15 +275,16 @@ def view_table(name: str, values, noisy, scale: float, layers=None, *, column: s
         raise ValueError("one layer name per row of 'noisy'")
     a, b = view_cells(k)
     n_l = noisy.shape[0]
-    vals = np.asarray(values, dtype=object)
-    layer_col = (pa.array(np.repeat(np.asarray([str(x) for x in layers], dtype=object), len(a)), pa.string())
+    # the string columns gathered by Arrow from the few names (no Python string per row)
+    vals = pa.array(values, pa.string())
+    layer_col = (pa.array([str(x) for x in layers], pa.string()).take(np.repeat(np.arange(n_l), len(a)))
                  if layers is not None else pa.nulls(n_l * len(a), pa.string()))
     flat = noisy.reshape(-1)
     return pa.table({
-        "view": pa.array([name] * len(flat), pa.string()),
+        "view": pa.array([name], pa.string()).take(np.zeros(len(flat), dtype=np.int64)),
         "layer": layer_col,
-        "value_a": pa.array(np.tile(vals[a], n_l), pa.string()),
-        "value_b": pa.array(np.tile(vals[b], n_l), pa.string()),
+        "value_a": vals.take(np.tile(a, n_l)),
+        "value_b": vals.take(np.tile(b, n_l)),
         column: pa.array(np.maximum(flat, 0)),
         f"{column}_unclamped": pa.array(flat),
         "noise_scale": pa.array(np.full(len(flat), float(scale))),
