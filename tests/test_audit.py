@@ -304,6 +304,26 @@ def test_workloads_match_networkx_counts(lesmis_release):
     np.testing.assert_allclose(cw.noise_variance(2.0), 2.0 * np.array(crossing))
 
 
+def test_workloads_built_by_column_answer_like_their_row_form(lesmis_release):
+    """The contact-matrix and degree-total workloads stay in the column-wise form they are built in; their
+    answers (one table and several) and noise variances are the very numbers of the row-wise (CSR) form."""
+    from dataclasses import replace
+
+    _, _, _, rel = lesmis_release
+    st = rel.truth["superedges"]
+    n = rel.grouping.n_supernodes
+    rng = np.random.default_rng(5)
+    tables = rng.normal(3.0, 2.0, size=(3, len(st.a)))
+    built = [qw.contact_matrix_workload(st.a, st.b, rel.grouping.labels.column("band").to_pylist(), "band"),
+             qw.degree_totals_workload(st.a, st.b, n)]
+    for w in built:
+        assert w.matrix.format == "csc"
+        rows = replace(w, matrix=w.matrix.tocsr())
+        assert np.array_equal(w.answer(tables[0]), rows.answer(tables[0]))
+        assert np.array_equal(w.answer(tables), rows.answer(tables))
+        assert np.array_equal(w.noise_variance(1.7), rows.noise_variance(1.7))
+
+
 def test_cut_queries_dense_and_sparse_paths_agree(monkeypatch):
     """The dense-matrix evaluation (few supernodes) and the sparse one (many) give the same cuts, on the whole
     table and on a table listing only some cells (the dense matrix then starts from zeros)."""

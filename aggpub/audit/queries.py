@@ -67,10 +67,14 @@ class PairLabels(Sequence):
 
 @dataclass
 class Workload:
-    """A named set of linear queries on the cells (``matrix`` is ``None`` for the identity)."""
+    """A named set of linear queries on the cells (``matrix`` is ``None`` for the identity).
+
+    ``matrix`` is CSR or CSC (a workload built column by column stays CSC: no conversion). Both formats
+    add the terms of each query in increasing cell order, so the answers are the same numbers.
+    """
 
     name: str
-    matrix: sparse.csr_matrix | None
+    matrix: sparse.csr_matrix | sparse.csc_matrix | None
     n_cells: int
     labels: list = field(default_factory=list)
     notes: list = field(default_factory=list)
@@ -88,8 +92,8 @@ class Workload:
         """Variance of each query answer from independent cell noise (before clamping)."""
         if self.matrix is None:
             return np.full(self.n_cells, float(cell_variance))
-        m = self.matrix  # CSR: row sums of the squared entries, without a squared copy of the matrix
-        rows = np.repeat(np.arange(m.shape[0]), np.diff(m.indptr))
+        m = self.matrix  # row sums of the squared entries, without a squared copy of the matrix
+        rows = m.indices if m.format == "csc" else np.repeat(np.arange(m.shape[0]), np.diff(m.indptr))
         return np.bincount(rows, weights=np.square(m.data), minlength=m.shape[0]) * float(cell_variance)
 
     @property
@@ -189,8 +193,8 @@ def contact_matrix_workload(a, b, values, attribute: str) -> Workload:
     row_of[used] = np.arange(len(used))
     q = row_of[pair]
     n_cells = len(a)
-    # one entry per column: built as CSC without sorting, then turned into CSR (a counting sort)
-    mat = sparse.csc_matrix((np.ones(n_cells), q, np.arange(n_cells + 1)), shape=(len(used), n_cells)).tocsr()
+    # one entry per column: built as CSC without sorting
+    mat = sparse.csc_matrix((np.ones(n_cells), q, np.arange(n_cells + 1)), shape=(len(used), n_cells))
     # the value pair of upper-triangle index u, without the k x k index arrays of numpy.triu_indices
     first = np.searchsorted(np.cumsum(np.arange(k, 0, -1)), used, side="right")
     second = used - (first * k - (first * (first - 1)) // 2) + first
@@ -241,7 +245,7 @@ def degree_totals_workload(a, b, n_groups: int) -> Workload:
     b = np.asarray(b, dtype=np.int64)
     diag = a == b
     # column by column (one cell each): the diagonal cell is one entry of 2 at row a, any other
-    # cell two entries of 1 at rows a and b; built as CSC without sorting, then a counting sort to CSR
+    # cell two entries of 1 at rows a and b; built as CSC without sorting (and kept so)
     per_col = np.where(diag, 1, 2)
     indptr = np.zeros(n_cells + 1, dtype=np.int64)
     np.cumsum(per_col, out=indptr[1:])
@@ -250,5 +254,5 @@ def degree_totals_workload(a, b, n_groups: int) -> Workload:
     rows[indptr[:-1]] = a
     vals[indptr[:-1][diag]] = 2.0
     rows[indptr[:-1][~diag] + 1] = b[~diag]
-    mat = sparse.csc_matrix((vals, rows, indptr), shape=(n_groups, n_cells)).tocsr()
+    mat = sparse.csc_matrix((vals, rows, indptr), shape=(n_groups, n_cells))
     return Workload("supernode_degree_totals", mat, n_cells)
