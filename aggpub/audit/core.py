@@ -315,11 +315,11 @@ def _workload_summary(w, tru, est, est_unclamped, mech, s_bound, mc, est_consist
 def _query_section(release, truth, monte_carlo, source, deg_mc, plot, progress) -> dict:
     st = truth.st
     mech = release.mechanisms.get("superedge_counts")
-    cells = (st.a, st.b)
-    rel = released_cells(release, truth.n_groups, cells=cells)
+    order = (st.a, st.b)  # every cell, in table order
+    rel = released_cells(release, truth.n_groups, cells=order)
     unclamped = None if truth.threshold is not None else released_cells(release, truth.n_groups,
-                                                                        "edge_count_unclamped", cells=cells)
-    consistent = released_cells(release, truth.n_groups, "edge_count_estimate", cells=cells)
+                                                                        "edge_count_unclamped", cells=order)
+    consistent = released_cells(release, truth.n_groups, "edge_count_estimate", cells=order)
     mc = {w.name: {"mean_absolute_error": []} for w in truth.workloads}
     if monte_carlo and mech is not None:
         progress(f"audit: {int(monte_carlo)} fresh noise draws on the true table (Monte Carlo)")
