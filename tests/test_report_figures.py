@@ -102,3 +102,24 @@ def test_ks_statistic_matches_scipy():
              (np.arange(10), np.arange(20, 25)), (rng.geometric(0.2, 1000), rng.geometric(0.2, 1000))]
     for x, y in cases:
         assert abs(ks_statistic(x, y) - float(stats.ks_2samp(x, y).statistic)) < 1e-12  # to rounding
+
+
+def test_block_sums_are_numpy_add_at_sums_bit_for_bit():
+    """Summed with bincount (cells in contact-matrix order) or in any other order: the very numbers of
+    ``numpy.add.at`` on each triangle (fractional values, where the order of additions shows)."""
+    rng = np.random.default_rng(8)
+    for k, side in ((7, 10), (23, 5), (300, 40)):
+        ia, ib = _pairs(k)
+        data = rng.normal(10.0, 7.0, len(ia)) / 3.0
+        for order in (np.arange(len(ia)), rng.permutation(len(ia))):
+            a, b = ia[order], ib[order]
+            if order[0] != 0:
+                a, b = b, a  # some cells listed as (b, a): the other path
+            m, block = _block_matrix([str(i) for i in range(k)], a, b, data[order], side=side)
+            n = m.shape[0]
+            ref = np.zeros((n, n))
+            ba, bb = a // block, b // block
+            np.add.at(ref, (ba, bb), data[order])
+            off = ba != bb
+            np.add.at(ref, (bb[off], ba[off]), data[order][off])
+            assert np.array_equal(m, ref)
