@@ -11,6 +11,7 @@ Laplace pmf for the exact expected error under clamping.
 from __future__ import annotations
 
 import itertools
+from pathlib import Path
 import math
 
 import networkx as nx
@@ -502,3 +503,69 @@ def test_triangles_per_node_match_networkx_on_random_graphs():
         got = triangles_per_node(adjacency(u, v, G.number_of_nodes()))
         want = nx.triangles(G)
         assert got.tolist() == [want[i] for i in range(G.number_of_nodes())], seed
+
+
+def _structure_json(out):
+    import json
+    return json.dumps(out["structure"], sort_keys=True, default=str)
+
+
+def test_structure_figures_are_the_same_in_a_helper_process(lesmis_release, monkeypatch):
+    """The release's synthetic networks drawn in a helper interpreter give the same figures as in process (each
+    side seeded from the audit's generator); a helper that fails falls back to computing them here. Les
+    Miserables co-appearances (Knuth, The Stanford GraphBase, 1993, as networkx ships it)."""
+    from aggpub.audit import sampled
+    from aggpub.synthesis import sampler
+
+    rel = lesmis_release[3]
+
+    def audit(parallel):
+        sampler._AFFINITY_CACHE.clear()  # the helper has no cache either
+        return _structure_json(audit_release(rel, monte_carlo=0, structure_samples=2, seed=4,
+                                             source=SeededRandomSource(1), parallel_structure=parallel))
+
+    here = audit(False)
+    assert "sampled_from_release" in here and here == audit(False)
+    assert audit(True) == here
+    # the helper really answered (not the fallback)
+    from aggpub.audit.core import _start_structure
+    from aggpub.audit.truth import truth_of_release
+    plan = _start_structure(rel, truth_of_release(rel), 1, np.random.default_rng(0), parallel=True)
+    handle = plan["release_side"]
+    assert isinstance(handle, sampled._Helper)
+    assert len(handle.result()["runs"]) == 1 and "figures" in handle.answer
+    # a broken helper (exits at once): the same figures, computed in this process
+    monkeypatch.setattr(sampled, "_CHILD", "import sys; sys.exit(3)")
+    assert audit(True) == here
+    # another seed gives other networks (the comparison above can fail)
+    sampler._AFFINITY_CACHE.clear()
+    other = audit_release(rel, monte_carlo=0, structure_samples=2, seed=5,
+                          source=SeededRandomSource(1), parallel_structure=False)
+    assert _structure_json(other) != here
+
+
+def test_the_helper_process_does_not_run_the_callers_script_again(tmp_path):
+    """A steward's script without a ``__main__`` guard that audits with the helper process runs once (the
+    helper interpreter imports aggpub only, never the caller's main module)."""
+    import subprocess
+    import sys
+
+    log = tmp_path / "runs.txt"
+    script = tmp_path / "steward.py"
+    root = Path(__file__).resolve().parents[1]
+    script.write_text(
+        f"import sys; sys.path.insert(0, {str(root)!r})\n"
+        "import networkx as nx\n"
+        "from aggpub.audit import audit_release\n"
+        "from tests.conftest import graph_tables, simple_policy\n"
+        "import aggpub\n"
+        f"open({str(log)!r}, 'a').write('run\\n')\n"
+        "G = nx.les_miserables_graph()\n"
+        "e, p = graph_tables(G, {'group': {n: i % 3 for i, n in enumerate(sorted(G))}})\n"
+        "rel = aggpub.release_tables(e, p, simple_policy(['group'], min_size=5), seed=2, charge_ledger=False)\n"
+        "out = audit_release(rel, monte_carlo=0, structure_samples=1, seed=1, parallel_structure=True)\n"
+        "print(out['structure']['sampled_from_release']['contacts']['mean'])\n")
+    res = subprocess.run([sys.executable, str(script)], cwd=root, capture_output=True, text=True, timeout=300)
+    assert res.returncode == 0, res.stderr[-2000:]
+    assert float(res.stdout.strip().splitlines()[-1]) > 0
+    assert log.read_text() == "run\n"

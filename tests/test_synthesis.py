@@ -365,3 +365,29 @@ def test_audit_uses_the_researchers_sampler_and_reports_fidelity(tmp_path, monke
     assert 0 <= out["degree_distribution"]["from_degree_sequences"]["ks"] <= 1
     html = (write_report(tmp_path / "r", out) / "report.html").read_text(encoding="utf-8")
     assert "Can researchers simulate on the synthetic networks?" in html and "epidemic final size" in html
+
+
+def test_false_position_finds_the_root_scipy_finds():
+    """The affinity fit's root finder (Illinois variant of regula falsi; Dowell, Jarratt, BIT 11, 1971) against
+    scipy.optimize.brentq on smooth increasing functions shaped like the triangle count (flat, then steep);
+    the ends are returned when the root lies outside [0, 1]; the stopping rule is |f| <= tolerance."""
+    from scipy.optimize import brentq
+
+    from aggpub.synthesis.sampler import _false_position
+
+    for f in (lambda x: 2000 + 78000 * x ** 3 - 55000, lambda x: np.expm1(3 * x) - 4.0, lambda x: x - 0.3):
+        calls = []
+
+        def counted(x, f=f):
+            calls.append(x)
+            return f(x)
+
+        root = _false_position(counted, 1e-9, 60)
+        assert root == pytest.approx(brentq(f, 0.0, 1.0), abs=1e-7)
+        assert len(calls) <= 14  # plain regula falsi needs 19 and 40 trials on the two convex ones (one end stays)
+    assert _false_position(lambda x: x + 0.1, 1e-6, 5) == 0.0
+    assert _false_position(lambda x: x - 1.5, 1e-6, 5) == 1.0
+    # a loose tolerance stops at the first trial inside it
+    seen = []
+    root = _false_position(lambda x: seen.append(x) or (x - 0.5), 0.2, 5)
+    assert abs(root - 0.5) <= 0.2 and len(seen) == 3  # the two ends, then one interior trial

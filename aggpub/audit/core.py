@@ -47,7 +47,7 @@ def _expected_abs(mech, var_q, single_cell: bool):
 
 def audit_release(release, *, monte_carlo: int | None = None, source=None, structure_samples: int = 3,
                   n_cut_queries: int = 200, sanity_bound: float | None = None, seed: int | None = None,
-                  progress=None) -> dict:
+                  progress=None, parallel_structure: bool | None = None) -> dict:
     """Audit a built release against the true network it came from.
 
     Parameters
@@ -72,6 +72,10 @@ def audit_release(release, *, monte_carlo: int | None = None, source=None, struc
     seed : int, optional
         Seed for the choice of cut queries and the synthetic networks (audit-internal).
     progress : callable, optional
+    parallel_structure : bool, optional
+        Draw the release's synthetic networks in a helper process while the other
+        sections run (default: on networks of :data:`aggpub.audit.sampled.PARALLEL_MIN_CONTACTS`
+        contacts or more, with two cores or more); the figures are the same either way.
 
     Returns
     -------
@@ -90,6 +94,19 @@ def audit_release(release, *, monte_carlo: int | None = None, source=None, struc
     source = source or audit_source()
     rng = np.random.default_rng(seed)
     truth = truth_of_release(release, sanity_bound=sanity_bound, cuts=n_cut_queries, rng=rng)
+    # the release's synthetic networks start now (in a helper process on large networks) while the rest runs
+    structure = _start_structure(release, truth, structure_samples, rng, parallel_structure)
+    try:
+        return _audit_sections(release, truth, structure, rng, monte_carlo, source, sanity_bound,
+                               structure_samples, progress)
+    finally:
+        if "release_side" in structure:
+            structure["release_side"].close()
+
+
+def _audit_sections(release, truth, structure, rng, monte_carlo, source, sanity_bound, structure_samples,
+                    progress) -> dict:
+    """The audit's sections in turn (see :func:`audit_release`)."""
     if monte_carlo is None:
         monte_carlo = default_monte_carlo(truth.n_groups * (truth.n_groups + 1) // 2)
     m = release.manifest
@@ -127,7 +144,7 @@ def audit_release(release, *, monte_carlo: int | None = None, source=None, struc
         if views.job is not None:
             progress("audit: contact views (true matrices against the released estimates)")
             out["contact_views"] = views.result(plot)
-    out["structure"] = _structure_section(release, truth, structure_samples, rng, progress)
+    out["structure"] = _structure_section(release, truth, structure, rng, progress)
     if "ks" in dd:
         out["error_split"] = _error_split(dd, out["queries"])
     out["_plot"] = plot
@@ -360,13 +377,12 @@ def _error_split(dd, queries) -> dict:
     return split
 
 
-def _structure_section(release, truth, samples, rng, progress) -> dict:
-    """Networks drawn by the one sampler (the researcher's) from the release and from the true aggregate.
+def _start_structure(release, truth, samples, rng, parallel=None) -> dict:
+    """Check what the structure section can do and start the release's side (in a helper process if worth it).
 
-    Structure statistics of each, and the fidelity figures of :mod:`aggpub.audit.fidelity`
-    (contacts, degree KS, largest degree, clustering, epidemic final size) against the
-    true network, for "grouping alone" (the sampler fed the true aggregate) and for
-    "the release".
+    Returns ``{"skipped": reason}`` or the plan :func:`_structure_section` finishes. Each
+    side's generator is seeded here from the audit's, so the figures do not depend on
+    where a side runs.
     """
     network, st = release.network, truth.st
     if st is None or "superedges" not in release.tables:
@@ -376,35 +392,53 @@ def _structure_section(release, truth, samples, rng, progress) -> dict:
     if network.n_edges > MAX_STRUCTURE_EDGES:
         return {"skipped": f"network has more than {MAX_STRUCTURE_EDGES:,} contacts; structure comparison "
                            "is done in memory and was left out"}
-    # imported here, after the checks: the fidelity figures load scipy.stats (about a second), which a
-    # release whose structure comparison is skipped does not need
-    from ..synthesis import draw_network, inputs_from_release, inputs_from_truth
+    from ..synthesis import inputs_from_release, inputs_from_truth
     from . import fidelity as fid
-    progress(f"audit: structure of the true network and of {samples} + {samples} sampled networks")
+    from .sampled import SideJob, start_side
+
     codes = {c: np.unique(np.asarray(vals, dtype=str), return_inverse=True)[1] for c, vals in truth.labels.items()}
+    T = fid.transmissibility(truth.true_deg)
+    seeds = rng.integers(0, 2 ** 63 - 1, size=2)
+    released_inputs = inputs_from_release(release)
+    jobs = {side: SideJob(inputs=inputs, codes=codes, samples=int(samples), transmissibility=T,
+                          percolations=FIDELITY_PERCOLATIONS, seed=int(seed))
+            for side, inputs, seed in (("release", released_inputs, seeds[0]),
+                                       ("grouping_alone", inputs_from_truth(release, like=released_inputs),
+                                        seeds[1]))}
+    return {"codes": codes, "T": T, "jobs": jobs, "samples": int(samples),
+            "release_side": start_side(jobs["release"], int(network.n_edges), parallel)}
+
+
+def _structure_section(release, truth, plan, rng, progress) -> dict:
+    """Networks drawn by the one sampler (the researcher's) from the release and from the true aggregate.
+
+    Structure statistics of each, and the fidelity figures of :mod:`aggpub.audit.fidelity`
+    (contacts, degree KS, largest degree, clustering, epidemic final size) against the
+    true network, for "grouping alone" (the sampler fed the true aggregate) and for
+    "the release". ``plan`` comes from :func:`_start_structure`.
+    """
+    if "skipped" in plan:
+        return plan
+    from . import fidelity as fid
+    from .sampled import side_figures
+
+    network, samples, T = release.network, plan["samples"], plan["T"]
+    progress(f"audit: structure of the true network and of {samples} + {samples} sampled networks")
     u, v = network.engine.edge_arrays()
     assignment = release.grouping.assignment
     true_stats = struct.structure_statistics(u, v, network.n_people,
-                                             {c: code[assignment] for c, code in codes.items()})
-    T = fid.transmissibility(truth.true_deg)
+                                             {c: code[assignment] for c, code in plan["codes"].items()})
     true_fig = fid.network_figures(u, v, network.n_people, T, rng, FIDELITY_PERCOLATIONS,
                                    average_clustering=true_stats["average_clustering"])
-    released_inputs = inputs_from_release(release)
-    alone_inputs = inputs_from_truth(release, like=released_inputs)
 
-    def sampled(inputs):
-        runs, figures = [], []
-        n = int(inputs.sizes.sum())
-        for _ in range(samples):
-            su, sv = draw_network(inputs, rng)
-            cats = {c: np.repeat(code, inputs.sizes) for c, code in codes.items()}
-            runs.append(struct.structure_statistics(su, sv, n, cats))
-            figures.append(fid.compare_figures(true_fig, fid.network_figures(
-                su, sv, n, T, rng, FIDELITY_PERCOLATIONS, average_clustering=runs[-1]["average_clustering"])))
+    def summary(side):
+        runs = side["runs"]
+        figures = [fid.compare_figures(true_fig, f) for f in side["figures"]]
         return {k: spread([r[k] for r in runs]) for k in runs[0] if k != "people"}, fid.summarise(figures)
 
-    from_release, fid_release = sampled(released_inputs)
-    from_alone, fid_alone = sampled(alone_inputs)
+    from_alone, fid_alone = summary(side_figures(plan["jobs"]["grouping_alone"]))
+    from_release, fid_release = summary(plan["release_side"].result())
+    released_inputs = plan["jobs"]["release"].inputs
     what = SAMPLER_TEXT[released_inputs.sampler]
     if released_inputs.sampler == "degree_corrected":
         what += (" with affinity blocks fitted to the released triangle count" if released_inputs.triangles

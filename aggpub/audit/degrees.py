@@ -138,30 +138,34 @@ def implied_degree_pmf(a, b, count, sizes, *, method: str = "auto", terms: dict 
     # log characteristic function of each member's degree on the FFT grid
     # Hermitian symmetry phi(-theta) = conj(phi(theta)): half the grid suffices. With
     # z = 1 - p + p e^{i theta}: log|z| = log1p(-2 p (1 - p) (1 - cos theta)) / 2 and
-    # arg z = atan2(p sin theta, 1 - p + p cos theta), in real arithmetic.
+    # arg z = atan2(p sin theta, 1 - p + p cos theta), in real arithmetic. Both are computed once
+    # per cell (not per ordered pair of supernodes) and summed into the members' rows with their
+    # trials by a sparse product: a member of a sees m_ab trials of cell (a, b), a member of b m_ba.
+    from scipy import sparse
+
     theta = 2 * np.pi * np.arange(grid // 2 + 1) / grid
-    p_mat = np.zeros((n, n))
-    p_mat[a, b] = p_cell
-    p_mat[b, a] = p_cell
-    trials = np.broadcast_to(sizes[None, :].astype(np.float64), (n, n)).copy()
-    np.fill_diagonal(trials, sizes - 1.0)
-    one_minus_cos, sin_t, cos_t = 1 - np.cos(theta), np.sin(theta), np.cos(theta)
-    pmf_sum = np.zeros(grid)
-    step = max(1, MAX_EXACT_TERMS // (8 * n * len(theta)))  # rows of supernodes per chunk (bounded memory)
-    for lo in range(0, n, step):
-        hi = min(n, lo + step)
-        pm = p_mat[lo:hi, :, None]
-        tr = trials[lo:hi, :, None]
-        with np.errstate(divide="ignore", invalid="ignore"):
-            # z = 0 (log -inf) only at p = 1/2, theta = pi; a cell with no trials contributes nothing
-            log_abs = 0.5 * np.log1p(-2 * pm * (1 - pm) * one_minus_cos)
-            re = np.sum(np.where((pm == 0) | (tr == 0), 0.0, tr * log_abs), axis=1)
-        arg = np.arctan2(pm * sin_t, 1 - pm + pm * cos_t)
-        im = np.sum(tr * arg, axis=1)
-        phi = np.exp(re) * (np.cos(im) + 1j * np.sin(im))
-        # phi_j = E[exp(i theta_j D)] -> p_k = (1/L) sum_j phi_j exp(-i theta_j k) = irfft(conj(phi))_k
-        member_pmf = np.fft.irfft(np.conj(phi), n=grid, axis=1)
-        pmf_sum += weights[lo:hi] @ member_pmf
+    cells = np.arange(len(a))
+    rows = np.concatenate([a, b])
+    trials = np.concatenate([terms["m_ab"], terms["m_ba"]])
+    live = (trials > 0) & (np.concatenate([p_cell, p_cell]) > 0)  # a cell with no trials or p = 0 adds 0
+    spread_rows = sparse.csr_matrix((trials[live], (rows[live], np.concatenate([cells, cells])[live])),
+                                    shape=(n, len(a)))
+    used = np.flatnonzero(np.bincount(spread_rows.indices, minlength=len(a)))
+    spread_rows = spread_rows[:, used]
+    pu = p_cell[used, None]
+    log_abs = np.empty((len(used), len(theta)))
+    arg = np.empty((len(used), len(theta)))
+    step = max(1, MAX_EXACT_TERMS // (8 * max(len(used), 1)))  # grid columns per chunk (bounded memory)
+    for lo in range(0, len(theta), step):
+        t = theta[lo:lo + step]
+        with np.errstate(divide="ignore"):  # z = 0 (log -inf) only at p = 1/2, theta = pi
+            log_abs[:, lo:lo + step] = 0.5 * np.log1p(-2 * pu * (1 - pu) * (1 - np.cos(t)))
+        arg[:, lo:lo + step] = np.arctan2(pu * np.sin(t), 1 - pu + pu * np.cos(t))
+    re = spread_rows @ log_abs
+    im = spread_rows @ arg
+    phi = np.exp(re) * (np.cos(im) + 1j * np.sin(im))
+    # phi_j = E[exp(i theta_j D)] -> p_k = (1/L) sum_j phi_j exp(-i theta_j k) = irfft(conj(phi))_k
+    pmf_sum = weights @ np.fft.irfft(np.conj(phi), n=grid, axis=1)
     pmf = np.clip(pmf_sum[: top + 1], 0.0, None)
     return pmf / pmf.sum(), "binomial"
 

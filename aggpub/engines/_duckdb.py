@@ -399,11 +399,22 @@ class DuckDBEngine:
 
     def publish_staged_edges(self):
         """Keep the staged pairs of known, different people as table ``edges`` (inputs already validated)."""
+        source, columns = self._staged
+        # only the columns the input has are stored (an in-memory table keeps every value: a NULL weight
+        # and a constant layer would take 10 of 18 bytes a contact); the view ``edges`` adds the others as
+        # constants, so every query reads the same columns whatever the input had
+        stored = ["CAST(u AS INTEGER) AS u", "CAST(v AS INTEGER) AS v"]
+        shown = ["u", "v", "w" if columns.weight else "CAST(NULL AS DOUBLE) AS w",
+                 "layer" if columns.layer else "CAST(0 AS SMALLINT) AS layer"]
+        if columns.weight:
+            stored.append("w")
+        if columns.layer:
+            stored.append("CAST(layer AS SMALLINT) AS layer")
         with self._long("keeping the contacts"):
-            self.con.execute("""CREATE OR REPLACE TABLE edges AS
-                                SELECT CAST(u AS INTEGER) AS u, CAST(v AS INTEGER) AS v, w,
-                                       CAST(layer AS SMALLINT) AS layer
-                                FROM __mapped WHERE u < v AND u >= 0""")
+            self.con.execute("DROP VIEW IF EXISTS edges")
+            self.con.execute(f"""CREATE OR REPLACE TABLE __edges AS SELECT {', '.join(stored)}
+                                 FROM __mapped WHERE u < v AND u >= 0""")
+            self.con.execute(f"CREATE VIEW edges AS SELECT {', '.join(shown)} FROM __edges")
         self.discard_staged_edges()
         self._degrees = None  # new edges: forget degrees of a previous load
 
