@@ -112,7 +112,11 @@ class Engine(Protocol):
         """
 
     def edge_arrays(self) -> tuple[np.ndarray, np.ndarray]:
-        """All contacts as arrays ``u < v`` of dense ids (small networks and the audit)."""
+        """All contacts as arrays ``u < v`` of dense ids (small networks and the audit).
+
+        The order of the rows is the engine's (DuckDB's parallel scan varies from run to run); a caller
+        whose result depends on it puts them in order itself (the audit's structure section does).
+        """
 
     def close(self) -> None:
         """Release what the engine holds (tables, temporary folders); the engine is not used again."""

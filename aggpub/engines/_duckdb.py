@@ -609,7 +609,7 @@ class DuckDBEngine:
         return [np.rint(t).astype(np.int64).reshape(int(n_layers), c) for t, c in zip(totals, n_cells)]
 
     def edge_arrays(self):
-        """All edges as numpy arrays ``u``, ``v`` (for small networks and the audit)."""
+        """All edges as numpy arrays ``u``, ``v`` (for small networks and the audit), in the scan's order."""
         res = self.con.execute("SELECT u, v FROM edges").fetchnumpy()
         return res["u"].astype(np.int64), res["v"].astype(np.int64)
 
