@@ -17,7 +17,7 @@ import math
 import networkx as nx
 import numpy as np
 import pytest
-from scipy import stats
+from scipy import sparse, stats
 from scipy.spatial.distance import cityblock
 
 import aggpub
@@ -265,6 +265,64 @@ def test_released_cells_copy_path_equals_the_scatter(lesmis_release):
     a = np.asarray(t.column("supernode_a").to_numpy())
     b = np.asarray(t.column("supernode_b").to_numpy())
     assert np.array_equal(a, cells[0]) and np.array_equal(b, cells[1])  # the copy path is the one taken
+
+
+def test_a_contact_matrix_of_one_value_per_supernode_is_answered_by_the_cells():
+    """When every supernode holds its own value, in value order, each contact-matrix query is one cell in
+    cell order: the workload says so and answers with the cells themselves, the same numbers as its matrix.
+    Any other labelling (values shuffled, repeated, or generalised) keeps the matrix product."""
+    from aggpub.cells import all_cells
+
+    n = 12
+    a, b = all_cells(n)
+    x = np.random.default_rng(0).integers(0, 50, len(a)).astype(np.float64)
+    labellings = {
+        "one value each, in order": ([f"v{i:02d}" for i in range(n)], True),
+        "one value each, shuffled": ([f"v{i:02d}" for i in np.random.default_rng(1).permutation(n)], False),
+        "a value shared": ([f"v{min(i, 10):02d}" for i in range(n)], False),
+        "a generalised label": ([f"v{i:02d}" for i in range(n - 1)] + ["*"], False),  # '*' sorts first
+    }
+    for what, (values, expected) in labellings.items():
+        w = qw.contact_matrix_workload(a, b, values, "band")
+        assert w.cell_by_cell is expected, what
+        if expected:  # the matrix really is the identity
+            assert w.matrix.shape == (len(a), len(a)) and (w.matrix != sparse.identity(len(a))).nnz == 0
+        assert np.array_equal(w.answer(x), w.matrix @ x), what  # the shortcut never changes an answer
+
+
+def test_audit_figures_computed_once_for_workloads_that_are_the_cells(lesmis_release, monkeypatch):
+    """The superedge cells and a contact matrix of one value per supernode get the same error figures from
+    one computation (the cache is keyed on the very arrays), and figures of other workloads are untouched:
+    the audit's JSON with the cache equals the one computed call by call. Les Miserables (Knuth, 1993)."""
+    import json
+
+    from aggpub.audit import core
+    from aggpub.audit.truth import truth_of_release
+
+    G, band, group, _ = lesmis_release
+    edges, people = graph_tables(G, {"group": group})
+    rel = aggpub.release_tables(edges, people, simple_policy(["group"], min_size=1), seed=7)
+    shared = [w.name for w in truth_of_release(rel).workloads if w.cell_by_cell]
+    assert shared == ["contact_matrix:group"]  # four supernodes, one group each: the case the cache serves
+
+    def audit():
+        out = audit_release(rel, monte_carlo=3, structure_samples=0, seed=2, source=SeededRandomSource(5))
+        return json.dumps({k: v for k, v in out.items() if k not in ("created_utc",) and not k.startswith("_")},
+                          sort_keys=True, default=str)
+
+    cached = audit()
+    calls = []
+
+    class Each:  # no sharing: every call computed
+        def __init__(self, f):
+            self.f = f
+
+        def __call__(self, *args):
+            calls.append(1)
+            return self.f(*args)
+
+    monkeypatch.setattr(core, "_Once", Each)
+    assert audit() == cached and calls
 
 
 def test_workloads_match_networkx_counts(lesmis_release):

@@ -12,6 +12,7 @@ from __future__ import annotations
 
 __all__ = ["audit_release", "MAX_STRUCTURE_EDGES", "RESIDUAL"]
 
+import copy
 import math
 from datetime import datetime, timezone
 
@@ -290,7 +291,8 @@ def _monte_carlo(truth, mech, monte_carlo, source, deg_mc):
             degree = distribution_distances(truth.true_hist, pmf)
         table = post_process(noisy, truth.cap_pub, truth.threshold).astype(np.float64)
         del noisy
-        return degree, {w.name: mc_errors(truth.true_answers[w.name], w.answer(table), truth.s_bound)
+        errors = _Once(mc_errors)  # workloads whose answers are the cells themselves share one computation
+        return degree, {w.name: errors(truth.true_answers[w.name], w.answer(table), truth.s_bound)
                         for w in truth.workloads}
 
     for degree, errors in map_draws(one_draw, int(monte_carlo), len(st.count), source):
@@ -304,7 +306,26 @@ def _monte_carlo(truth, mech, monte_carlo, source, deg_mc):
     return mc
 
 
-def _workload_summary(w, tru, est, est_unclamped, mech, s_bound, mc, est_consistent=None) -> dict:
+class _Once:
+    """``f(true, estimate, s)`` computed once for the same two arrays (the same objects) and ``s``.
+
+    Workloads whose answers are the cells themselves (the superedge cells, and a contact matrix when every
+    supernode holds its own value) get the very arrays of the table: their error figures are the same
+    numbers, computed once and copied. Keys hold the arrays, so an ``id`` is never reused while cached.
+    """
+
+    def __init__(self, f):
+        self.f, self.done = f, {}
+
+    def __call__(self, true, estimate, s):
+        key = (id(true), id(estimate), s)
+        if key not in self.done:
+            self.done[key] = (true, estimate, self.f(true, estimate, s))
+        return copy.deepcopy(self.done[key][2])
+
+
+def _workload_summary(w, tru, est, est_unclamped, mech, s_bound, mc, est_consistent=None,
+                      error_summary=error_summary) -> dict:
     summ = error_summary(tru, est, s_bound)
     if est_unclamped is not None:
         # what a researcher gets by summing edge_count_unclamped, as the reader's guide advises
@@ -342,13 +363,18 @@ def _query_section(release, truth, monte_carlo, source, deg_mc, plot, progress) 
         progress(f"audit: {int(monte_carlo)} fresh noise draws on the true table (Monte Carlo)")
         mc = _monte_carlo(truth, mech, monte_carlo, source, deg_mc)
     out = {}
+    rel = np.asarray(rel, dtype=np.float64)  # as every workload reads it (one array: see _Once)
+    unclamped = None if unclamped is None else unclamped.astype(np.float64)
+    consistent = None if consistent is None else consistent.astype(np.float64)
+    summaries = _Once(error_summary)
+    relative = _Once(lambda t, e, s: np.abs(e - t) / np.maximum(t, s))
     for w in truth.workloads:
         tru = truth.true_answers[w.name]
         est = w.answer(rel)
-        est_u = None if unclamped is None else w.answer(unclamped.astype(np.float64))
-        est_c = None if consistent is None else w.answer(consistent.astype(np.float64))
-        out[w.name] = _workload_summary(w, tru, est, est_u, mech, truth.s_bound, mc, est_c)
-        plot["rel_errors"][w.name] = np.abs(est - tru) / np.maximum(tru, truth.s_bound)
+        est_u = None if unclamped is None else w.answer(unclamped)
+        est_c = None if consistent is None else w.answer(consistent)
+        out[w.name] = _workload_summary(w, tru, est, est_u, mech, truth.s_bound, mc, est_c, summaries)
+        plot["rel_errors"][w.name] = relative(tru, est, truth.s_bound)
     # relative error with s = 1, for reading per-cell errors against small counts
     cells = out["superedge_cells"]
     true_t = st.count.astype(np.float64)

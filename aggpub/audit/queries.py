@@ -78,11 +78,17 @@ class Workload:
     n_cells: int
     labels: list = field(default_factory=list)
     notes: list = field(default_factory=list)
+    #: ``matrix`` is the identity (query ``i`` is cell ``i``, with weight 1): its answers are the cells themselves
+    cell_by_cell: bool = False
 
     def answer(self, cells: np.ndarray) -> np.ndarray:
-        """Answers for one table (``cells``: 1-D) or many (2-D: draws x cells -> draws x queries)."""
+        """Answers for one table (``cells``: 1-D) or many (2-D: draws x cells -> draws x queries).
+
+        For the identity (``matrix`` ``None`` or ``cell_by_cell``) the cells themselves (the same
+        array: the product would give the same numbers, each answer being one cell times 1).
+        """
         cells = np.asarray(cells, dtype=np.float64)
-        if self.matrix is None:
+        if self.matrix is None or self.cell_by_cell:
             return cells
         if cells.ndim == 1:
             return self.matrix @ cells
@@ -202,7 +208,10 @@ def contact_matrix_workload(a, b, values, attribute: str) -> Workload:
     generalised = int(sum(1 for c in cats if c == "*"))
     notes = [f"{k} value(s) of '{attribute}' as stated in the supernode labels"
              + (" (including '*' for supernodes that leave it open)" if generalised else "")]
-    return Workload(f"contact_matrix:{attribute}", mat, n_cells, labels=labels, notes=notes)
+    # every supernode holding its own value, in the order of the values: each query is one cell, in cell order
+    cell_by_cell = len(used) == n_cells and bool(np.array_equal(q, np.arange(n_cells)))
+    return Workload(f"contact_matrix:{attribute}", mat, n_cells, labels=labels, notes=notes,
+                    cell_by_cell=cell_by_cell)
 
 
 def cut_workload(a, b, n_groups: int, n_queries: int, rng: np.random.Generator,
