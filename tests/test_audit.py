@@ -139,6 +139,33 @@ def test_implied_degree_pmf_is_the_sum_of_binomials():
     np.testing.assert_allclose(pp, ref_p, rtol=1e-12, atol=1e-15)
 
 
+@pytest.mark.parametrize("seed", range(4))
+def test_implied_degree_pmf_support_holds_the_whole_law(seed):
+    """The pmf's support (mean + 12 sqrt(mean) + 20 per member) holds all the mass of the sum of binomials:
+    each member's variance (scipy.stats.binom.var, summed over cells) is at most its mean, and the law beyond
+    the support (scipy.stats.binom pmfs convolved, up to every trial) is below 1e-12. Random tables from
+    empty to full cells."""
+    rng = np.random.default_rng(seed)
+    sizes = rng.integers(2, 9, size=4)
+    a, b = comp.all_cells(4)
+    cap = comp.possible_pairs(sizes, a, b)
+    counts = np.minimum(cap, np.where(rng.random(len(a)) < 0.3, cap, rng.integers(0, cap + 1)))
+    pmf, method = implied_degree_pmf(a, b, counts, sizes)
+    assert method == "binomial"
+    p = dict(zip(zip(a.tolist(), b.tolist()), counts / cap))
+    ref = np.zeros(int(sizes.sum()) + 100)  # every possible degree, and zeros past it
+    for g in range(4):
+        member, mean, var = np.array([1.0]), 0.0, 0.0
+        for h in range(4):
+            n, q = int(sizes[h] - (g == h)), p[(min(g, h), max(g, h))]
+            member = np.convolve(member, stats.binom.pmf(np.arange(n + 1), n, q))
+            mean, var = mean + stats.binom.mean(n, q), var + stats.binom.var(n, q)
+        assert var <= mean + 1e-12
+        ref[: len(member)] += sizes[g] / sizes.sum() * member
+    assert ref[len(pmf):].sum() < 1e-12
+    np.testing.assert_allclose(pmf, ref[: len(pmf)], atol=1e-12)
+
+
 def test_poisson_pmf_helper_matches_scipy():
     """The audit's log-space Poisson pmf against scipy.stats.poisson.pmf, rate 0 included."""
     from aggpub.audit.degrees import _poisson_pmf

@@ -115,14 +115,9 @@ def implied_degree_pmf(a, b, count, sizes, *, method: str = "auto", terms: dict 
     count = np.clip(np.asarray(count, dtype=np.float64), 0.0, cap)
     weights = sizes / sizes.sum()
     lam = _per_member_rates(a, b, count, sizes)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        p_cell = np.where(cap > 0, count / np.where(cap > 0, cap, 1.0), 0.0)
-    var = np.zeros(n)
-    # variance of a member of a: sum_b m_ab p (1 - p)
-    pq = p_cell * (1 - p_cell)
-    var += (np.bincount(a, weights=terms["m_ab"] * pq, minlength=n)
-            + np.bincount(b, weights=terms["m_ba"] * pq, minlength=n))
-    top = int(np.ceil(np.max(lam + 12 * np.sqrt(np.maximum(var, lam)) + 20))) if n else 1
+    # support: the mean plus 12 standard deviations (and 20). A member's variance sum_b m_ab p (1 - p) is at
+    # most its mean sum_b m_ab p = lam, so the Poisson's sqrt(lam) bounds both laws' deviations
+    top = int(np.ceil(np.max(lam + 12 * np.sqrt(lam) + 20))) if n else 1
     grid = 1 << max(4, int(np.ceil(np.log2(top + 1))))
     if method == "auto":
         method = "binomial" if n * n * grid <= MAX_EXACT_TERMS else "poisson"
@@ -135,6 +130,8 @@ def implied_degree_pmf(a, b, count, sizes, *, method: str = "auto", terms: dict 
         return pmf, "poisson"
     if method != "binomial":
         raise ValueError(f"'method' must be 'auto', 'binomial' or 'poisson', got {method!r}")
+    with np.errstate(divide="ignore", invalid="ignore"):
+        p_cell = np.where(cap > 0, count / np.where(cap > 0, cap, 1.0), 0.0)
     # log characteristic function of each member's degree on the FFT grid
     # Hermitian symmetry phi(-theta) = conj(phi(theta)): half the grid suffices. With
     # z = 1 - p + p e^{i theta}: log|z| = log1p(-2 p (1 - p) (1 - cos theta)) / 2 and
