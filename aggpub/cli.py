@@ -591,9 +591,10 @@ def one_blas_thread() -> bool:
     A command runs its own parallel work: DuckDB's threads, the audit's threads and its
     helper process. OpenBLAS starts a thread per core for each call and keeps them
     spinning afterwards, so on two cores they take turns with ours. Measured, whole
-    processes, three runs each against the default: the demo town 1.81-1.89 s against
-    2.16-2.27 s (user CPU 2.5 s against 3.5 s), 10M contacts 5.22-5.24 s against
-    5.40-7.34 s, 1M unchanged. Libraries already loaded are limited through
+    processes against the default: the demo town 1.84-1.93 s with this function
+    (1.81-1.93 s with the variable set by hand) against 2.16-2.27 s (user CPU 2.8 s
+    against 3.5 s); 10M contacts 5.22-5.24 s against 5.40-7.34 s (variable set by
+    hand, two runs each); 1M unchanged. Libraries already loaded are limited through
     ``threadpoolctl``; ``OPENBLAS_NUM_THREADS=1`` covers those loaded later and the
     helper processes. Nothing changes when the user set one of
     :data:`BLAS_THREAD_VARIABLES`, and library use (``import aggpub``) is never affected.
