@@ -10,8 +10,10 @@ For each ``(epsilon, sensitivity)`` the same run times, on ``--cells`` values:
 * ``exact``: ``GeometricMechanism(epsilon, sensitivity).noise(cells, SystemRandomSource())``, the
   sampler of ``aggpub.noise.sampler`` (integer arithmetic, ``os.urandom`` bytes);
 * ``exact-wrapped``: the same through ``ChargeOnFirstDraw(SystemRandomSource(), ...)``, the wrapper the
-  release pipeline uses: it only forwards ``uniform()``, so the bytes come from the default
-  ``RandomSource.random_bytes`` (48 bits out of each 52-bit uniform);
+  release pipeline uses (it forwards ``random_bytes`` after charging the ledger once);
+* ``alg2``: Canonne, Kamath and Steinke's Algorithm 2 (geometric, sign, rejection), the exact sampler
+  that ``exact`` uses only above a noise scale of about 148 since the magnitude table came in
+  (``aggpub.noise.sampler._discrete_laplace``, called directly);
 * ``float-old``: the float inversion sampler that the exact one replaced (kept here, for comparison
   only: ``floor(log U / log alpha)`` twice, on ``os.urandom`` uniforms);
 * ``diffprivlib``: a Python loop of ``diffprivlib.mechanisms.Geometric(epsilon=...,
@@ -36,6 +38,7 @@ import numpy as np
 
 from aggpub.budget.ledger import ChargeOnFirstDraw
 from aggpub.noise.mechanisms import GeometricMechanism
+from aggpub.noise import sampler as smp
 from aggpub.noise.sampler import SystemRandomSource
 
 DEFAULT_PAIRS = "0.1:1,1:1,10:1,1:4,0.5:2,0.1:100"
@@ -93,7 +96,7 @@ def main(argv=None):
           f"{'all values' if not args.dpl_cells else f'{args.dpl_cells:,} values, scaled'}")
     header = (f"{'epsilon':>8} {'sens':>5} {'scale':>7} {'exact s':>7} {'wrapped s':>9} {'float-old s':>11} "
               f"{'diffprivlib s':>13} {'dpl/exact':>9} {'(cpu)':>7} {'dpl/wrapped':>11} {'(cpu)':>7} "
-              f"{'float/exact':>11}  sanity")
+              f"{'float/exact':>11} {'alg2 s':>7} {'alg2/exact':>10}  sanity")
     print(header)
     ratios, cpu_ratios = [], []
     for eps, sens in pairs:
@@ -102,6 +105,9 @@ def main(argv=None):
         wrapped = ChargeOnFirstDraw(SystemRandomSource(), lambda: None)
         (t_wrap, c_wrap), _ = timed(lambda: mech.noise(args.cells, wrapped), args.repeats)
         (t_old, c_old), _ = timed(lambda: old_float_sampler(mech.log_alpha, args.cells, src), args.repeats)
+        s_, k_ = smp.dyadic_rate(mech.rate)
+        (t_alg2, _), _ = timed(lambda: smp._discrete_laplace(smp.ByteStream(src, 24 * min(args.cells, 1 << 20)),
+                                                              s_, k_, args.cells), args.repeats)
         (t_dpl, c_dpl), extrapolated, ref = diffprivlib_time(eps, sens, args.cells, args.dpl_cells)
         var_ratio = float(np.var(x)) / mech.variance()
         ref_ratio = float(np.var(ref)) / mech.variance()
@@ -110,7 +116,8 @@ def main(argv=None):
         cpu_ratios.append(c_dpl / c_exact)
         print(f"{eps:>8g} {sens:>5d} {mech.scale:>7g} {t_exact:>7.3f} {t_wrap:>9.3f} {t_old:>11.3f} "
               f"{t_dpl:>12.2f}{'*' if extrapolated else ' '} {t_dpl / t_exact:>8.1f}x {c_dpl / c_exact:>6.1f}x "
-              f"{t_dpl / t_wrap:>10.1f}x {c_dpl / c_wrap:>6.1f}x {t_old / t_exact:>10.2f}x  "
+              f"{t_dpl / t_wrap:>10.1f}x {c_dpl / c_wrap:>6.1f}x {t_old / t_exact:>10.2f}x "
+              f"{t_alg2:>7.3f} {t_alg2 / t_exact:>9.2f}x  "
               f"var/theory={var_ratio:.3f} (dpl {ref_ratio:.3f}) max|z|/scale={max_over_scale:.1f} "
               f"rate_exact={mech.rate_is_exact}")
     print(f"diffprivlib / exact: wall min {min(ratios):.1f}x median {statistics.median(ratios):.1f}x; "

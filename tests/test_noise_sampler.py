@@ -727,3 +727,105 @@ def test_bernoulli_from_bounds_including_the_slow_path(rho):
         assert x.all() if rho == 1 else not x.any()
     else:
         assert st.binomtest(int(x.sum()), n, float(rho)).pvalue > SEEDED_LEVEL
+
+
+# ------------------------------------------- inversion of the magnitude's law over a table
+@pytest.mark.parametrize("rate", [Fraction(1), Fraction(1, 2), Fraction(0.1), Fraction(3, 1024), Fraction(7, 2)])
+def test_magnitude_table_brackets_the_decimal_thresholds(rate):
+    # lo_g <= 2**63 * P(|Z| >= g) <= hi_g with P(|Z| >= g) = 2 a**g / (1 + a) [GRS09], against exp(-x)
+    # from Python's correctly rounded Decimal.exp [DEC] at 60 digits; neighbours separated; the last
+    # threshold below 2**-40 and the one before it not.
+    from decimal import Decimal, localcontext
+
+    s, k = dyadic_rate(rate)
+    table = smp._magnitude_table(s, k)
+    if rate < Fraction(1, 148):  # scale above about 148: more than 4096 thresholds, no table
+        assert table is None
+        return
+    lo, hi = (np.array([int(v) for v in arr], dtype=object) for arr in table)
+    with localcontext() as ctx:
+        ctx.prec = 60
+        x = Decimal(s) / Decimal(2 ** k)
+        a = (-x).exp()
+        for g in range(1, lo.size + 1):
+            ref = 2 * (-(x * g)).exp() / (1 + a) * 2 ** 63
+            assert Decimal(lo[g - 1]) <= ref <= Decimal(hi[g - 1])
+            assert hi[g - 1] - lo[g - 1] <= 2
+        assert Decimal(hi[-1]) < Decimal(2) ** 23 and (lo.size == 1 or Decimal(hi[-2]) >= Decimal(2) ** 23)
+    assert all(lo[i] >= hi[i + 1] for i in range(lo.size - 1))
+
+
+def test_magnitude_table_only_for_moderate_scales():
+    assert smp._magnitude_table(*dyadic_rate(Fraction(1, 100))) is not None   # 2,774 thresholds
+    assert smp._magnitude_table(*dyadic_rate(Fraction(1, 1000))) is None      # would need 27,700
+    assert smp._magnitude_table(*dyadic_rate(Fraction(1, 2 ** 40))) is None
+
+
+@pytest.mark.parametrize("epsilon,sensitivity", PAIRS)
+def test_rejection_sampler_still_matches_the_law(epsilon, sensitivity):
+    # Scales above about 148 still use [CKS20] Algorithm 2 (_discrete_laplace); it is tested here at the
+    # moderate scales where the table is used otherwise, against the [GRS09] pmf [SCIPY].
+    s, k = dyadic_rate(Fraction(epsilon) / Fraction(sensitivity))
+    x = smp._discrete_laplace(_stream(31 + k), s, k, N_GOF)
+    stat, p, cells = gof(x, alpha_of(epsilon, sensitivity))
+    assert p > SEEDED_LEVEL
+
+
+@pytest.mark.parametrize("s,k", [(1, 0), (1, 2), (7, 1)])
+def test_table_sampler_tail_beyond_the_table(s, k):
+    # A table cut at P(|Z| >= T) < 2**-3 sends a few draws in a hundred to the exact geometric beyond it
+    # (|Z| = T + G, memorylessness); the whole law must still be the [GRS09] pmf [SCIPY], and a 30 %
+    # wrong scale must be rejected (power).
+    table = smp._magnitude_table(s, k, tail_bits=3)
+    assert table is not None and table[0].size <= 12
+    x = smp._discrete_laplace_by_table(_stream(s + 40 * k), s, k, N_GOF, table)
+    a = math.exp(-s / 2 ** k)
+    t = table[0].size
+    assert (np.abs(x) >= t).mean() > 0.02  # P(|Z| >= T) = 2 a**T / (1 + a), between 2**-3 a and 2**-3
+    assert gof(x, a)[1] > SEEDED_LEVEL
+    assert gof(x, math.exp(-1.3 * s / 2 ** k))[1] < SEEDED_LEVEL
+
+
+def test_table_sampler_undecided_words_take_the_exact_path():
+    # Bounds widened to about 2**-6 of each threshold leave about 1 word in 30 undecided; those are
+    # settled by further words against the exact thresholds (_below_after), and the law must stay the
+    # [GRS09] pmf [SCIPY]; settling them all one way (a wrong resolution) is rejected (power).
+    s, k = 1, 0
+    lo, hi = smp._magnitude_table(s, k)
+    wide = ((lo - (lo >> np.uint64(6))), (hi + (hi >> np.uint64(6))))
+    assert all(wide[0][i] >= wide[1][i + 1] for i in range(lo.size - 1))
+    a = math.exp(-1.0)
+    x = smp._discrete_laplace_by_table(_stream(57), s, k, N_GOF, wide)
+    assert gof(x, a)[1] > SEEDED_LEVEL
+    calls = []
+    real = smp._below_after
+
+    def count_calls(*args):
+        calls.append(1)
+        return real(*args)
+
+    try:
+        smp._below_after = count_calls
+        smp._discrete_laplace_by_table(_stream(58), s, k, 20_000, wide)
+        assert 200 < len(calls) < 2000
+        smp._below_after = lambda *args: True  # every undecided word counted as below its threshold
+        biased = smp._discrete_laplace_by_table(_stream(57), s, k, N_GOF, wide)
+    finally:
+        smp._below_after = real
+    assert gof(biased, a)[1] < SEEDED_LEVEL
+
+
+@pytest.mark.parametrize("tail_ones", [False, True])
+def test_table_sampler_settles_a_word_on_a_threshold_exactly(tail_ones):
+    # White box: a first word equal to lo_g (sign bit 0) is undecided about threshold g. V's next bits
+    # all 0 put V just above lo_g / 2**63 < t_g, so |Z| >= g (and = g); all 1 put it just below
+    # (lo_g + 1) / 2**63, above t_g when hi_g = lo_g + 1, so |Z| = g - 1.
+    s, k = 1, 1
+    lo, hi = smp._magnitude_table(s, k)
+    g = 3
+    assert int(hi[g - 1]) == int(lo[g - 1]) + 1
+    word = int(lo[g - 1]).to_bytes(8, "little")
+    more = (b"\xff" if tail_ones else b"\x00") * 64
+    stream = smp.ByteStream(_PrefixSource(1, word + more), 8)
+    z = smp._discrete_laplace_by_table(stream, s, k, 1, (lo, hi))
+    assert int(z[0]) == (g - 1 if tail_ones else g)
