@@ -897,7 +897,9 @@ def _magnitude_table(s: int, k: int, tail_bits: int = _TABLE_TAIL_BITS):
         p_hi = -((-p_hi * a_hi) >> _TABLE_WORK)
     if hi[0] > (1 << _MAG_BITS) - 1 or any(lo[i] < hi[i + 1] for i in range(len(lo) - 1)):
         return None
-    return np.array(lo, dtype=np.uint64), np.array(hi, dtype=np.uint64)
+    lo, hi = np.array(lo, dtype=np.uint64), np.array(hi, dtype=np.uint64)
+    lo.flags.writeable = hi.flags.writeable = False  # cached and shared: nobody may change a threshold
+    return lo, hi
 
 
 def _discrete_laplace_by_table(stream: ByteStream, s: int, k: int, n: int, table) -> np.ndarray:
