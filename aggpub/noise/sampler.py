@@ -878,6 +878,8 @@ def _magnitude_table(s: int, k: int, tail_bits: int = _TABLE_TAIL_BITS):
     from the rigorous bounds of ``a`` of :func:`exp_neg_bounds` and rounding
     every product down (lower bound) or up (upper bound).
     """
+    if s / (1 << k) * _TABLE_MAX < tail_bits * math.log(2) * 0.99:  # float estimate of T: far too many, skip
+        return None
     x = Fraction(s, 1 << k)
     one = 1 << _TABLE_WORK
     a_lo, a_hi = exp_neg_bounds(x, _TABLE_WORK + 8)
