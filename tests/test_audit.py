@@ -577,6 +577,18 @@ def test_monte_carlo_noise_follows_the_discrete_laplace_pmf():
         assert stats.chisquare(obs_w, expected).pvalue < 1e-6
 
 
+def test_monte_carlo_noise_as_float_is_the_same_whole_numbers():
+    # The audit adds its noise to float tables: the float form must be the very integers of the int form.
+    from aggpub.audit.draws import draw_noise
+    from aggpub.noise.mechanisms import GeometricMechanism
+
+    mech = GeometricMechanism(epsilon=0.5, sensitivity=1.0)
+    zi = draw_noise(mech, 50_000, np.random.default_rng(3))
+    zf = draw_noise(mech, 50_000, np.random.default_rng(3), as_float=True)
+    assert zi.dtype == np.int64 and zf.dtype == np.float64
+    assert np.array_equal(zf, zi) and np.all(zf == np.floor(zf)) and zi.std() > 1
+
+
 def test_triangles_per_node_match_networkx_on_random_graphs():
     # degree-ordered counting against networkx.triangles on Erdos-Renyi and power-law-ish graphs (ties in degree)
     from aggpub.audit.network_stats import adjacency, triangles_per_node

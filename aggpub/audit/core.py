@@ -283,13 +283,14 @@ def _monte_carlo(truth, mech, monte_carlo, source, deg_mc):
 
     def one_draw(i, rng):
         """Figures of fresh noise draw ``i`` (inputs already validated; runs in a worker thread)."""
-        noisy = st.count + draw_noise(mech, len(st.count), rng)
+        noisy = draw_noise(mech, len(st.count), rng, as_float=True)  # whole numbers in float64
+        noisy += st.count
         degree = None
         if deg_mc is not None and i < deg_mc["draws"]:  # the degree distribution's spread
             pmf, _ = deg.implied_degree_pmf(st.a, st.b, post_process(noisy, truth.cap_true, truth.threshold),
                                             truth.true_sizes, method=deg_mc["method"], terms=deg_mc["terms"])
             degree = distribution_distances(truth.true_hist, pmf)
-        table = post_process(noisy, truth.cap_pub, truth.threshold).astype(np.float64)
+        table = np.asarray(post_process(noisy, truth.cap_pub, truth.threshold), dtype=np.float64)
         del noisy
         errors = _Once(mc_errors)  # workloads whose answers are the cells themselves share one computation
         return degree, {w.name: errors(truth.true_answers[w.name], w.answer(table), truth.s_bound)
