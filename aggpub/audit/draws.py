@@ -15,8 +15,11 @@ import numpy as np
 
 from .metrics import percentiles
 
-#: Above this many cells the Monte Carlo runs one draw at a time (each draw holds a few copies of the table).
-MC_PARALLEL_MAX_CELLS = 5_000_000
+#: Above this many cells the Monte Carlo runs one draw at a time: two draws at once on 2,001,000-cell tables
+#: took 1.3-1.5 times as long as one after the other (their fresh arrays contend for memory, each draw holds
+#: a few copies of the table), while on 720,600 cells and fewer two at once were 1.1-1.6 times faster
+#: (``benchmarks/bench_mc_threads.py``, ``benchmarks/results/mc-threads-2026-12-03.txt``).
+MC_PARALLEL_MAX_CELLS = 1_000_000
 #: Monte Carlo draws when none are asked for: as many as fit ``MC_DEFAULT_VALUES`` values
 #: (draws x cells), between ``MC_DEFAULT_MIN`` and ``MC_DEFAULT_MAX``.
 MC_DEFAULT_MAX = 20
@@ -123,7 +126,7 @@ def map_draws(one_draw, draws: int, n_cells: int, source):
     stays reproducible and the draws stay independent); the work of a draw is
     numpy on whole tables, which runs outside Python's global interpreter lock,
     so two draws proceed at once on a two-core machine. Tables above
-    :data:`MC_PARALLEL_MAX_CELLS` cells run one draw at a time to bound memory.
+    :data:`MC_PARALLEL_MAX_CELLS` cells run one draw at a time (faster there, and less memory).
     """
     from concurrent.futures import ThreadPoolExecutor
 
