@@ -410,6 +410,26 @@ def test_workloads_built_by_column_answer_like_their_row_form(lesmis_release):
         assert np.array_equal(w.noise_variance(1.7), rows.noise_variance(1.7))
 
 
+def test_contact_matrix_of_own_values_is_the_cells_in_order():
+    """Every supernode holding its own value, in value order, on the whole table in row order: the workload is
+    the identity, its labels each cell's pair of values; the same queries as the general path gives for the
+    same cells listed in another order (which cannot take the short cut)."""
+    n = 12
+    a, b = comp.all_cells(n)
+    values = [f"v{i:02d}" for i in range(n)]
+    w = qw.contact_matrix_workload(a, b, values, "x")
+    assert w.cell_by_cell and w.n_queries == len(a)
+    assert (w.matrix != sparse.identity(len(a), format="csc")).nnz == 0
+    assert list(w.labels) == [(values[i], values[j]) for i, j in zip(a, b)]
+    perm = np.random.default_rng(4).permutation(len(a))
+    wp = qw.contact_matrix_workload(a[perm], b[perm], values, "x")
+    assert not wp.cell_by_cell and list(wp.labels) == list(w.labels)
+    table = np.random.default_rng(5).poisson(3.0, len(a)).astype(np.float64)
+    assert np.array_equal(wp.answer(table[perm]), w.answer(table))
+    assert np.array_equal(wp.noise_variance(1.5), w.noise_variance(1.5))
+    assert w.notes == wp.notes
+
+
 def test_cut_queries_dense_and_sparse_paths_agree(monkeypatch):
     """The dense-matrix evaluation (few supernodes) and the sparse one (many) give the same cuts, on the whole
     table and on a table listing only some cells (the dense matrix then starts from zeros)."""

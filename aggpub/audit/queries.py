@@ -38,6 +38,8 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy import sparse
 
+from ..cells import cell_index
+
 
 class PairLabels(Sequence):
     """The ``(value_a, value_b)`` label of each contact-matrix query, built when read.
@@ -117,8 +119,9 @@ class CutWorkload(Workload):
     """Cut queries answered through the dense supernode x supernode matrix of each table.
 
     For sets ``S`` and ``T`` (disjoint) the cut is ``1_S' M 1_T`` with ``M`` the
-    symmetric matrix of cell counts; all queries of a table cost one matrix
-    product, with nothing built in advance. Used up to
+    symmetric matrix of cell counts; all queries of a table cost one symmetric
+    matrix product (BLAS ``dsymm``, which reads only the triangle the cells
+    fill), with nothing built in advance. Used up to
     :data:`DENSE_CUT_MAX_GROUPS` supernodes (the matrix takes ``8 n^2`` bytes).
     """
 
@@ -127,36 +130,50 @@ class CutWorkload(Workload):
     sides: np.ndarray | None = None  # queries x supernodes: 0 first set, 1 second set, 2 neither
 
     def answer(self, cells: np.ndarray) -> np.ndarray:
+        from scipy.linalg import blas
+
         cells = np.asarray(cells, dtype=np.float64)
         rows = cells[None, :] if cells.ndim == 1 else cells
         n = self.sides.shape[1]
-        first, second, upper, lower = self._layout()
+        first, second, upper = self._layout()
         out = np.empty((len(rows), len(self.sides)))
-        m = np.empty(n * n)
-        complete = len(self.a) == n * (n + 1) // 2  # every entry of m is written below
+        complete = self._complete()  # every entry of the upper triangle is written below
+        m = np.empty(n * n) if complete else np.zeros(n * n)
         for i, row in enumerate(rows):
-            if not complete:
+            if not complete and i:
                 m.fill(0.0)
-            # both triangles at once (the diagonal is written twice with the same value; no cut counts it:
-            # the sets are disjoint, so its entries meet a zero of ``first`` or ``second``)
+            # the upper triangle only (row-major cells: one pass in order); BLAS's symmetric product reads
+            # that triangle alone. ``m`` seen as Fortran-ordered is the transpose, whose lower triangle it is;
+            # ``first.T`` is Fortran-ordered as it stands: no copy of either. The result is ``(first @ M).T``.
             m[upper] = row
-            m[lower] = row
-            out[i] = np.einsum("qi,qi->q", first @ m.reshape(n, n), second)
+            product = blas.dsymm(1.0, m.reshape(n, n).T, first.T, side=0, lower=1)
+            out[i] = np.einsum("qi,qi->q", product.T, second)
         return out[0] if cells.ndim == 1 else out
 
+    def _complete(self) -> bool:
+        n = self.sides.shape[1]
+        return len(self.a) == n * (n + 1) // 2
+
     def _layout(self):
-        """Indicators of the two sets and flat positions of every cell in the square matrix (made once)."""
+        """Indicators of the two sets and the flat position of every cell in the square matrix's upper
+        triangle (made once)."""
         cached = getattr(self, "_cached_layout", None)
         if cached is None:
             n = self.sides.shape[1]
             cached = ((self.sides == 0).astype(np.float64), (self.sides == 1).astype(np.float64),
-                      self.a * n + self.b, self.b * n + self.a)
+                      self.a * n + self.b)
             self._cached_layout = cached
         return cached
 
     def noise_variance(self, cell_variance: float) -> np.ndarray:
-        # each query sums the cells that cross it, once each: as many as its answer on a table of ones
-        return self.answer(np.ones(self.n_cells)) * float(cell_variance)
+        # each query sums the cells that cross it, once each: as many as its answer on a table of ones;
+        # on the whole table that is |S| |T| (one cell per pair of a supernode of each set; disjoint sets)
+        if self._complete():
+            first, second, _ = self._layout()
+            crossing = first.sum(axis=1) * second.sum(axis=1)
+        else:
+            crossing = self.answer(np.ones(self.n_cells))
+        return crossing * float(cell_variance)
 
     @property
     def n_queries(self) -> int:
@@ -189,16 +206,25 @@ def contact_matrix_workload(a, b, values, attribute: str) -> Workload:
     values = np.asarray(values, dtype=object)
     cats, code = np.unique(values.astype(str), return_inverse=True)
     k = len(cats)
-    ca, cb = code[a], code[b]
-    lo, hi = np.minimum(ca, cb), np.maximum(ca, cb)
-    pair = lo * k - (lo * (lo - 1)) // 2 + (hi - lo)  # upper-triangle index of (lo, hi)
-    # the pairs that occur, in increasing order, and each cell's row among them (a counting pass over
-    # the k (k + 1) / 2 possible pairs instead of sorting every cell)
-    used = np.flatnonzero(np.bincount(pair, minlength=k * (k + 1) // 2))
-    row_of = np.full(k * (k + 1) // 2, -1, dtype=np.int64)
-    row_of[used] = np.arange(len(used))
-    q = row_of[pair]
     n_cells = len(a)
+    # every supernode holding its own value, in the order of the values: a cell's pair of values is the
+    # cell itself (a <= b), so its upper-triangle index is the cell's own; when the cells are the whole
+    # table in row order, every pair occurs, in order, and each query is one cell
+    q = None
+    if k == len(values) and n_cells == k * (k + 1) // 2 and np.array_equal(code, np.arange(k)):
+        pair = cell_index(a, b, k)
+        if np.array_equal(pair, np.arange(n_cells)):
+            used = q = pair
+    if q is None:
+        ca, cb = code[a], code[b]
+        lo, hi = np.minimum(ca, cb), np.maximum(ca, cb)
+        pair = lo * k - (lo * (lo - 1)) // 2 + (hi - lo)  # upper-triangle index of (lo, hi)
+        # the pairs that occur, in increasing order, and each cell's row among them (a counting pass over
+        # the k (k + 1) / 2 possible pairs instead of sorting every cell)
+        used = np.flatnonzero(np.bincount(pair, minlength=k * (k + 1) // 2))
+        row_of = np.full(k * (k + 1) // 2, -1, dtype=np.int64)
+        row_of[used] = np.arange(len(used))
+        q = row_of[pair]
     # one entry per column: built as CSC without sorting
     mat = sparse.csc_matrix((np.ones(n_cells), q, np.arange(n_cells + 1)), shape=(len(used), n_cells))
     # the value pair of upper-triangle index u, without the k x k index arrays of numpy.triu_indices
