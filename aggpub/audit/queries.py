@@ -98,7 +98,7 @@ class Workload:
 
     def noise_variance(self, cell_variance: float) -> np.ndarray:
         """Variance of each query answer from independent cell noise (before clamping)."""
-        if self.matrix is None:
+        if self.matrix is None or self.cell_by_cell:  # one cell of weight 1 a query
             return np.full(self.n_cells, float(cell_variance))
         m = self.matrix  # row sums of the squared entries, without a squared copy of the matrix
         rows = m.indices if m.format == "csc" else np.repeat(np.arange(m.shape[0]), np.diff(m.indptr))
