@@ -17,7 +17,7 @@ import pytest
 import aggpub
 from aggpub.cells import all_cells, possible_pairs
 from aggpub.estimates import degrees as dest
-from aggpub.estimates.counts import blue_cells, consistent_counts, degree_totals, project_cells
+from aggpub.estimates.counts import _Rows, blue_cells, consistent_counts, degree_totals, project_cells
 from aggpub.noise.mechanisms import GeometricMechanism
 from aggpub.noise.sampler import SeededRandomSource
 
@@ -70,6 +70,32 @@ def test_projection_equals_scipy_constrained_least_squares():
         assert ours.max_violation < 1e-6
         np.testing.assert_allclose(ours.x, ref.x, atol=1e-4)
         assert (ours.x >= 0).all() and (ours.x <= cap).all()
+
+
+@pytest.mark.parametrize("seed", [0, 3])
+def test_projection_does_not_crawl_when_the_dual_cannot_measure_the_last_step(seed):
+    # Regression (found on a 2,001,000-cell release that took 64 s instead of 0.6): a Newton step that lands
+    # just above the goal needs, for the next one, an ascent of the dual (a sum over every cell) below the
+    # dual's rounding; the Armijo test then rejected the full step, accepted tiny ones and crawled through
+    # all 100 Newton steps with 40 halvings each. Reproduced small: the goal set just below the violation of
+    # the first step that brings it under 1e-3 (these seeds crawled to 100 steps before the fix). The full
+    # step must be taken on the violation it leaves, and the result must still be the projection.
+    rng = np.random.default_rng(seed)
+    n = 60
+    sizes = rng.integers(20, 40, n)
+    a, b = all_cells(n)
+    cap = possible_pairs(sizes, a, b)
+    y = rng.binomial(cap, 0.02) + rng.laplace(0, 30, len(a))
+    xb = blue_cells(y, 1800.0, a, b, n)
+    r = _Rows(a, b, n).totals(xb)  # the totals as consistent_counts computes them (their rounding matters here)
+    scale = max(1.0, float(np.abs(np.clip(r, 0, degree_totals(cap, a, b, n))).max()))
+    vs = [project_cells(xb, a, b, n, r, cap, max_newton=k).max_violation for k in range(1, 6)]
+    k = next(i for i, v in enumerate(vs) if v < 1e-3)
+    goal = vs[k] / 3
+    res = project_cells(xb, a, b, n, r, cap, tol=goal / scale)
+    assert res.newton_steps <= k + 3 and res.max_violation <= goal
+    ref = project_cells(xb, a, b, n, r, cap)  # the default goal: the same cells
+    np.testing.assert_allclose(res.x, ref.x, rtol=0, atol=1e-6)
 
 
 def test_no_noise_returns_the_true_cells_exactly():

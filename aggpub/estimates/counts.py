@@ -200,16 +200,23 @@ def project_cells(x0, a, b, n: int, r, cap, *, full_table: bool = True, tol: flo
         if slope <= 0:
             d, slope = f / (h_diag + reg), float(f @ (f / (h_diag + reg)))
         t = 1.0
+        # the dual is a sum over every cell: differences below this are its rounding, not its change
+        rounding = 1e-12 * max(1.0, abs(g))
+        worst = float(np.abs(f).max())
         while True:
             lam_new = lam + t * d
             z_new, x_new = primal(lam_new)
             f_new = rows.totals(x_new) - r
             g_new = dual(lam_new, x_new, f_new)
-            if g_new >= g + 1e-4 * t * slope or t < 1e-12:
+            if g_new >= g + 1e-4 * t * slope:
+                break  # Armijo: enough ascent
+            if 1e-4 * t * slope <= rounding and float(np.abs(f_new).max()) < worst:
+                break  # the ascent asked for is below the dual's rounding: the smaller violation decides
+            if t < 1e-12:
                 break
             t *= 0.5
-        if t < 1e-12 and g_new < g:
-            break  # no further ascent: the constraints cannot all hold
+        if t < 1e-12:
+            break  # no step the dual or the violation can tell apart: the constraints hold as well as they can
         lam, z, x, f, g = lam_new, z_new, x_new, f_new, g_new
     totals = rows.totals(x)
     viol = float(np.abs(totals - r).max()) if n else 0.0
