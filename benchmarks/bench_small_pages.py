@@ -1,13 +1,16 @@
-"""numpy's huge-page advice and the release's time: on during the audit, off during the audit, off throughout.
+"""numpy's huge-page advice and the release's time: on, off during the post-processing and audit, off throughout.
 
 On Linux numpy asks the kernel for transparent huge pages for arrays of 4 MiB or more; with the kernel's
-``defrag = madvise`` each such allocation may first compact memory. ``aggpub.audit.run.small_pages``
-switches the advice off while the audit and its report run. This script times whole ``aggpub release``
+``defrag = madvise`` each such allocation may first compact memory. ``aggpub.pages.small_pages``
+switches the advice off while the post-processing and the audit with its report run. This script times whole ``aggpub release``
 processes three ways, interleaved:
 
-``on``      the advice left on (``small_pages`` replaced by a no-op in the child)
-``audit``   the default: off during the audit and report
+``on``      the advice left on (``small_pages`` replaced by a no-op where the release uses it)
+``audit``   the default: off during the post-processing and the audit with its report
 ``off``     off for the whole process (``NUMPY_MADVISE_HUGEPAGE=0``, and ``small_pages`` a no-op)
+
+(Until 448d9af the default switched it off around the audit alone; ``results/small-pages-2026-12-03.txt``
+was measured then.)
 
 and prints the minimum and median wall time, the median system time and the largest peak (``ru_maxrss``)
 of each. The kernel's settings are printed too: the effect depends on them and on how fragmented the
@@ -36,7 +39,8 @@ from _procs import child_env  # noqa: E402
 
 CHILD = ("import sys, contextlib\n"
          "if sys.argv.pop(1) != 'audit':\n"
-         "    import aggpub.audit.run as r; r.small_pages = contextlib.nullcontext\n"
+         "    import aggpub.audit.run as r, aggpub.released as p\n"
+         "    r.small_pages = p.small_pages = contextlib.nullcontext\n"
          "from aggpub import cli; sys.argv[0] = 'aggpub'; cli.run()\n")
 
 

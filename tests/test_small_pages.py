@@ -1,4 +1,4 @@
-"""``aggpub.audit.run.small_pages``: numpy's huge-page advice off while the audit runs, restored after.
+"""``aggpub.pages.small_pages``: numpy's huge-page advice off around the post-processing and the audit, restored after.
 
 A speed measure only (see its docstring); these tests check that it restores what was there, also when
 two audits overlap or one fails, and that it does nothing when numpy has no such switch.
@@ -10,7 +10,7 @@ import threading
 
 import pytest
 
-from aggpub.audit import run
+from aggpub import pages as run
 
 
 class _Switch:

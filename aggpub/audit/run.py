@@ -8,52 +8,11 @@ written even when the gate refuses the release, so that the refusal is explained
 
 from __future__ import annotations
 
-__all__ = ["report_folder", "audit_and_report", "small_pages"]
+__all__ = ["report_folder", "audit_and_report"]
 
-import contextlib
-import threading
 from pathlib import Path
 
-_PAGES_LOCK = threading.Lock()
-_PAGES_STATE = {"depth": 0, "before": None}
-
-
-def _huge_page_setter():
-    """numpy's switch for its huge-page advice (``NUMPY_MADVISE_HUGEPAGE`` at run time), or ``None``."""
-    try:
-        from numpy._core import multiarray
-    except ImportError:  # numpy 1.x
-        from numpy.core import multiarray
-    return getattr(multiarray, "_set_madvise_hugepage", None)
-
-
-@contextlib.contextmanager
-def small_pages():
-    """numpy's advice to back large arrays with huge pages, switched off while the block runs.
-
-    On Linux numpy asks the kernel for transparent huge pages for every array of 4 MiB or more. With the
-    kernel's common setting (``defrag = madvise``) each such allocation may stop to compact memory first,
-    and the audit makes hundreds of short-lived arrays of a table's size: measured on a 2-core machine, a
-    10M-contact release took 4.4-4.7 s with the advice off during the audit against 5.4-5.8 s with it on
-    (system time 1.0 s against 2.3-2.7 s; 4.6-5.0 s with it off for the whole process; three interleaved
-    runs each). The advice is restored afterwards, once the last of any concurrent audits ends; without
-    the switch (another numpy) nothing changes. Speed only: every array holds the same values.
-    """
-    setter = _huge_page_setter()
-    if setter is None:
-        yield
-        return
-    with _PAGES_LOCK:
-        if _PAGES_STATE["depth"] == 0:
-            _PAGES_STATE["before"] = setter(False)
-        _PAGES_STATE["depth"] += 1
-    try:
-        yield
-    finally:
-        with _PAGES_LOCK:
-            _PAGES_STATE["depth"] -= 1
-            if _PAGES_STATE["depth"] == 0:
-                setter(_PAGES_STATE["before"])
+from ..pages import small_pages
 
 
 def report_folder(out: Path, report, overwrite: bool) -> Path:

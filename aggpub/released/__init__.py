@@ -21,6 +21,7 @@ import numpy as np
 from ..budget import sensitivity
 from ..cells import n_cells
 from ..errors import PolicyError
+from ..pages import small_pages
 from .degree_histograms import release_degree_histograms
 from .degree_sequences import release_degree_sequences, sorted_sequences
 from .sizes import checked_sizes, release_cell_counts, released_sizes
@@ -231,7 +232,8 @@ def release_statistics(network, grouping, policy, sizes, epsilons: dict, source,
         run.mechanisms.update(mech if isinstance(mech, dict) else {stat.name: mech})
     if run.tables:
         progress("estimating non-negative, consistent counts and degrees (post-processing)")
-        post_process(run, sizes, people=int(np.asarray(sizes).sum()))
+        with small_pages():  # many short-lived arrays of the table's size (see aggpub.pages)
+            post_process(run, sizes, people=int(np.asarray(sizes).sum()))
     return run
 
 
