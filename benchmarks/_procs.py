@@ -75,7 +75,7 @@ def run_child(cmd, *, timeout=None, env=None, spill_dir=None, cwd=None):
     checkout imports that checkout's ``aggpub``, whichever venv it belongs to.
 
     ``env`` defaults to :func:`child_env`. The child's CPU seconds (user + system, from ``wait4``)
-    are kept in ``run_child.cpu_seconds``. The exit code is ``"timeout"`` when the child was stopped
+    are kept in ``run_child.cpu_seconds``, the system part alone in ``run_child.system_seconds``. The exit code is ``"timeout"`` when the child was stopped
     after ``timeout`` seconds. With
     ``spill_dir``, the peak size of the spill folders there is kept in ``run_child.spill_peak_mb``.
     """
@@ -125,6 +125,7 @@ def run_child(cmd, *, timeout=None, env=None, spill_dir=None, cwd=None):
     # CPU seconds of the child and its waited-for descendants (user + system): steadier than wall time
     # on a loaded machine, though it counts DuckDB's threads all together
     run_child.cpu_seconds = usage.ru_utime + usage.ru_stime
+    run_child.system_seconds = usage.ru_stime  # the kernel's share (page faults, compaction of memory)
     return seconds, usage.ru_maxrss / 1024, peak[0] / 1024, code, stdout, stderr
 
 

@@ -26,16 +26,13 @@ Usage::
 from __future__ import annotations
 
 import argparse
-import os
 import statistics
-import subprocess
 import sys
 import tempfile
-import time
 from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
-from _procs import child_env  # noqa: E402
+from _procs import child_env, run_child  # noqa: E402
 
 CHILD = ("import sys, contextlib\n"
          "if sys.argv.pop(1) != 'audit':\n"
@@ -45,21 +42,18 @@ CHILD = ("import sys, contextlib\n"
 
 
 def run_once(python: str, way: str, release_args: list, out: Path) -> tuple:
+    """One release the given way: (wall seconds, user seconds, system seconds, peak GB)."""
     env = child_env()
     if way == "off":
         env["NUMPY_MADVISE_HUGEPAGE"] = "0"
     else:
         env.pop("NUMPY_MADVISE_HUGEPAGE", None)
     cmd = [python, "-c", CHILD, way, "release", *release_args, "--out", str(out), "--overwrite", "--quiet"]
-    t0 = time.perf_counter()
-    proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, env=env, cwd=out.parent)
-    _, status, usage = os.wait4(proc.pid, 0)
-    wall = time.perf_counter() - t0
-    err = proc.stderr.read().decode(errors="replace")
-    proc.stderr.close()
-    if status:
-        raise SystemExit(f"release failed ({status}): {' '.join(cmd)}\n{err}")
-    return wall, usage.ru_utime, usage.ru_stime, usage.ru_maxrss / 1024 ** 2
+    wall, maxrss_mb, _, code, _, err = run_child(cmd, env=env, cwd=out.parent)
+    if code != 0:
+        raise SystemExit(f"release failed ({code}): {' '.join(cmd)}\n{err}")
+    system = run_child.system_seconds
+    return wall, run_child.cpu_seconds - system, system, maxrss_mb / 1024
 
 
 def kernel_setting(name: str) -> str:

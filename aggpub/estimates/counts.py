@@ -208,14 +208,14 @@ def project_cells(x0, a, b, n: int, r, cap, *, full_table: bool = True, tol: flo
             z_new, x_new = primal(lam_new)
             f_new = rows.totals(x_new) - r
             g_new = dual(lam_new, x_new, f_new)
-            if g_new >= g + 1e-4 * t * slope:
-                break  # Armijo: enough ascent
-            if 1e-4 * t * slope <= rounding and float(np.abs(f_new).max()) < worst:
-                break  # the ascent asked for is below the dual's rounding: the smaller violation decides
-            if t < 1e-12:
+            # Armijo (enough ascent); or, when the ascent asked for is below the dual's rounding, a smaller
+            # largest violation decides
+            taken = g_new >= g + 1e-4 * t * slope or (1e-4 * t * slope <= rounding
+                                                      and float(np.abs(f_new).max()) < worst)
+            if taken or t < 1e-12:
                 break
             t *= 0.5
-        if t < 1e-12:
+        if not taken:
             break  # no step the dual or the violation can tell apart: the constraints hold as well as they can
         lam, z, x, f, g = lam_new, z_new, x_new, f_new, g_new
     totals = rows.totals(x)
