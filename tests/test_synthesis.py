@@ -391,3 +391,59 @@ def test_false_position_finds_the_root_scipy_finds():
     seen = []
     root = _false_position(lambda x: seen.append(x) or (x - 0.5), 0.2, 5)
     assert abs(root - 0.5) <= 0.2 and len(seen) == 3  # the two ends, then one interior trial
+
+
+# --------------------------------------------------------------------------- the sampler's sorting helpers
+# Reference: numpy's own searchsorted, unique and lexsort (the slower forms these helpers replace).
+
+def test_run_starts_equals_searchsorted():
+    from aggpub.synthesis.degree_corrected import _run_starts
+
+    rng = np.random.default_rng(3)
+    for n in (0, 1, 2, 50, 5000):
+        x = np.sort(rng.integers(0, max(n // 4, 1), n))
+        assert np.array_equal(_run_starts(x), np.searchsorted(x, x, side="left"))
+
+
+def test_new_first_occurrences_equals_dropping_present_keys_then_numpy_unique():
+    from aggpub.synthesis.degree_corrected import _new_first_occurrences
+
+    rng = np.random.default_rng(4)
+    for n in (0, 1, 30, 20000):
+        keys = rng.integers(0, max(n // 2, 1), n)
+        cell = rng.integers(0, 99, n)
+        chosen = np.unique(rng.integers(0, max(n // 2, 1), n // 5))
+        extra = np.unique(rng.integers(0, max(n // 2, 1), n // 20))
+        gone = np.isin(keys, chosen) | np.isin(keys, extra)
+        kept = np.flatnonzero(~gone)
+        _, first = np.unique(keys[kept], return_index=True)  # numpy: first occurrence of each value
+        idx = np.sort(kept[first])
+        got_keys, got_cell = _new_first_occurrences(keys, cell, chosen, extra)
+        assert np.array_equal(got_keys, keys[idx]) and np.array_equal(got_cell, cell[idx])
+
+
+@pytest.mark.parametrize("packed", [True, False])
+def test_shuffled_order_sorts_by_the_keys_and_breaks_ties_uniformly(monkeypatch, packed):
+    """Sorted by the keys (as numpy.lexsort sorts them); each of the 3! orders of three tied items equally likely
+    (chi-square, 5 degrees of freedom), through the packed key and through the lexsort fallback alike."""
+    from scipy import stats
+
+    import aggpub.synthesis.degree_corrected as dc
+
+    if not packed:
+        monkeypatch.setattr(dc, "_PACK_LIMIT", 1)
+    rng = np.random.default_rng(5)
+    major = np.array([2, 0, 1, 0, 2, 0, 1])
+    minor = np.array([5, 1, 0, 1, 5, 1, 3])
+    seen = {}
+    for _ in range(3000):
+        order = dc._shuffled_order(7, rng, major, minor)
+        assert np.array_equal(np.lexsort((minor[order], major[order])), np.arange(7))  # already sorted
+        tied = tuple(int(i) for i in order if major[i] == 0)  # items 1, 3, 5: equal on both keys
+        seen[tied] = seen.get(tied, 0) + 1
+    assert sorted(seen) == sorted([(1, 3, 5), (1, 5, 3), (3, 1, 5), (3, 5, 1), (5, 1, 3), (5, 3, 1)])
+    assert stats.chisquare(list(seen.values())).pvalue > 1e-4
+    # the two paths give the same order for the same generator state
+    a = dc._shuffled_order(7, np.random.default_rng(9), major, minor)
+    monkeypatch.setattr(dc, "_PACK_LIMIT", 1 if packed else 2 ** 62)
+    assert np.array_equal(a, dc._shuffled_order(7, np.random.default_rng(9), major, minor))
