@@ -20,6 +20,7 @@ import numpy as np
 import pyarrow as pa
 
 from .audit.run import audit_and_report, report_folder
+from .audit.sampled import discard_spare, start_spare
 from .budget import ReleaseBudget, check_contact_cap
 from .budget.ledger import ChargeOnFirstDraw, ReleaseLedger
 from .bundle.guide import render_guide
@@ -35,6 +36,7 @@ from .policy import ReleasePolicy, epsilon_shares, parse_policy, read_policy
 from .progress import Progress, silent
 from .released import checked_sizes, release_statistics
 from .results import Release, ReleaseRun  # re-exported: aggpub.pipeline.Release stays valid
+from .warm import import_ahead
 
 
 def build_release(network: Network, policy: ReleasePolicy, *, seed: int | None = None, progress=None,
@@ -209,10 +211,13 @@ def run_release(policy, edges, people, out, *, seed=None, overwrite=False, sourc
     try:
         policy = applied_policy(policy, source=source, target=target, node=node, weight=weight,
                                 drop_unknown=drop_unknown)  # the manifest records what was applied
+        ahead = import_ahead()  # what the rest of the release needs, imported while the engine reads
         network = load_policy_inputs(policy, edges, people, debug=debug, engine=eng,
                                      on_refusal=ledger.charge if ledger is not None else None)
+        ahead.wait()
         for line in network.report.lines(private_counts=policy.privacy.unit != "person"):
             progress(line)
+        start_spare(network.n_edges)  # the audit's helper interpreter starts up while the release is built
         preflight = preflight_gate(policy, network, progress)
         if ledger is not None:
             ledger.attach_input(network.ids)  # the people's keyed fingerprint, kept in the ledger only
@@ -234,6 +239,7 @@ def run_release(policy, edges, people, out, *, seed=None, overwrite=False, sourc
             ledger.finish(ok=False)
         raise
     finally:
+        discard_spare()
         eng.close()  # frees the engine's memory and removes its spill folder
     if ledger is not None:
         ledger.finish(ok=True)

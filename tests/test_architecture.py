@@ -397,3 +397,13 @@ def test_pipeline_check_catches_a_long_pipeline(tmp_path):
     assert pipeline_lines(root) == MAX_PIPELINE_LINES
     root = _plant(tmp_path / "short", {"pipeline.py": "x = 1\n" * (MAX_PIPELINE_LINES - 1)})
     assert pipeline_lines(root) == MAX_PIPELINE_LINES - 1
+
+
+def test_the_modules_imported_ahead_exist():
+    """``aggpub.warm.AFTER_READING`` names importable modules (a renamed module would silently lose the speed)."""
+    import importlib
+
+    from aggpub.warm import AFTER_READING
+
+    for name in AFTER_READING:
+        importlib.import_module(name)

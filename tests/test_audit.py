@@ -648,9 +648,11 @@ def test_structure_figures_are_the_same_in_a_helper_process(lesmis_release, monk
     from aggpub.audit.core import _start_structure
     from aggpub.audit.truth import truth_of_release
     plan = _start_structure(rel, truth_of_release(rel), 1, np.random.default_rng(0), parallel=True)
-    handle = plan["release_side"]
+    handle = plan["beside"]
     assert isinstance(handle, sampled._Helper)
-    assert len(handle.result()["runs"]) == 1 and "figures" in handle.answer
+    release_side, true = handle.result()
+    assert len(release_side["runs"]) == 1 and "figures" in handle.answer
+    assert true["stats"]["contacts"] == rel.network.n_edges
     # a broken helper (exits at once): the same figures, computed in this process
     monkeypatch.setattr(sampled, "_CHILD", "import sys; sys.exit(3)")
     assert audit(True) == here
@@ -659,6 +661,77 @@ def test_structure_figures_are_the_same_in_a_helper_process(lesmis_release, monk
     other = audit_release(rel, monte_carlo=0, structure_samples=2, seed=5,
                           source=SeededRandomSource(1), parallel_structure=False)
     assert _structure_json(other) != here
+
+
+def test_a_spare_helper_is_used_or_ended(lesmis_release, monkeypatch):
+    """A helper started ahead (``start_spare``) is the one the audit hands its jobs to; one not used is ended;
+    none is started below ``PARALLEL_MIN_CONTACTS`` or above ``MAX_STRUCTURE_EDGES``. Les Miserables
+    co-appearances (Knuth, The Stanford GraphBase, 1993, as networkx ships it)."""
+    from aggpub.audit import sampled
+    from aggpub.audit.core import _start_structure
+    from aggpub.audit.truth import truth_of_release
+
+    monkeypatch.setattr(sampled.os, "cpu_count", lambda: 2)
+    for contacts in (sampled.PARALLEL_MIN_CONTACTS - 1, sampled.MAX_STRUCTURE_EDGES + 1):
+        sampled.start_spare(contacts)
+        assert sampled._SPARE == []
+    sampled.start_spare(sampled.PARALLEL_MIN_CONTACTS)
+    sampled.start_spare(sampled.PARALLEL_MIN_CONTACTS)  # at most one
+    assert len(sampled._SPARE) == 1
+    spare = sampled._SPARE[0]
+    rel = lesmis_release[3]
+    plan = _start_structure(rel, truth_of_release(rel), 1, np.random.default_rng(0), parallel=True)
+    try:
+        assert plan["beside"].proc is spare and sampled._SPARE == []
+        release_side, true = plan["beside"].result()
+        assert len(release_side["runs"]) == 1 and "figures" in plan["beside"].answer
+    finally:
+        plan["beside"].close()
+    # a spare nobody takes is ended, and so is one when the jobs run in this process
+    sampled.start_spare(sampled.PARALLEL_MIN_CONTACTS)
+    spare = sampled._SPARE[0]
+    sampled.discard_spare()
+    assert sampled._SPARE == [] and spare.poll() is not None
+    sampled.start_spare(sampled.PARALLEL_MIN_CONTACTS)
+    spare = sampled._SPARE[0]
+    plan = _start_structure(rel, truth_of_release(rel), 1, np.random.default_rng(0), parallel=False)
+    assert isinstance(plan["beside"], sampled._InProcess)
+    assert sampled._SPARE == [] and spare.poll() is not None
+
+
+def test_a_release_ends_its_spare_helper(tmp_path, monkeypatch):
+    """``run_release`` starts a spare helper once the inputs are read and leaves none behind, whether the audit
+    took it or the release failed before the audit. Zachary's karate club (Zachary 1977, as networkx ships it),
+    with the helper's threshold lowered to its 78 contacts."""
+    import pyarrow.parquet as pq
+
+    from aggpub.audit import sampled
+    from aggpub.pipeline import run_release
+
+    from .conftest import graph_tables, simple_policy
+
+    G = nx.karate_club_graph()
+    edges, people = graph_tables(G, {"club": {n: G.nodes[n]["club"] for n in G}})
+    ep, pp = tmp_path / "e.parquet", tmp_path / "p.parquet"
+    pq.write_table(edges, ep)
+    pq.write_table(people, pp)
+    monkeypatch.setattr(sampled, "PARALLEL_MIN_CONTACTS", 10)
+    monkeypatch.setattr(sampled.os, "cpu_count", lambda: 2)
+    started = []
+    real_spawn = sampled._spawn
+    monkeypatch.setattr(sampled, "_spawn", lambda: started.append(real_spawn()) or started[-1])
+    policy = parse_policy(simple_policy(["club"], min_size=5))
+    run_release(policy, ep, pp, tmp_path / "out", seed=1)
+    assert len(started) == 1 and sampled._SPARE == [] and started[0].poll() is not None
+
+    def fail(*args, **kwargs):
+        raise RuntimeError("stop before the audit")
+
+    import aggpub.pipeline as pipeline
+    monkeypatch.setattr(pipeline, "build_release", fail)
+    with pytest.raises(RuntimeError):
+        run_release(policy, ep, pp, tmp_path / "out2", seed=1)
+    assert len(started) == 2 and sampled._SPARE == [] and started[1].poll() is not None
 
 
 def test_structure_figures_do_not_depend_on_the_engines_row_order(lesmis_release, monkeypatch):

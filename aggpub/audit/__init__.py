@@ -30,17 +30,23 @@ Workload builders on cells (``aggpub.audit.queries``): ``superedge_cells_workloa
 
 from __future__ import annotations
 
-from .core import audit_release
-from .degrees import implied_degree_pmf
-from .metrics import (
-    distribution_distances,
-    error_summary,
-    ks_distance,
-    l1_distance,
-    relative_errors,
-    wasserstein1_distance,
-)
-from .network_stats import structure_statistics
+from typing import TYPE_CHECKING
+
+from .._lazy import lazy_attributes
+
+_LAZY = {
+    "audit_release": ".core", "implied_degree_pmf": ".degrees", "structure_statistics": ".network_stats",
+    "distribution_distances": ".metrics", "error_summary": ".metrics", "ks_distance": ".metrics",
+    "l1_distance": ".metrics", "relative_errors": ".metrics", "wasserstein1_distance": ".metrics",
+}
+__getattr__, __dir__ = lazy_attributes(__name__, globals(), _LAZY)
+
+if TYPE_CHECKING:  # the same names, eagerly, for type checkers and editors
+    from .core import audit_release
+    from .degrees import implied_degree_pmf
+    from .metrics import (distribution_distances, error_summary, ks_distance, l1_distance, relative_errors,
+                          wasserstein1_distance)
+    from .network_stats import structure_statistics
 
 __all__ = [
     "audit_release",

@@ -23,11 +23,10 @@ from ..released import release_degree_histograms
 from . import degrees as deg
 from . import network_stats as struct
 from .draws import audit_source, default_monte_carlo, draw_noise, map_draws, mc_errors, post_process, spread
+from .sampled import MAX_STRUCTURE_EDGES
 from .metrics import distribution_distances, error_summary
 from .truth import released_cells, truth_of_release
 
-#: Largest network (contacts) whose structure the audit computes in memory.
-MAX_STRUCTURE_EDGES = 500_000  # above this the sampled-structure comparison is skipped (too slow for a release)
 RESIDUAL = "*"
 CONFIDENTIAL_NOTE = ("CONFIDENTIAL: true-against-released figures for the board. They decide nothing by "
                      "themselves; refusing or retrying a release because the truth looked bad is a "
@@ -98,14 +97,14 @@ def audit_release(release, *, monte_carlo: int | None = None, source=None, struc
     # the release's synthetic networks start now (in a helper process on large networks) while the rest runs
     structure = _start_structure(release, truth, structure_samples, rng, parallel_structure)
     try:
-        return _audit_sections(release, truth, structure, rng, monte_carlo, source, sanity_bound,
+        return _audit_sections(release, truth, structure, monte_carlo, source, sanity_bound,
                                structure_samples, progress)
     finally:
-        if "release_side" in structure:
-            structure["release_side"].close()
+        if "beside" in structure:
+            structure["beside"].close()
 
 
-def _audit_sections(release, truth, structure, rng, monte_carlo, source, sanity_bound, structure_samples,
+def _audit_sections(release, truth, structure, monte_carlo, source, sanity_bound, structure_samples,
                     progress) -> dict:
     """The audit's sections in turn (see :func:`audit_release`)."""
     if monte_carlo is None:
@@ -145,7 +144,7 @@ def _audit_sections(release, truth, structure, rng, monte_carlo, source, sanity_
         if views.job is not None:
             progress("audit: contact views (true matrices against the released estimates)")
             out["contact_views"] = views.result(plot)
-    out["structure"] = _structure_section(release, truth, structure, rng, progress)
+    out["structure"] = _structure_section(structure, progress)
     if "ks" in dd:
         out["error_split"] = _error_split(dd, out["queries"])
     out["_plot"] = plot
@@ -405,11 +404,12 @@ def _error_split(dd, queries) -> dict:
 
 
 def _start_structure(release, truth, samples, rng, parallel=None) -> dict:
-    """Check what the structure section can do and start the release's side (in a helper process if worth it).
+    """Check what the structure section can do; start the release's side and the true network's figures (in a
+    helper process if worth it).
 
     Returns ``{"skipped": reason}`` or the plan :func:`_structure_section` finishes. Each
-    side's generator is seeded here from the audit's, so the figures do not depend on
-    where a side runs.
+    side's generator, and the true network's percolations', is seeded here from the
+    audit's, so the figures do not depend on where they are computed.
     """
     network, st = release.network, truth.st
     if st is None or "superedges" not in release.tables:
@@ -421,22 +421,32 @@ def _start_structure(release, truth, samples, rng, parallel=None) -> dict:
                            "is done in memory and was left out"}
     from ..synthesis import inputs_from_release, inputs_from_truth
     from . import fidelity as fid
-    from .sampled import SideJob, start_side
+    from .sampled import SideJob, TrueJob, start_jobs
 
     codes = {c: np.unique(np.asarray(vals, dtype=str), return_inverse=True)[1] for c, vals in truth.labels.items()}
     T = fid.transmissibility(truth.true_deg)
-    seeds = rng.integers(0, 2 ** 63 - 1, size=2)
+    seeds = rng.integers(0, 2 ** 63 - 1, size=3)
     released_inputs = inputs_from_release(release)
     jobs = {side: SideJob(inputs=inputs, codes=codes, samples=int(samples), transmissibility=T,
                           percolations=FIDELITY_PERCOLATIONS, seed=int(seed))
             for side, inputs, seed in (("release", released_inputs, seeds[0]),
                                        ("grouping_alone", inputs_from_truth(release, like=released_inputs),
                                         seeds[1]))}
+    u, v = network.engine.edge_arrays()
+    # one order whatever order the engine returns the rows in (a parallel scan's varies from run to run): the
+    # percolations draw per edge in this order, so a seeded audit gives the same figures every time
+    order = np.lexsort((v, u))
+    assignment = release.grouping.assignment
+    true_job = TrueJob(u=u[order], v=v[order], n=int(network.n_people),
+                       categories={c: code[assignment] for c, code in codes.items()}, transmissibility=T,
+                       percolations=FIDELITY_PERCOLATIONS, seed=int(seeds[2]))
+    # the release's side and the true network's figures (in a helper process on large networks); this process
+    # draws the grouping-alone side after the other sections
     return {"codes": codes, "T": T, "jobs": jobs, "samples": int(samples),
-            "release_side": start_side(jobs["release"], int(network.n_edges), parallel)}
+            "beside": start_jobs((jobs["release"], true_job), int(network.n_edges), parallel)}
 
 
-def _structure_section(release, truth, plan, rng, progress) -> dict:
+def _structure_section(plan, progress) -> dict:
     """Networks drawn by the one sampler (the researcher's) from the release and from the true aggregate.
 
     Structure statistics of each, and the fidelity figures of :mod:`aggpub.audit.fidelity`
@@ -449,26 +459,19 @@ def _structure_section(release, truth, plan, rng, progress) -> dict:
     from . import fidelity as fid
     from .sampled import side_figures
 
-    network, samples, T = release.network, plan["samples"], plan["T"]
+    samples = plan["samples"]
     progress(f"audit: structure of the true network and of {samples} + {samples} sampled networks")
-    u, v = network.engine.edge_arrays()
-    # one order whatever order the engine returns the rows in (a parallel scan's varies from run to run): the
-    # percolations draw per edge in this order, so a seeded audit gives the same figures every time
-    order = np.lexsort((v, u))
-    u, v = u[order], v[order]
-    assignment = release.grouping.assignment
-    true_stats = struct.structure_statistics(u, v, network.n_people,
-                                             {c: code[assignment] for c, code in plan["codes"].items()})
-    true_fig = fid.network_figures(u, v, network.n_people, T, rng, FIDELITY_PERCOLATIONS,
-                                   average_clustering=true_stats["average_clustering"])
+    alone = side_figures(plan["jobs"]["grouping_alone"])
+    release_side, true = plan["beside"].result()
+    true_stats, true_fig = true["stats"], true["figure"]
 
     def summary(side):
         runs = side["runs"]
         figures = [fid.compare_figures(true_fig, f) for f in side["figures"]]
         return {k: spread([r[k] for r in runs]) for k in runs[0] if k != "people"}, fid.summarise(figures)
 
-    from_alone, fid_alone = summary(side_figures(plan["jobs"]["grouping_alone"]))
-    from_release, fid_release = summary(plan["release_side"].result())
+    from_alone, fid_alone = summary(alone)
+    from_release, fid_release = summary(release_side)
     released_inputs = plan["jobs"]["release"].inputs
     what = SAMPLER_TEXT[released_inputs.sampler]
     if released_inputs.sampler == "degree_corrected":
@@ -482,7 +485,7 @@ def _structure_section(release, truth, plan, rng, progress) -> dict:
             "grouping_alone": fid_alone, "release": fid_release,
             "true": {"contacts": true_fig["contacts"], "largest_degree": true_fig["largest_degree"],
                      "average_clustering": true_fig["average_clustering"], "final_size": true_fig["final_size"],
-                     "transmissibility": T},
+                     "transmissibility": plan["T"]},
             "note": ("synthetic / true, mean over the sampled networks (degree KS: a distance, lower is better). "
                      "Epidemic: bond percolation at the transmissibility that gives the true network R = 1.5 "
                      f"(Newman, Phys. Rev. E 66, 2002), largest cluster, mean of {FIDELITY_PERCOLATIONS} "

@@ -55,7 +55,6 @@ __all__ = ["TriangleTruth", "ManifestFields", "count_triangles", "triangle_truth
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import sparse
 
 from ..budget import Spend
 from ..noise.ladder import LadderMechanism
@@ -84,6 +83,8 @@ def count_triangles(u, v, n: int) -> int:
     orientation, then ``sum((L @ L) .* L)`` over batches of rows of the oriented
     adjacency ``L`` (every triangle is counted once, at its lowest-ranked corner).
     """
+    from scipy import sparse  # here, not at import: the release's start (reading the files) does not need it
+
     u = np.asarray(u, dtype=np.int64)
     v = np.asarray(v, dtype=np.int64)
     if len(u) < 3 or n < 3:
