@@ -781,3 +781,27 @@ def test_the_helper_process_does_not_run_the_callers_script_again(tmp_path):
     assert res.returncode == 0, res.stderr[-2000:]
     assert float(res.stdout.strip().splitlines()[-1]) > 0
     assert log.read_text() == "run\n"
+
+
+def test_member_rates_by_runs_equal_the_weighted_bincount():
+    """The block model's per-member rates summed over each supernode's run of cells (``numpy.add.reduceat``)
+    are numpy's weighted ``bincount`` sums: equal for whole-number counts, within rounding for others; no run
+    starts when ``a`` is unsorted or a supernode has no cell (then ``bincount``)."""
+    from aggpub.audit.degrees import _per_member_rates, _run_starts_of
+
+    rng = np.random.default_rng(2)
+    n = 40
+    a, b = comp.all_cells(n)
+    sizes = rng.integers(1, 50, n)
+    starts = _run_starts_of(a, n)
+    assert starts is not None and np.array_equal(starts, np.searchsorted(a, np.arange(n)))
+    counts = rng.integers(0, 1000, len(a)).astype(np.float64)
+    reference = (np.bincount(a, weights=counts, minlength=n) + np.bincount(b, weights=counts, minlength=n)) / sizes
+    assert np.array_equal(_per_member_rates(a, b, counts, sizes, starts), reference)
+    fractional = rng.random(len(a)) * 7
+    np.testing.assert_allclose(_per_member_rates(a, b, fractional, sizes, starts),
+                               _per_member_rates(a, b, fractional, sizes), rtol=1e-12)
+    keep = a != 7  # supernode 7 has no cell as 'a'
+    assert _run_starts_of(a[keep], n) is None
+    assert _run_starts_of(a[::-1], n) is None
+    assert _run_starts_of(a[a < n - 1], n) is None  # the last supernode missing

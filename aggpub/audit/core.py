@@ -93,7 +93,8 @@ def audit_release(release, *, monte_carlo: int | None = None, source=None, struc
     progress = progress or silent
     source = source or audit_source()
     rng = np.random.default_rng(seed)
-    truth = truth_of_release(release, sanity_bound=sanity_bound, cuts=n_cut_queries, rng=rng)
+    # the workloads are built once the views section has started on its thread (it does not read them)
+    truth = truth_of_release(release, sanity_bound=sanity_bound, cuts=n_cut_queries, rng=rng, defer_workloads=True)
     # the release's synthetic networks start now (in a helper process on large networks) while the rest runs
     structure = _start_structure(release, truth, structure_samples, rng, parallel_structure)
     try:
@@ -130,6 +131,7 @@ def _audit_sections(release, truth, structure, monte_carlo, source, sanity_bound
     }
     plot = {"sizes": truth.true_sizes, "true_pmf": truth.true_hist / truth.true_hist.sum(), "rel_errors": {}}
     with _ViewsBeside(release, truth) as views:
+        truth.finish_workloads()
         progress("audit: degree distribution (true against released)")
         dd, deg_mc = _degree_section(release, truth, monte_carlo, source, plot, out["notes"])
         out["degree_distribution"] = dd
@@ -341,7 +343,9 @@ def _workload_summary(w, tru, est, est_unclamped, mech, s_bound, mc, est_consist
         summ["expected_mean_absolute_error"] = float(_expected_abs(mech, var_q, w.single_cell).mean())
         summ["expected_note"] = ("from the mechanism's variance before clamping at 0 and at the possible "
                                  "pairs" + ("" if w.single_cell else "; mean absolute error by normal approximation"))
-    if mc[w.name]["mean_absolute_error"]:
+    if mc is None:  # the Monte Carlo is still running: its place is kept (see _add_monte_carlo)
+        summ["monte_carlo"] = None
+    elif mc[w.name]["mean_absolute_error"]:
         summ["monte_carlo"] = {k: spread(v) for k, v in mc[w.name].items()}
     if w.notes:
         summ["notes"] = w.notes
@@ -358,10 +362,37 @@ def _query_section(release, truth, monte_carlo, source, deg_mc, plot, progress) 
     unclamped = None if truth.threshold is not None else released_cells(release, truth.n_groups,
                                                                         "edge_count_unclamped", cells=order)
     consistent = released_cells(release, truth.n_groups, "edge_count_estimate", cells=order)
-    mc = {w.name: {"mean_absolute_error": []} for w in truth.workloads}
+    mc_job = pool = None
     if monte_carlo and mech is not None:
+        # the Monte Carlo on a worker thread while this one computes the figures of the released tables (both
+        # are numpy on whole tables, outside the GIL; they share only read-only arrays); its spread is added
+        # to each workload's figures at the end, in the place it has always had
+        from concurrent.futures import ThreadPoolExecutor
+
         progress(f"audit: {int(monte_carlo)} fresh noise draws on the true table (Monte Carlo)")
-        mc = _monte_carlo(truth, mech, monte_carlo, source, deg_mc)
+        pool = ThreadPoolExecutor(max_workers=1, thread_name_prefix="aggpub-audit-mc")
+        mc_job = pool.submit(_monte_carlo, truth, mech, monte_carlo, source, deg_mc)
+    try:
+        out = _released_figures(truth, st, mech, rel, unclamped, consistent, None, plot)
+        mc = mc_job.result() if mc_job is not None else {}
+        for w in truth.workloads:
+            _add_monte_carlo(out[w.name], mc.get(w.name))
+    finally:
+        if pool is not None:
+            pool.shutdown(wait=True)
+    return out
+
+
+def _add_monte_carlo(summ: dict, runs: dict | None) -> None:
+    """Fill the place :func:`_workload_summary` kept for the Monte Carlo's spread (or drop it: no draws)."""
+    if runs and runs["mean_absolute_error"]:
+        summ["monte_carlo"] = {k: spread(v) for k, v in runs.items()}
+    else:
+        del summ["monte_carlo"]
+
+
+def _released_figures(truth, st, mech, rel, unclamped, consistent, mc, plot) -> dict:
+    """The query workloads' figures of the released tables (without the Monte Carlo's spread)."""
     out = {}
     rel = np.asarray(rel, dtype=np.float64)  # as every workload reads it (one array: see _Once)
     unclamped = None if unclamped is None else unclamped.astype(np.float64)

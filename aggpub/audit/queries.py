@@ -227,9 +227,11 @@ def contact_matrix_workload(a, b, values, attribute: str) -> Workload:
         q = row_of[pair]
     # one entry per column: built as CSC without sorting
     mat = sparse.csc_matrix((np.ones(n_cells), q, np.arange(n_cells + 1)), shape=(len(used), n_cells))
-    # the value pair of upper-triangle index u, without the k x k index arrays of numpy.triu_indices
-    first = np.searchsorted(np.cumsum(np.arange(k, 0, -1)), used, side="right")
-    second = used - (first * k - (first * (first - 1)) // 2) + first
+    if used is pair:  # each query is its own cell: its pair of values is the cell's pair of supernodes
+        first, second = a, b
+    else:  # the value pair of upper-triangle index u, without the k x k index arrays of numpy.triu_indices
+        first = np.searchsorted(np.cumsum(np.arange(k, 0, -1)), used, side="right")
+        second = used - (first * k - (first * (first - 1)) // 2) + first
     labels = PairLabels(cats, first, second)
     generalised = int(sum(1 for c in cats if c == "*"))
     notes = [f"{k} value(s) of '{attribute}' as stated in the supernode labels"

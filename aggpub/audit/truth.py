@@ -48,6 +48,14 @@ class AuditTruth:
     true_answers: dict = field(default_factory=dict)
     hist_truth: np.ndarray | None = None
     notes: list = field(default_factory=list)
+    #: builds ``workloads`` and ``true_answers`` when they were deferred (see :func:`truth_of_release`)
+    pending: object = None
+
+    def finish_workloads(self) -> None:
+        """Build the deferred workloads and their true answers (nothing when they are built already)."""
+        if self.pending is not None:
+            build, self.pending = self.pending, None
+            build()
 
     def true_capped(self, top: int) -> np.ndarray:
         """The true degree histogram with bins ``0..top-1`` and a top bin ``top or more``."""
@@ -62,21 +70,33 @@ def _labels(grouping) -> dict:
     return {c: [str(x) for x in grouping.labels.column(c).to_pylist()] for c in cols}
 
 
-def _add_workloads(truth: AuditTruth, *, cuts: int, rng, contact_matrices_only: bool = False) -> None:
+def _add_workloads(truth: AuditTruth, *, cuts: int, rng, contact_matrices_only: bool = False,
+                   defer: bool = False) -> None:
+    """The query workloads and their true answers; with ``defer``, only the cuts now (the one use of ``rng``,
+    so the generator's later draws do not depend on when the rest is built) and the rest at
+    :meth:`AuditTruth.finish_workloads`."""
     st = truth.st
-    workloads = [] if contact_matrices_only else [qw.superedge_cells_workload(len(st.count))]
-    for c, values in truth.labels.items():
-        workloads.append(qw.contact_matrix_workload(st.a, st.b, values, c))
-    if not contact_matrices_only:
-        workloads.append(qw.cut_workload(st.a, st.b, truth.n_groups, cuts, rng))
-        workloads.append(qw.degree_totals_workload(st.a, st.b, truth.n_groups))
-    truth.workloads = workloads
-    true_t = st.count.astype(np.float64)
-    truth.true_answers = {w.name: w.answer(true_t) for w in workloads}
+    cut = None if contact_matrices_only else qw.cut_workload(st.a, st.b, truth.n_groups, cuts, rng)
+
+    def build():
+        workloads = [] if contact_matrices_only else [qw.superedge_cells_workload(len(st.count))]
+        for c, values in truth.labels.items():
+            workloads.append(qw.contact_matrix_workload(st.a, st.b, values, c))
+        if not contact_matrices_only:
+            workloads.append(cut)
+            workloads.append(qw.degree_totals_workload(st.a, st.b, truth.n_groups))
+        truth.workloads = workloads
+        true_t = st.count.astype(np.float64)
+        truth.true_answers = {w.name: w.answer(true_t) for w in workloads}
+
+    if defer:
+        truth.pending = build
+    else:
+        build()
 
 
 def truth_of_grouping(network, grouping, *, superedges=None, hist_cap=None, sanity_bound=None, cuts=200,
-                      rng=None, contact_matrices_only=False) -> AuditTruth:
+                      rng=None, contact_matrices_only=False, defer_workloads=False) -> AuditTruth:
     """True tables of ``grouping`` on ``network`` (counted by the engine when not given).
 
     Parameters
@@ -92,6 +112,8 @@ def truth_of_grouping(network, grouping, *, superedges=None, hist_cap=None, sani
         Random cut queries.
     contact_matrices_only : bool
         Only the contact-matrix workloads (the sweep needs no others).
+    defer_workloads : bool
+        Build the workloads (but the random cuts) at :meth:`AuditTruth.finish_workloads`.
     """
     n_groups = grouping.n_supernodes
     true_deg = network.engine.degrees(network.n_people)
@@ -106,7 +128,7 @@ def truth_of_grouping(network, grouping, *, superedges=None, hist_cap=None, sani
         _set_superedges(truth, superedges)
     if truth.st is not None:
         _add_workloads(truth, cuts=cuts, rng=rng if rng is not None else np.random.default_rng(),
-                       contact_matrices_only=contact_matrices_only)
+                       contact_matrices_only=contact_matrices_only, defer=defer_workloads)
     if hist_cap is not None:
         truth.hist_truth = np.asarray(network.engine.degree_histograms(grouping.assignment, n_groups, hist_cap),
                                       dtype=np.int64)
@@ -128,13 +150,17 @@ def _set_superedges(truth: AuditTruth, st) -> None:
     truth.cap_pub = possible_pairs(truth.pub_sizes, st.a, st.b)
 
 
-def truth_of_release(release, *, sanity_bound=None, cuts=200, rng=None) -> AuditTruth:
-    """True tables of a built release (its own counted truth, nothing counted twice)."""
+def truth_of_release(release, *, sanity_bound=None, cuts=200, rng=None, defer_workloads=False) -> AuditTruth:
+    """True tables of a built release (its own counted truth, nothing counted twice).
+
+    With ``defer_workloads`` the query workloads are built at :meth:`AuditTruth.finish_workloads`
+    (the audit starts its views section on a second thread first).
+    """
     hp = release.policy.components.degree_histograms
     st = release.truth.get("superedges")
     have = st is not None and "superedges" in release.tables
     truth = truth_of_grouping(release.network, release.grouping, superedges=st if have else False,
-                              sanity_bound=sanity_bound, cuts=cuts, rng=rng)
+                              sanity_bound=sanity_bound, cuts=cuts, rng=rng, defer_workloads=defer_workloads)
     if have and not getattr(st, "complete", True):
         truth.threshold = release.manifest.get("superedges_sparse_threshold")
         if truth.st is not None:

@@ -164,7 +164,7 @@ def contact_matrix(release, by: str, *, layer: str | None = None, per_person: bo
     if layer is not None:
         out = out.filter(pc.equal(out.column("layer"), layer))
     elif not every_layer:
-        out = out.add_column(2, "layer", pa.array(["all"] * out.num_rows, pa.string()))
+        out = out.add_column(2, "layer", pa.repeat(pa.scalar("all", pa.string()), out.num_rows))
     meta = {k.decode(): v.decode() for k, v in (out.schema.metadata or {}).items()}
     meta.update(view=name, note=note or "", quantity=quantity, privacy_unit=str(manifest.get("privacy_unit")),
                 epsilon_total=str(manifest.get("epsilon_total")), seeded=str(bool(manifest.get("seeded"))))
