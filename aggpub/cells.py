@@ -10,7 +10,7 @@ Everything here is public arithmetic on ids and sizes; nothing reads private dat
 from __future__ import annotations
 
 __all__ = ["n_cells", "all_cells", "cell_index", "flat_to_pair", "possible_pairs", "unrank_pairs",
-           "scatter_cells"]
+           "scatter_cells", "row_starts"]
 
 import numpy as np
 
@@ -78,3 +78,18 @@ def scatter_cells(n: int, a, b, values, dtype=np.int64) -> np.ndarray:
     if len(a):
         out[cell_index(np.minimum(a, b), np.maximum(a, b), n)] = values
     return out
+
+
+def row_starts(a, n: int):
+    """Where each supernode's run of cells begins in ``a``, when ``a`` is sorted and every supernode
+    ``0 .. n-1`` has at least one cell (as the whole table in row order has); else ``None``.
+
+    With the starts, a sum over each supernode's cells as ``a`` is ``numpy.add.reduceat(values, starts)``.
+    """
+    a = np.asarray(a)
+    if len(a) == 0 or n == 0 or int(a[0]) != 0 or int(a[-1]) != n - 1:
+        return None
+    steps = np.diff(a)
+    if steps.min(initial=0) < 0 or steps.max(initial=0) > 1:  # unsorted, or a supernode without cells
+        return None
+    return np.concatenate([[0], np.flatnonzero(steps) + 1])

@@ -787,7 +787,8 @@ def test_member_rates_by_runs_equal_the_weighted_bincount():
     """The block model's per-member rates summed over each supernode's run of cells (``numpy.add.reduceat``)
     are numpy's weighted ``bincount`` sums: equal for whole-number counts, within rounding for others; no run
     starts when ``a`` is unsorted or a supernode has no cell (then ``bincount``)."""
-    from aggpub.audit.degrees import _per_member_rates, _run_starts_of
+    from aggpub.audit.degrees import _per_member_rates
+    from aggpub.cells import row_starts as _run_starts_of
 
     rng = np.random.default_rng(2)
     n = 40
@@ -805,3 +806,43 @@ def test_member_rates_by_runs_equal_the_weighted_bincount():
     assert _run_starts_of(a[keep], n) is None
     assert _run_starts_of(a[::-1], n) is None
     assert _run_starts_of(a[a < n - 1], n) is None  # the last supernode missing
+
+
+def test_whole_number_tables_take_the_fast_exact_paths():
+    """Cut queries of a table of whole numbers (absolute sum below 2**24) are multiplied in single precision and
+    per-supernode totals summed over runs; both give the very numbers of the double-precision product (the
+    matrix form), and tables outside those conditions still do. Reference: the workloads' own sparse matrices
+    (scipy) and, for the cuts, the dense product in numpy."""
+    from aggpub.audit.queries import whole_numbers_below
+
+    rng = np.random.default_rng(11)
+    n = 60
+    a, b = comp.all_cells(n)
+    cut = qw.cut_workload(a, b, n, 40, rng)
+    tot = qw.degree_totals_workload(a, b, n)
+    assert tot.runs is not None
+    first, second = cut._layout()[:2]
+
+    def by_numpy(table):
+        m = np.zeros((n, n))
+        m[a, b] = table
+        m[b, a] = table
+        return np.einsum("qi,qi->q", first @ m, second)
+
+    whole = rng.integers(0, 900, len(a)).astype(np.float64)
+    signed = whole - 450.0  # whole numbers of both signs (an unclamped table)
+    big = whole * 10_000.0  # absolute sum above 2**24: double precision
+    fractional = whole + rng.random(len(a))
+    assert whole_numbers_below(whole, 2.0 ** 24) and whole_numbers_below(signed, 2.0 ** 24)
+    assert not whole_numbers_below(big, 2.0 ** 24) and not whole_numbers_below(fractional, 2.0 ** 53)
+    for table in (whole, signed, big):
+        assert np.array_equal(cut.answer(table), by_numpy(table))
+        assert np.array_equal(tot.answer(table), tot.matrix @ table)
+    np.testing.assert_allclose(cut.answer(fractional), by_numpy(fractional), rtol=1e-12)
+    assert np.array_equal(tot.answer(fractional), tot.matrix @ fractional)  # the matrix form itself
+    both = np.vstack([whole, fractional, signed])  # several tables at once, each on its own path
+    answers = cut.answer(both)
+    assert np.array_equal(answers[0], by_numpy(whole)) and np.array_equal(answers[2], by_numpy(signed))
+    # degree totals by hand: a member's contacts in every cell it touches, the diagonal twice
+    expect = np.bincount(a, weights=whole, minlength=n) + np.bincount(b, weights=whole, minlength=n)
+    assert np.array_equal(tot.answer(whole), expect)

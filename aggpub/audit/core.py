@@ -130,15 +130,21 @@ def _audit_sections(release, truth, structure, monte_carlo, source, sanity_bound
                    "privacy_unit": m.get("privacy_unit"), "components": m.get("components", [])},
     }
     plot = {"sizes": truth.true_sizes, "true_pmf": truth.true_hist / truth.true_hist.sum(), "rel_errors": {}}
-    with _ViewsBeside(release, truth) as views:
-        truth.finish_workloads()
+    from concurrent.futures import ThreadPoolExecutor
+
+    # a worker thread beside this one: it builds the query workloads while this thread measures the degree
+    # distribution (which does not read them), then runs the query section's Monte Carlo
+    with _ViewsBeside(release, truth) as views, \
+            ThreadPoolExecutor(max_workers=1, thread_name_prefix="aggpub-audit-mc") as worker:
+        workloads = worker.submit(truth.finish_workloads)
         progress("audit: degree distribution (true against released)")
         dd, deg_mc = _degree_section(release, truth, monte_carlo, source, plot, out["notes"])
+        workloads.result()
         out["degree_distribution"] = dd
         out["queries"] = {}
         if truth.st is not None and "superedges" in release.tables:
             progress("audit: query workloads (cells, contact matrices, cuts, degree totals)")
-            out["queries"] = _query_section(release, truth, monte_carlo, source, deg_mc, plot, progress)
+            out["queries"] = _query_section(release, truth, monte_carlo, source, deg_mc, plot, progress, worker)
             if deg_mc is not None and deg_mc["ks"]:
                 dd["monte_carlo"] = {k: spread(deg_mc[k]) for k in ("ks", "wasserstein1", "l1")}
                 dd["monte_carlo"]["note"] = (f"{deg_mc['draws']} fresh noise draws on the true superedge table "
@@ -354,7 +360,7 @@ def _workload_summary(w, tru, est, est_unclamped, mech, s_bound, mc, est_consist
     return summ
 
 
-def _query_section(release, truth, monte_carlo, source, deg_mc, plot, progress) -> dict:
+def _query_section(release, truth, monte_carlo, source, deg_mc, plot, progress, worker) -> dict:
     st = truth.st
     mech = release.mechanisms.get("superedge_counts")
     order = (st.a, st.b)  # every cell, in table order
@@ -362,24 +368,17 @@ def _query_section(release, truth, monte_carlo, source, deg_mc, plot, progress) 
     unclamped = None if truth.threshold is not None else released_cells(release, truth.n_groups,
                                                                         "edge_count_unclamped", cells=order)
     consistent = released_cells(release, truth.n_groups, "edge_count_estimate", cells=order)
-    mc_job = pool = None
+    mc_job = None
     if monte_carlo and mech is not None:
-        # the Monte Carlo on a worker thread while this one computes the figures of the released tables (both
+        # the Monte Carlo on the worker thread while this one computes the figures of the released tables (both
         # are numpy on whole tables, outside the GIL; they share only read-only arrays); its spread is added
         # to each workload's figures at the end, in the place it has always had
-        from concurrent.futures import ThreadPoolExecutor
-
         progress(f"audit: {int(monte_carlo)} fresh noise draws on the true table (Monte Carlo)")
-        pool = ThreadPoolExecutor(max_workers=1, thread_name_prefix="aggpub-audit-mc")
-        mc_job = pool.submit(_monte_carlo, truth, mech, monte_carlo, source, deg_mc)
-    try:
-        out = _released_figures(truth, st, mech, rel, unclamped, consistent, None, plot)
-        mc = mc_job.result() if mc_job is not None else {}
-        for w in truth.workloads:
-            _add_monte_carlo(out[w.name], mc.get(w.name))
-    finally:
-        if pool is not None:
-            pool.shutdown(wait=True)
+        mc_job = worker.submit(_monte_carlo, truth, mech, monte_carlo, source, deg_mc)
+    out = _released_figures(truth, st, mech, rel, unclamped, consistent, None, plot)
+    mc = mc_job.result() if mc_job is not None else {}
+    for w in truth.workloads:
+        _add_monte_carlo(out[w.name], mc.get(w.name))
     return out
 
 

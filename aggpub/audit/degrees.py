@@ -23,7 +23,7 @@ __all__ = ["block_model_terms", "cell_matrix", "implied_degree_pmf", "released_h
 import numpy as np
 from scipy import special
 
-from ..cells import possible_pairs
+from ..cells import possible_pairs, row_starts
 
 #: Above this many (supernode x supernode x grid) terms, use the Poisson approximation.
 MAX_EXACT_TERMS = 60_000_000
@@ -45,9 +45,10 @@ def true_degree_histogram(degrees) -> np.ndarray:
 def _per_member_rates(a, b, count, sizes, a_starts=None):
     """Expected contacts of one member of each supernode (block model).
 
-    ``a_starts`` (from :func:`block_model_terms`): where each supernode's run of cells begins when ``a`` is
-    sorted and every supernode has cells; the ``a`` ends are then sums over runs (``numpy.add.reduceat``,
-    several times faster than a weighted ``bincount`` on millions of cells; the same sums of whole numbers).
+    ``a_starts`` (:func:`aggpub.cells.row_starts`, kept by :func:`block_model_terms`): where each supernode's
+    run of cells begins when ``a`` is sorted and every supernode has cells; the ``a`` ends are then sums
+    over runs (``numpy.add.reduceat``, several times faster than a weighted ``bincount`` on millions of
+    cells; the same sums of whole numbers).
     """
     sizes = np.asarray(sizes, dtype=np.float64)
     count = np.asarray(count, dtype=np.float64)
@@ -55,16 +56,6 @@ def _per_member_rates(a, b, count, sizes, a_starts=None):
               else np.bincount(a, weights=count, minlength=len(sizes)))
     ends = from_a + np.bincount(b, weights=count, minlength=len(sizes))
     return ends / np.maximum(sizes, 1.0)
-
-
-def _run_starts_of(a, n: int):
-    """Start of each supernode's run of cells when ``a`` is sorted and every supernode ``0..n-1`` has one."""
-    if len(a) == 0 or n == 0 or int(a[0]) != 0 or int(a[-1]) != n - 1:
-        return None
-    steps = np.diff(a)
-    if steps.min(initial=0) < 0 or steps.max(initial=0) > 1:  # unsorted, or a supernode without cells
-        return None
-    return np.concatenate([[0], np.flatnonzero(steps) + 1])
 
 
 def _poisson_pmf(k, lam):
@@ -91,7 +82,7 @@ def block_model_terms(a, b, sizes) -> dict:
     m_ab = np.where(diag, sizes[a] - 1.0, sizes[b].astype(np.float64))
     m_ba = np.where(diag, 0.0, sizes[a].astype(np.float64))
     return {"a": a, "b": b, "sizes": sizes, "cap": possible_pairs(sizes, a, b).astype(np.float64),
-            "m_ab": m_ab, "m_ba": m_ba, "a_starts": _run_starts_of(a, len(sizes))}
+            "m_ab": m_ab, "m_ba": m_ba, "a_starts": row_starts(a, len(sizes))}
 
 
 def implied_degree_pmf(a, b, count, sizes, *, method: str = "auto", terms: dict | None = None
