@@ -38,7 +38,7 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy import sparse
 
-from ..cells import cell_index, row_starts
+from ..cells import cell_index
 
 
 class PairLabels(Sequence):
@@ -67,13 +67,6 @@ class PairLabels(Sequence):
         return ((cats[x], cats[y]) for x, y in zip(self._first.tolist(), self._second.tolist()))
 
 
-def whole_numbers_below(x: np.ndarray, bound: float) -> bool:
-    """Whether every value of ``x`` is a whole number and their absolute values add up to less than ``bound``:
-    then every sum of some of them, in any order, is exact in a float format with ``log2(bound)`` bits of
-    mantissa (``2**53``: float64; ``2**24``: float32)."""
-    return bool(np.abs(x).sum() < bound) and bool(np.array_equal(x, np.floor(x)))
-
-
 @dataclass
 class Workload:
     """A named set of linear queries on the cells (``matrix`` is ``None`` for the identity).
@@ -89,24 +82,16 @@ class Workload:
     notes: list = field(default_factory=list)
     #: ``matrix`` is the identity (query ``i`` is cell ``i``, with weight 1): its answers are the cells themselves
     cell_by_cell: bool = False
-    #: per-supernode totals (:func:`degree_totals_workload` on the whole table in row order): ``(starts, b)``,
-    #: each supernode's run of cells as ``a`` (:func:`aggpub.cells.row_starts`) and the cells' ``b``
-    runs: tuple | None = None
 
     def answer(self, cells: np.ndarray) -> np.ndarray:
         """Answers for one table (``cells``: 1-D) or many (2-D: draws x cells -> draws x queries).
 
         For the identity (``matrix`` ``None`` or ``cell_by_cell``) the cells themselves (the same
-        array: the product would give the same numbers, each answer being one cell times 1). Totals
-        per supernode of a table of whole numbers are sums over runs and a ``bincount`` (the same
-        whole numbers as the product, in another order; several times faster).
+        array: the product would give the same numbers, each answer being one cell times 1).
         """
         cells = np.asarray(cells, dtype=np.float64)
         if self.matrix is None or self.cell_by_cell:
             return cells
-        if cells.ndim == 1 and self.runs is not None and whole_numbers_below(cells, 2.0 ** 53):
-            starts, b = self.runs
-            return np.add.reduceat(cells, starts) + np.bincount(b, weights=cells, minlength=len(starts))
         if cells.ndim == 1:
             return self.matrix @ cells
         return np.asarray((self.matrix @ cells.T).T)
@@ -145,38 +130,23 @@ class CutWorkload(Workload):
     sides: np.ndarray | None = None  # queries x supernodes: 0 first set, 1 second set, 2 neither
 
     def answer(self, cells: np.ndarray) -> np.ndarray:
-        """Answers for one table or many (see :meth:`Workload.answer`), one symmetric product per table.
-
-        A table of whole numbers whose absolute values add up to less than ``2**24`` (every count table;
-        not the fractional estimates) is multiplied in single precision: every partial sum is a whole
-        number below ``2**24``, exact in float32, so the answers are the very numbers double precision
-        gives, at twice the speed.
-        """
         from scipy.linalg import blas
 
         cells = np.asarray(cells, dtype=np.float64)
         rows = cells[None, :] if cells.ndim == 1 else cells
         n = self.sides.shape[1]
-        layout = self._layout()
-        upper = layout[2]
+        first, second, upper = self._layout()
         out = np.empty((len(rows), len(self.sides)))
         complete = self._complete()  # every entry of the upper triangle is written below
-        square = {}  # one square matrix per precision, made when first needed
+        m = np.empty(n * n) if complete else np.zeros(n * n)
         for i, row in enumerate(rows):
-            single = whole_numbers_below(row, 2.0 ** 24)
-            dtype = np.float32 if single else np.float64
-            m = square.get(dtype)
-            if m is None:
-                m = square[dtype] = (np.empty if complete else np.zeros)(n * n, dtype=dtype)
-            elif not complete:
+            if not complete and i:
                 m.fill(0.0)
             # the upper triangle only (row-major cells: one pass in order); BLAS's symmetric product reads
             # that triangle alone. ``m`` seen as Fortran-ordered is the transpose, whose lower triangle it is;
             # ``first.T`` is Fortran-ordered as it stands: no copy of either. The result is ``(first @ M).T``.
             m[upper] = row
-            first, second = layout[3:] if single else layout[:2]
-            symm = blas.ssymm if single else blas.dsymm
-            product = symm(1.0, m.reshape(n, n).T, first.T, side=0, lower=1)
+            product = blas.dsymm(1.0, m.reshape(n, n).T, first.T, side=0, lower=1)
             out[i] = np.einsum("qi,qi->q", product.T, second)
         return out[0] if cells.ndim == 1 else out
 
@@ -190,8 +160,8 @@ class CutWorkload(Workload):
         cached = getattr(self, "_cached_layout", None)
         if cached is None:
             n = self.sides.shape[1]
-            first, second = (self.sides == 0).astype(np.float64), (self.sides == 1).astype(np.float64)
-            cached = (first, second, self.a * n + self.b, first.astype(np.float32), second.astype(np.float32))
+            cached = ((self.sides == 0).astype(np.float64), (self.sides == 1).astype(np.float64),
+                      self.a * n + self.b)
             self._cached_layout = cached
         return cached
 
@@ -199,7 +169,7 @@ class CutWorkload(Workload):
         # each query sums the cells that cross it, once each: as many as its answer on a table of ones;
         # on the whole table that is |S| |T| (one cell per pair of a supernode of each set; disjoint sets)
         if self._complete():
-            first, second = self._layout()[:2]
+            first, second, _ = self._layout()
             crossing = first.sum(axis=1) * second.sum(axis=1)
         else:
             crossing = self.answer(np.ones(self.n_cells))
@@ -322,5 +292,4 @@ def degree_totals_workload(a, b, n_groups: int) -> Workload:
     vals[indptr[:-1][diag]] = 2.0
     rows[indptr[:-1][~diag] + 1] = b[~diag]
     mat = sparse.csc_matrix((vals, rows, indptr), shape=(n_groups, n_cells))
-    starts = row_starts(a, n_groups)
-    return Workload("supernode_degree_totals", mat, n_cells, runs=None if starts is None else (starts, b))
+    return Workload("supernode_degree_totals", mat, n_cells)
