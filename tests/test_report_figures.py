@@ -123,3 +123,21 @@ def test_block_sums_are_numpy_add_at_sums_bit_for_bit():
             off = ba != bb
             np.add.at(ref, (bb[off], ba[off]), data[order][off])
             assert np.array_equal(m, ref)
+
+
+def test_block_matrices_of_several_tables_are_each_tables_own():
+    """Several tables over the same cells in one call: each matrix is the one the table gives alone."""
+    rng = np.random.default_rng(8)
+    k = 37
+    ia, ib = np.triu_indices(k)
+    tables = [rng.random(len(ia)), rng.integers(0, 9, len(ia)).astype(float)]
+    for side in (5, 40):
+        both, block = _block_matrix([str(i) for i in range(k)], ia, ib, tables, side=side)
+        for table, m in zip(tables, both):
+            alone, block_alone = _block_matrix([str(i) for i in range(k)], ia, ib, table, side=side)
+            assert block == block_alone and np.array_equal(m, alone)
+    order = rng.permutation(len(ia))  # not in cell order: numpy's add.at path
+    both, _ = _block_matrix([str(i) for i in range(k)], ib[order], ia[order], [t[order] for t in tables], side=5)
+    for table, m in zip(tables, both):
+        assert np.array_equal(m, _block_matrix([str(i) for i in range(k)], ib[order], ia[order], table[order],
+                                               side=5)[0])

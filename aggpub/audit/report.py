@@ -187,24 +187,32 @@ def _budget_figure(comps, total) -> str:
 def _block_matrix(values, ia, ib, data, side: int):
     """The symmetric matrix of one view in blocks of ``ceil(k / side)`` consecutive values (sums per block).
 
-    Returns the matrix and the block size (1: every value its own row).
+    Returns the matrix and the block size (1: every value its own row). ``data`` may be a list of arrays
+    over the same cells: then a list of matrices (the block positions are worked out once).
     """
+    several = isinstance(data, list)
+    datas = [np.asarray(d, dtype=np.float64) for d in (data if several else [data])]
     k = len(values)
     block = max(1, -(-k // side))
     n = -(-k // block)
     ba, bb = np.asarray(ia) // block, np.asarray(ib) // block
-    data = np.asarray(data, dtype=np.float64)
     # cells a <= b land on or above the diagonal, their mirror images below it: the two sums never meet, and
     # bincount adds each block's cells in order as numpy.add.at would (many times faster)
     off = ba != bb
+    out = []
     if np.any(ba > bb):  # not the cell order of a contact matrix: the sums could meet, add in numpy's way
-        m = np.zeros((n, n))
-        np.add.at(m, (ba, bb), data)
-        np.add.at(m, (bb[off], ba[off]), data[off])
-        return m, block
-    m = np.bincount(ba * n + bb, weights=data, minlength=n * n)
-    m += np.bincount(bb[off] * n + ba[off], weights=data[off], minlength=n * n)
-    return m.reshape(n, n), block
+        for d in datas:
+            m = np.zeros((n, n))
+            np.add.at(m, (ba, bb), d)
+            np.add.at(m, (bb[off], ba[off]), d[off])
+            out.append(m)
+    else:
+        upper, lower = ba * n + bb, bb[off] * n + ba[off]
+        for d in datas:
+            m = np.bincount(upper, weights=d, minlength=n * n)
+            m += np.bincount(lower, weights=d[off], minlength=n * n)
+            out.append(m.reshape(n, n))
+    return (out if several else out[0]), block
 
 
 def _views_plot(views: dict) -> str:
@@ -215,8 +223,7 @@ def _views_plot(views: dict) -> str:
     """
     rows = []
     for name, (values, ia, ib, true, est) in list(views.items())[:2]:
-        t, block = _block_matrix(values, ia, ib, true, HEATMAP_MAX_SIDE)
-        e, _ = _block_matrix(values, ia, ib, est, HEATMAP_MAX_SIDE)
+        (t, e), block = _block_matrix(values, ia, ib, [true, est], HEATMAP_MAX_SIDE)
         labels = [str(v) for v in values[::block]]
         top = float(np.nanmax(np.abs(t))) or 1.0
         diff = e - t
