@@ -88,6 +88,27 @@ def test_relative_error_with_sanity_bound_worked_example():
         relative_errors(true, est, 0)
 
 
+def test_error_summary_equals_numpy_on_both_paths():
+    """The error figures are numpy's own (numpy.percentile on the unsorted errors, mean, sqrt of mean square),
+    whether every true value is at most the sanity bound (the relative errors then come from the sorted
+    absolute errors, one sort) or not (two sorts); the definitions of Xiao, Wang, Gehrke (ICDE 2010)."""
+    rng = np.random.default_rng(21)
+    for top, s in ((8, 10.0), (500, 10.0), (10, 10.0)):  # all below s, many above, the largest equal to s
+        true = rng.integers(0, top + 1, 50_001).astype(float)
+        true[0] = top
+        est = np.clip(true + rng.integers(-6, 7, len(true)), 0, None) + rng.random(len(true)) * (top > 100)
+        got = error_summary(true, est, s)
+        abs_err = np.abs(est - true)
+        rel = abs_err / np.maximum(true, s)
+        want = {"mean_absolute_error": abs_err.mean(), "rmse": np.sqrt(np.mean(abs_err ** 2)),
+                "max_absolute_error": abs_err.max(), "mean_relative_error": rel.mean(),
+                "median_absolute_error": np.percentile(abs_err, 50), "p90_absolute_error": np.percentile(abs_err, 90),
+                "median_relative_error": np.percentile(rel, 50), "p90_relative_error": np.percentile(rel, 90),
+                "p99_relative_error": np.percentile(rel, 99)}
+        for k, v in want.items():
+            assert got[k] == float(v), (top, k, got[k], v)
+
+
 def test_percentiles_by_sorting_equal_numpy_percentile():
     """The audit's quantiles (sort, then numpy's selection) are numpy.percentile's numbers exactly: integer
     and continuous values, ties, odd and even lengths, NaN; the caller's array is kept unless it is given up."""
