@@ -24,6 +24,7 @@ import networkx as nx
 import numpy as np
 import pyarrow as pa
 import pyarrow.csv as pacsv
+import pyarrow.compute as pc
 import pytest
 from scipy.stats import binomtest
 
@@ -610,6 +611,34 @@ def test_audit_reports_the_views_and_decides_nothing(tmp_path):
     html = render_html(audit)
     assert "3b. Contact matrices by attribute (views)" in html and 'alt="true and released contact matrices"' in html
     assert "decides" in audit and "decide nothing" in audit["decides"]
+
+
+def test_audit_view_plot_codes_are_the_cells_the_figures_compare(monkeypatch):
+    """The report's heat-map codes of a view are its cells in the order the audit's error figures compare
+    (read from the declared values); reading the value names of the researcher's matrix gives the same codes.
+    Zachary's karate club (Zachary 1977, as networkx ships it), with invented bands and areas."""
+    from aggpub.audit.core import _view_matrix, _view_plot_data
+
+    G, rows = _graph("karate")
+    people = pa.table({"node": [f"n{n}" for n in G.nodes()], "band": [G.nodes[n]["band"] for n in G.nodes()],
+                       "area": [G.nodes[n]["area"] for n in G.nodes()]})
+    edges = pa.table({"source": [f"n{a}" for a, _, _ in rows], "target": [f"n{b}" for _, b, _ in rows],
+                      "setting": [LAYERS[lay] for _, _, lay in rows]})
+    pol = {"privacy": {"epsilon": 2.0}, "grouping": {"attributes": ["band", "area"], "min_size": 8},
+           "layers": {"column": "setting", "values": list(LAYERS[:3])},
+           "components": {"contact_views": {"attributes": ["band"], "combinations": ["band,area"]}}}
+    r = release_tables(edges, people, pol, seed=2)
+    domains = r.manifest["view_domains"]
+    for name, true in r.truth["contact_views"]["counts"].items():
+        m = _view_matrix(r, name, "consistent", {})
+        tm = true.sum(axis=0).astype(float)
+        est = np.asarray(m.column("contacts").to_numpy(), dtype=float)
+        with monkeypatch.context() as mp:  # the declared values give the codes: no value name is read
+            mp.setattr(pc, "unique", lambda *a, **k: pytest.fail("read the value names"))
+            short = _view_plot_data(m, tm, est, domains, name)
+        by_names = _view_plot_data(m, tm, est, {}, name)  # no domains: the value names are read
+        assert short[0] == by_names[0] and len(short[0]) > 1
+        assert np.array_equal(short[1], by_names[1]) and np.array_equal(short[2], by_names[2])
 
 
 def _rehash(path):

@@ -559,7 +559,7 @@ def _views_section(release, truth, plot) -> dict:
             summ, tm, est = _view_figures(release, truth, name, method, true, m)
             entry[method] = summ
             if method == "consistent":
-                plot["views"][name] = _view_plot_data(m, tm, est)
+                plot["views"][name] = _view_plot_data(m, tm, est, release.manifest.get("view_domains", {}), name)
                 if summ["method_used"] == "view":  # the fallback: the raw view is this very table
                     entry["view"] = {k: v for k, v in summ.items() if k != "per_layer"}
                     break
@@ -611,12 +611,27 @@ def _view_figures(release, truth, name, method, true, m):
     return summ, tm, est
 
 
-def _view_plot_data(m, tm, est):
+def _view_plot_data(m, tm, est, domains, name):
     """``(values, code_a, code_b, true, estimate)`` of a view for the report's heat maps (integer codes,
-    not a Python string per cell)."""
+    not a Python string per cell).
+
+    The matrix of the whole view lists its cells in the view's cell order (``view_cells``), the order its
+    error figures already compare ``est`` with ``tm`` in: the codes are those cells. A table of another
+    length is read by its value names.
+    """
     import pyarrow as pa
     import pyarrow.compute as pc
 
+    from ..estimates.matrix import view_values
+    from ..estimates.views import view_cells
+
+    try:
+        values = view_values(name, domains)
+    except KeyError:  # an attribute without a declared domain: read the names
+        values = None
+    if values is not None and m.num_rows == len(tm) == len(values) * (len(values) + 1) // 2:
+        ia, ib = view_cells(len(values))
+        return values, ia, ib, tm, est
     values = pc.unique(m.column("value_a")).to_pylist()  # in order of first appearance: the declared order
     value_set = pa.array(values, pa.string())
     ia = np.asarray(pc.index_in(m.column("value_a"), value_set=value_set).to_numpy(zero_copy_only=False))

@@ -73,7 +73,7 @@ privacy mechanisms", STOC 2009 (the discrete Laplace noise).
 from __future__ import annotations
 
 __all__ = ["FineTable", "ViewRelease", "ConsistentEstimate", "consistent_estimates", "possible_values_from_labels",
-           "possible_values_from_people", "contact_matrix", "contact_matrix_square", "RESIDUAL",
+           "possible_values_from_people", "contact_matrix", "contact_matrix_square", "view_values", "RESIDUAL",
            "MAX_VIEW_CELLS", "MAX_BLOCK_ATOMS", "MAX_EXACT_GROUPS", "MAX_GROUP_DIRECTIONS"]
 
 import math
@@ -879,7 +879,7 @@ def _exact_half_width(scale: float, count: int, confidence: float) -> float:
     return float(min(int(np.searchsorted(cover, confidence - 1e-12, side="left")), len(pmf) - 1))
 
 
-def _view_values(name: str, domains) -> list:
+def view_values(name: str, domains) -> list:
     """Value names of a view (combined with ``|`` for a combination of attributes)."""
     attrs = name.split(",")
     lists = [[str(x) for x in domains[a]] for a in attrs]
@@ -916,7 +916,7 @@ def _read_views(views: pa.Table, names, domains, layers, column):
         sub = views if mask.null_count == 0 and pc.all(mask).as_py() else views.filter(mask)  # one view: no copy
         if not sub.num_rows:
             raise ValueError(f"view table: no view named {name!r}")
-        values = _view_values(name, domains)
+        values = view_values(name, domains)
         k = len(values)
         try:
             a = _codes_in(sub.column("value_a"), values)
@@ -1079,7 +1079,7 @@ def contact_matrix(supernodes: pa.Table, superedges, views, attribute: str, *, d
     if method == "supernodes":
         return _by_labels(supernodes, superedges, attribute, cols, quantity, confidence)
 
-    values = _view_values(attribute, domains)
+    values = view_values(attribute, domains)
     noisy_people = False
     level = confidence
     if per_person:
