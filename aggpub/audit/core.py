@@ -292,12 +292,17 @@ def _monte_carlo(truth, mech, monte_carlo, source, deg_mc):
         """Figures of fresh noise draw ``i`` (inputs already validated; runs in a worker thread)."""
         noisy = draw_noise(mech, len(st.count), rng, as_float=True)  # whole numbers in float64
         noisy += st.count
-        degree = None
+        degree = table = None
         if deg_mc is not None and i < deg_mc["draws"]:  # the degree distribution's spread
-            pmf, _ = deg.implied_degree_pmf(st.a, st.b, post_process(noisy, truth.cap_true, truth.threshold),
-                                            truth.true_sizes, method=deg_mc["method"], terms=deg_mc["terms"])
+            clamped = post_process(noisy, truth.cap_true, truth.threshold)
+            pmf, _ = deg.implied_degree_pmf(st.a, st.b, clamped, truth.true_sizes, method=deg_mc["method"],
+                                            terms=deg_mc["terms"])
             degree = distribution_distances(truth.true_hist, pmf)
-        table = np.asarray(post_process(noisy, truth.cap_pub, truth.threshold), dtype=np.float64)
+            if truth.cap_pub is truth.cap_true:  # public sizes are the true ones: the same table (read only)
+                table = clamped
+        if table is None:
+            table = post_process(noisy, truth.cap_pub, truth.threshold)
+        table = np.asarray(table, dtype=np.float64)
         del noisy
         errors = _Once(mc_errors)  # workloads whose answers are the cells themselves share one computation
         return degree, {w.name: errors(truth.true_answers[w.name], w.answer(table), truth.s_bound)

@@ -147,7 +147,10 @@ def _set_superedges(truth: AuditTruth, st) -> None:
         st = dense_truth(truth.n_groups, st.a, st.b, st.count)
     truth.st = st
     truth.cap_true = possible_pairs(truth.true_sizes, st.a, st.b)
-    truth.cap_pub = possible_pairs(truth.pub_sizes, st.a, st.b)
+    # the same array when the public sizes are the true ones (unit edge): computed once, and the audit's
+    # Monte Carlo then clamps each draw once
+    truth.cap_pub = (truth.cap_true if np.array_equal(truth.pub_sizes, truth.true_sizes)
+                     else possible_pairs(truth.pub_sizes, st.a, st.b))
 
 
 def truth_of_release(release, *, sanity_bound=None, cuts=200, rng=None, defer_workloads=False) -> AuditTruth:
