@@ -10,7 +10,7 @@ Everything here is public arithmetic on ids and sizes; nothing reads private dat
 from __future__ import annotations
 
 __all__ = ["n_cells", "all_cells", "cell_index", "flat_to_pair", "possible_pairs", "unrank_pairs",
-           "scatter_cells", "row_starts"]
+           "scatter_cells", "CellRows"]
 
 import numpy as np
 
@@ -80,16 +80,30 @@ def scatter_cells(n: int, a, b, values, dtype=np.int64) -> np.ndarray:
     return out
 
 
-def row_starts(a, n: int):
-    """Where each supernode's run of cells begins in ``a``, when ``a`` is sorted and every supernode
-    ``0 .. n-1`` has at least one cell (as the whole table in row order has); else ``None``.
+class CellRows:
+    """Per-supernode sums over cells ``(a, b)``: ``totals(x)`` is ``M x``, each supernode's ``2 x_AA +
+    sum_{B != A} x_AB`` (its degree total when ``x`` are contact counts), and ``spread(v)`` is ``M^T v``.
 
-    With the starts, a sum over each supernode's cells as ``a`` is ``numpy.add.reduceat(values, starts)``.
+    Fast when the cells are in row order (the bundle's order): the ``a`` ends are sums over each
+    supernode's run of cells (``numpy.add.reduceat``), the ``b`` ends a ``bincount``; otherwise two
+    ``bincount``. The same whole numbers either way; other values within rounding.
     """
-    a = np.asarray(a)
-    if len(a) == 0 or n == 0 or int(a[0]) != 0 or int(a[-1]) != n - 1:
-        return None
-    steps = np.diff(a)
-    if steps.min(initial=0) < 0 or steps.max(initial=0) > 1:  # unsorted, or a supernode without cells
-        return None
-    return np.concatenate([[0], np.flatnonzero(steps) + 1])
+
+    def __init__(self, a, b, n):
+        self.a, self.b, self.n = a, b, n
+        self.sorted_a = bool(len(a) == 0 or np.all(a[1:] >= a[:-1]))
+        if self.sorted_a:
+            self.starts = np.searchsorted(a, np.arange(n))
+            self.nonempty = self.starts < np.append(self.starts[1:], len(a))
+
+    def totals(self, x):
+        out = np.bincount(self.b, weights=x, minlength=self.n)
+        if self.sorted_a and len(x):
+            # one run per supernode that has cells (each runs to the next such start, the last to the end)
+            out[self.nonempty] += np.add.reduceat(x, self.starts[self.nonempty])
+        else:
+            out += np.bincount(self.a, weights=x, minlength=self.n)
+        return out
+
+    def spread(self, v):
+        return np.take(v, self.a) + np.take(v, self.b)

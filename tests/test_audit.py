@@ -411,18 +411,46 @@ def test_workloads_match_networkx_counts(lesmis_release):
     np.testing.assert_allclose(cw.noise_variance(2.0), 2.0 * np.array(crossing))
 
 
-def test_workloads_built_by_column_answer_like_their_row_form(lesmis_release):
-    """The contact-matrix and degree-total workloads stay in the column-wise form they are built in; their
-    answers (one table and several) and noise variances are the very numbers of the row-wise (CSR) form."""
-    from dataclasses import replace
-
+def test_degree_totals_by_runs_equal_the_sparse_matrix_form(lesmis_release):
+    """Per-supernode degree totals summed over runs of cells answer as the sparse matrix of the definition
+    (scipy: 2 on the diagonal cell, 1 at both ends of any other cell): the same numbers for whole-number tables,
+    within rounding for others, one table or several; the noise variance is the row sums of the squared
+    weights. On the whole table, on a list of cells in another order, and on a list without the last rows."""
     _, _, _, rel = lesmis_release
     st = rel.truth["superedges"]
     n = rel.grouping.n_supernodes
     rng = np.random.default_rng(5)
+    keep_all = np.ones(len(st.a), bool)
+    for keep, order in ((keep_all, np.arange(len(st.a))), (keep_all, rng.permutation(len(st.a))),
+                        (st.a < n - 2, None)):
+        a, b = st.a[keep], st.b[keep]
+        if order is not None:
+            a, b = a[order], b[order]
+        diag = a == b
+        cols = np.arange(len(a))
+        m = sparse.csr_matrix((np.concatenate([np.where(diag, 2.0, 1.0), np.ones(int((~diag).sum()))]),
+                               (np.concatenate([a, b[~diag]]), np.concatenate([cols, cols[~diag]]))),
+                              shape=(n, len(a)))
+        w = qw.degree_totals_workload(a, b, n)
+        assert w.n_queries == n and not w.single_cell
+        whole = rng.integers(0, 50, size=(3, len(a))).astype(float)
+        frac = rng.normal(3.0, 2.0, size=(3, len(a)))
+        assert np.array_equal(w.answer(whole[0]), m @ whole[0])
+        assert np.array_equal(w.answer(whole), (m @ whole.T).T)
+        np.testing.assert_allclose(w.answer(frac), (m @ frac.T).T, rtol=1e-12, atol=1e-9)
+        assert np.array_equal(w.noise_variance(1.7), np.asarray(m.multiply(m).sum(axis=1)).ravel() * 1.7)
+
+
+def test_workloads_built_by_column_answer_like_their_row_form(lesmis_release):
+    """The contact-matrix workload stays in the column-wise form it is built in; its answers (one table and
+    several) and noise variances are the very numbers of the row-wise (CSR) form."""
+    from dataclasses import replace
+
+    _, _, _, rel = lesmis_release
+    st = rel.truth["superedges"]
+    rng = np.random.default_rng(5)
     tables = rng.normal(3.0, 2.0, size=(3, len(st.a)))
-    built = [qw.contact_matrix_workload(st.a, st.b, rel.grouping.labels.column("band").to_pylist(), "band"),
-             qw.degree_totals_workload(st.a, st.b, n)]
+    built = [qw.contact_matrix_workload(st.a, st.b, rel.grouping.labels.column("band").to_pylist(), "band")]
     for w in built:
         assert w.matrix.format == "csc"
         rows = replace(w, matrix=w.matrix.tocsr())
@@ -805,26 +833,24 @@ def test_the_helper_process_does_not_run_the_callers_script_again(tmp_path):
 
 
 def test_member_rates_by_runs_equal_the_weighted_bincount():
-    """The block model's per-member rates summed over each supernode's run of cells (``numpy.add.reduceat``)
-    are numpy's weighted ``bincount`` sums: equal for whole-number counts, within rounding for others; no run
-    starts when ``a`` is unsorted or a supernode has no cell (then ``bincount``)."""
+    """The block model's per-member rates summed over each supernode's run of cells (``CellRows``, reduceat)
+    are numpy's weighted ``bincount`` sums: equal for whole-number counts, within rounding for others, in row
+    order and in any other order of the cells, with supernodes that have no cell."""
     from aggpub.audit.degrees import _per_member_rates
-    from aggpub.cells import row_starts as _run_starts_of
+    from aggpub.cells import CellRows
 
     rng = np.random.default_rng(2)
     n = 40
     a, b = comp.all_cells(n)
     sizes = rng.integers(1, 50, n)
-    starts = _run_starts_of(a, n)
-    assert starts is not None and np.array_equal(starts, np.searchsorted(a, np.arange(n)))
     counts = rng.integers(0, 1000, len(a)).astype(np.float64)
-    reference = (np.bincount(a, weights=counts, minlength=n) + np.bincount(b, weights=counts, minlength=n)) / sizes
-    assert np.array_equal(_per_member_rates(a, b, counts, sizes, starts), reference)
     fractional = rng.random(len(a)) * 7
-    np.testing.assert_allclose(_per_member_rates(a, b, fractional, sizes, starts),
-                               _per_member_rates(a, b, fractional, sizes), rtol=1e-12)
-    keep = a != 7  # supernode 7 has no cell as 'a'
-    assert _run_starts_of(a[keep], n) is None
-    assert _run_starts_of(a[::-1], n) is None
-    assert _run_starts_of(a[a < n - 1], n) is None  # the last supernode missing
-
+    for keep in (np.ones(len(a), bool), a != 7, a < n - 1, rng.random(len(a)) < 0.5):
+        for order in (np.arange(keep.sum()), rng.permutation(int(keep.sum()))):
+            ka, kb = a[keep][order], b[keep][order]
+            kc, kf = counts[keep][order], fractional[keep][order]
+            rows = CellRows(ka, kb, n)
+            reference = (np.bincount(ka, weights=kc, minlength=n) + np.bincount(kb, weights=kc, minlength=n)) / sizes
+            assert np.array_equal(_per_member_rates(ka, kb, kc, sizes, rows), reference)
+            np.testing.assert_allclose(_per_member_rates(ka, kb, kf, sizes, rows),
+                                       _per_member_rates(ka, kb, kf, sizes), rtol=1e-12)

@@ -17,7 +17,8 @@ import pytest
 import aggpub
 from aggpub.cells import all_cells, possible_pairs
 from aggpub.estimates import degrees as dest
-from aggpub.estimates.counts import _Rows, blue_cells, consistent_counts, degree_totals, project_cells
+from aggpub.cells import CellRows
+from aggpub.estimates.counts import blue_cells, consistent_counts, degree_totals, project_cells
 from aggpub.noise.mechanisms import GeometricMechanism
 from aggpub.noise.sampler import SeededRandomSource
 
@@ -87,7 +88,7 @@ def test_projection_does_not_crawl_when_the_dual_cannot_measure_the_last_step(se
     cap = possible_pairs(sizes, a, b)
     y = rng.binomial(cap, 0.02) + rng.laplace(0, 30, len(a))
     xb = blue_cells(y, 1800.0, a, b, n)
-    r = _Rows(a, b, n).totals(xb)  # the totals as consistent_counts computes them (their rounding matters here)
+    r = CellRows(a, b, n).totals(xb)  # the totals as consistent_counts computes them (their rounding matters here)
     scale = max(1.0, float(np.abs(np.clip(r, 0, degree_totals(cap, a, b, n))).max()))
     vs = [project_cells(xb, a, b, n, r, cap, max_newton=k).max_violation for k in range(1, 6)]
     k = next(i for i, v in enumerate(vs) if v < 1e-3)

@@ -23,7 +23,7 @@ __all__ = ["block_model_terms", "cell_matrix", "implied_degree_pmf", "released_h
 import numpy as np
 from scipy import special
 
-from ..cells import possible_pairs, row_starts
+from ..cells import CellRows, possible_pairs
 
 #: Above this many (supernode x supernode x grid) terms, use the Poisson approximation.
 MAX_EXACT_TERMS = 60_000_000
@@ -42,19 +42,20 @@ def true_degree_histogram(degrees) -> np.ndarray:
     return np.bincount(np.asarray(degrees, dtype=np.int64)).astype(np.float64)
 
 
-def _per_member_rates(a, b, count, sizes, a_starts=None):
+def _per_member_rates(a, b, count, sizes, rows=None):
     """Expected contacts of one member of each supernode (block model).
 
-    ``a_starts`` (:func:`aggpub.cells.row_starts`, kept by :func:`block_model_terms`): where each supernode's
-    run of cells begins when ``a`` is sorted and every supernode has cells; the ``a`` ends are then sums
-    over runs (``numpy.add.reduceat``, several times faster than a weighted ``bincount`` on millions of
-    cells; the same sums of whole numbers).
+    ``rows`` (:class:`aggpub.cells.CellRows` of the cells, kept by :func:`block_model_terms`) sums each
+    supernode's run of cells when they are in row order: several times faster than a weighted
+    ``bincount`` on millions of cells, the same sums of whole numbers.
     """
     sizes = np.asarray(sizes, dtype=np.float64)
     count = np.asarray(count, dtype=np.float64)
-    from_a = (np.add.reduceat(count, a_starts) if a_starts is not None
-              else np.bincount(a, weights=count, minlength=len(sizes)))
-    ends = from_a + np.bincount(b, weights=count, minlength=len(sizes))
+    if rows is not None:
+        ends = rows.totals(count)
+    else:
+        ends = np.bincount(a, weights=count, minlength=len(sizes)) + np.bincount(b, weights=count,
+                                                                                 minlength=len(sizes))
     return ends / np.maximum(sizes, 1.0)
 
 
@@ -82,7 +83,7 @@ def block_model_terms(a, b, sizes) -> dict:
     m_ab = np.where(diag, sizes[a] - 1.0, sizes[b].astype(np.float64))
     m_ba = np.where(diag, 0.0, sizes[a].astype(np.float64))
     return {"a": a, "b": b, "sizes": sizes, "cap": possible_pairs(sizes, a, b).astype(np.float64),
-            "m_ab": m_ab, "m_ba": m_ba, "a_starts": row_starts(a, len(sizes))}
+            "m_ab": m_ab, "m_ba": m_ba, "rows": CellRows(a, b, len(sizes))}
 
 
 def implied_degree_pmf(a, b, count, sizes, *, method: str = "auto", terms: dict | None = None
@@ -122,7 +123,7 @@ def implied_degree_pmf(a, b, count, sizes, *, method: str = "auto", terms: dict 
     n = len(sizes)
     count = np.clip(np.asarray(count, dtype=np.float64), 0.0, cap)
     weights = sizes / sizes.sum()
-    lam = _per_member_rates(a, b, count, sizes, terms.get("a_starts"))
+    lam = _per_member_rates(a, b, count, sizes, terms.get("rows"))
     # support: the mean plus 12 standard deviations (and 20). A member's variance sum_b m_ab p (1 - p) is at
     # most its mean sum_b m_ab p = lam, so the Poisson's sqrt(lam) bounds both laws' deviations
     top = int(np.ceil(np.max(lam + 12 * np.sqrt(lam) + 20))) if n else 1

@@ -30,7 +30,7 @@ Workloads
 from __future__ import annotations
 
 __all__ = ["PairLabels", "superedge_cells_workload", "contact_matrix_workload", "cut_workload", "degree_totals_workload",
-           "Workload", "CutWorkload"]
+           "Workload", "CutWorkload", "RowTotalsWorkload"]
 
 from collections.abc import Sequence
 from dataclasses import dataclass, field
@@ -38,7 +38,7 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy import sparse
 
-from ..cells import cell_index
+from ..cells import CellRows, cell_index
 
 
 class PairLabels(Sequence):
@@ -276,20 +276,39 @@ def cut_workload(a, b, n_groups: int, n_queries: int, rng: np.random.Generator,
 
 
 def degree_totals_workload(a, b, n_groups: int) -> Workload:
-    """Sum of member degrees per supernode."""
-    n_cells = len(a)
+    """Sum of member degrees per supernode: every cell touching it, the diagonal cell twice."""
     a = np.asarray(a, dtype=np.int64)
     b = np.asarray(b, dtype=np.int64)
-    diag = a == b
-    # column by column (one cell each): the diagonal cell is one entry of 2 at row a, any other
-    # cell two entries of 1 at rows a and b; built as CSC without sorting (and kept so)
-    per_col = np.where(diag, 1, 2)
-    indptr = np.zeros(n_cells + 1, dtype=np.int64)
-    np.cumsum(per_col, out=indptr[1:])
-    rows = np.empty(int(indptr[-1]), dtype=np.int64)
-    vals = np.ones(len(rows))
-    rows[indptr[:-1]] = a
-    vals[indptr[:-1][diag]] = 2.0
-    rows[indptr[:-1][~diag] + 1] = b[~diag]
-    mat = sparse.csc_matrix((vals, rows, indptr), shape=(n_groups, n_cells))
-    return Workload("supernode_degree_totals", mat, n_cells)
+    return RowTotalsWorkload("supernode_degree_totals", None, len(a), rows=CellRows(a, b, n_groups),
+                             diagonal=np.bincount(a[a == b], minlength=n_groups))
+
+
+@dataclass
+class RowTotalsWorkload(Workload):
+    """Per-supernode totals ``2 x_AA + sum_{B != A} x_AB`` answered by sums over the cells
+    (:class:`aggpub.cells.CellRows`: runs of cells in row order), no matrix built.
+
+    The noise variance of a total is the sum of its squared weights times the cell variance: 1 for every
+    cell touching the supernode, 4 for its diagonal cell (weight 2).
+    """
+
+    rows: CellRows | None = None
+    diagonal: np.ndarray | None = None  # diagonal cells of each supernode (0 or 1)
+
+    def answer(self, cells: np.ndarray) -> np.ndarray:
+        cells = np.asarray(cells, dtype=np.float64)
+        if cells.ndim == 1:
+            return self.rows.totals(cells)
+        return np.vstack([self.rows.totals(row) for row in cells])
+
+    def noise_variance(self, cell_variance: float) -> np.ndarray:
+        weights = self.rows.totals(np.ones(self.n_cells)) + 2.0 * self.diagonal  # 1 + 1 ... + 4 on the diagonal
+        return weights * float(cell_variance)
+
+    @property
+    def n_queries(self) -> int:
+        return self.rows.n
+
+    @property
+    def single_cell(self) -> bool:
+        return False

@@ -57,34 +57,13 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from ..cells import CellRows
+
 
 def degree_totals(x, a, b, n: int) -> np.ndarray:
     """``M x``: each supernode's degree total (``2 x_AA + sum_{B != A} x_AB``) from cell values ``x``."""
     x = np.asarray(x, dtype=np.float64)
     return np.bincount(a, weights=x, minlength=n) + np.bincount(b, weights=x, minlength=n)
-
-
-class _Rows:
-    """``M x`` and ``M^T v`` for fixed cells, fast when the cells are in row order (the bundle's order)."""
-
-    def __init__(self, a, b, n):
-        self.a, self.b, self.n = a, b, n
-        self.sorted_a = bool(len(a) == 0 or np.all(a[1:] >= a[:-1]))
-        if self.sorted_a:
-            self.starts = np.searchsorted(a, np.arange(n))
-            self.nonempty = self.starts < np.append(self.starts[1:], len(a))
-
-    def totals(self, x):
-        out = np.bincount(self.b, weights=x, minlength=self.n)
-        if self.sorted_a and len(x):
-            sums = np.add.reduceat(x, np.minimum(self.starts, len(x) - 1))
-            out += np.where(self.nonempty, sums, 0.0)
-        else:
-            out += np.bincount(self.a, weights=x, minlength=self.n)
-        return out
-
-    def spread(self, v):
-        return np.take(v, self.a) + np.take(v, self.b)
 
 
 def blue_cells(y, v_s: float, a, b, n: int, z=None, v_z=None) -> np.ndarray:
@@ -98,7 +77,7 @@ def blue_cells(y, v_s: float, a, b, n: int, z=None, v_z=None) -> np.ndarray:
         return y.copy()
     z = np.asarray(z, dtype=np.float64)
     d = v_s * (n + 2) + np.asarray(v_z, dtype=np.float64)  # S = diag(d) + v_s 1 1^T
-    rows = _Rows(a, b, n)
+    rows = CellRows(a, b, n)
     resid = z - rows.totals(y)
     dinv_r = resid / d
     dinv_1 = 1.0 / d
@@ -151,7 +130,7 @@ def project_cells(x0, a, b, n: int, r, cap, *, full_table: bool = True, tol: flo
     """
     x0 = np.asarray(x0, dtype=np.float64)
     cap = np.asarray(cap, dtype=np.float64)
-    rows = _Rows(a, b, n)
+    rows = CellRows(a, b, n)
     r = np.clip(np.asarray(r, dtype=np.float64), 0.0, rows.totals(cap))
     scale = max(1.0, float(np.abs(r).max()) if n else 1.0)
     goal = tol * scale
@@ -253,5 +232,5 @@ def consistent_counts(y, sizes, v_s: float, a, b, *, z=None, v_z=None, cap=None)
     b = np.asarray(b, dtype=np.int64)
     cap = possible_pairs(sizes, a, b) if cap is None else np.asarray(cap)
     xb = blue_cells(y, v_s, a, b, n, z, v_z)
-    r = _Rows(a, b, n).totals(xb)
+    r = CellRows(a, b, n).totals(xb)
     return project_cells(xb, a, b, n, r, cap, full_table=len(a) == n * (n + 1) // 2)
