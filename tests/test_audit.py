@@ -854,3 +854,27 @@ def test_member_rates_by_runs_equal_the_weighted_bincount():
             assert np.array_equal(_per_member_rates(ka, kb, kc, sizes, rows), reference)
             np.testing.assert_allclose(_per_member_rates(ka, kb, kf, sizes, rows),
                                        _per_member_rates(ka, kb, kf, sizes), rtol=1e-12)
+
+
+def test_cut_queries_of_whole_numbers_in_single_precision_are_exact():
+    """Cut queries of a table the caller marks as whole numbers (absolute sum below 2**24) are multiplied in
+    single precision; the answers are the very numbers of the double-precision product and of numpy's dense
+    product, for counts, signed whole numbers, several tables at once, and above 2**24 (double precision)."""
+    rng = np.random.default_rng(11)
+    n = 60
+    a, b = comp.all_cells(n)
+    cut = qw.cut_workload(a, b, n, 40, rng)
+    first, second = cut._layout()[:2]
+
+    def by_numpy(table):
+        m = np.zeros((n, n))
+        m[a, b] = table
+        m[b, a] = table
+        return np.einsum("qi,qi->q", first @ m, second)
+
+    counts = rng.integers(0, 900, len(a)).astype(np.float64)
+    for table in (counts, counts - 450.0, counts * 10_000.0):  # the last adds up to more than 2**24
+        assert np.array_equal(cut.answer(table, whole=True), by_numpy(table))
+        assert np.array_equal(cut.answer(table, whole=True), cut.answer(table))
+    both = np.vstack([counts, counts - 450.0])
+    assert np.array_equal(cut.answer(both, whole=True), np.vstack([by_numpy(counts), by_numpy(counts - 450.0)]))

@@ -305,7 +305,8 @@ def _monte_carlo(truth, mech, monte_carlo, source, deg_mc):
         table = np.asarray(table, dtype=np.float64)
         del noisy
         errors = _Once(mc_errors)  # workloads whose answers are the cells themselves share one computation
-        return degree, {w.name: errors(truth.true_answers[w.name], w.answer(table), truth.s_bound)
+        # the clamped draw holds whole numbers (counts plus two-sided geometric noise, clamped at whole bounds)
+        return degree, {w.name: errors(truth.true_answers[w.name], w.answer(table, whole=True), truth.s_bound)
                         for w in truth.workloads}
 
     for degree, errors in map_draws(one_draw, int(monte_carlo), len(st.count), source):
@@ -398,6 +399,9 @@ def _add_monte_carlo(summ: dict, runs: dict | None) -> None:
 def _released_figures(truth, st, mech, rel, unclamped, consistent, mc, plot) -> dict:
     """The query workloads' figures of the released tables (without the Monte Carlo's spread)."""
     out = {}
+    # released counts are whole numbers (an integer column), the estimates fractional: cut queries use it
+    whole_rel = np.issubdtype(np.asarray(rel).dtype, np.integer)
+    whole_unclamped = unclamped is not None and np.issubdtype(unclamped.dtype, np.integer)
     rel = np.asarray(rel, dtype=np.float64)  # as every workload reads it (one array: see _Once)
     unclamped = None if unclamped is None else unclamped.astype(np.float64)
     consistent = None if consistent is None else consistent.astype(np.float64)
@@ -405,8 +409,8 @@ def _released_figures(truth, st, mech, rel, unclamped, consistent, mc, plot) -> 
     relative = _Once(lambda t, e, s: np.abs(e - t) / np.maximum(t, s))
     for w in truth.workloads:
         tru = truth.true_answers[w.name]
-        est = w.answer(rel)
-        est_u = None if unclamped is None else w.answer(unclamped)
+        est = w.answer(rel, whole=whole_rel)
+        est_u = None if unclamped is None else w.answer(unclamped, whole=whole_unclamped)
         est_c = None if consistent is None else w.answer(consistent)
         out[w.name] = _workload_summary(w, tru, est, est_u, mech, truth.s_bound, mc, est_c, summaries)
         plot["rel_errors"][w.name] = relative(tru, est, truth.s_bound)

@@ -87,7 +87,7 @@ def _add_workloads(truth: AuditTruth, *, cuts: int, rng, contact_matrices_only: 
             workloads.append(qw.degree_totals_workload(st.a, st.b, truth.n_groups))
         truth.workloads = workloads
         true_t = st.count.astype(np.float64)
-        truth.true_answers = {w.name: w.answer(true_t) for w in workloads}
+        truth.true_answers = {w.name: w.answer(true_t, whole=True) for w in workloads}  # true counts
 
     if defer:
         truth.pending = build
