@@ -161,3 +161,24 @@ def test_supernode_values_small_cases():
     (view,) = views_from_superedges(truth, [np.array([0, 1, 1])], [3])
     # cells in order {0,0} {0,1} {0,2} {1,1} {1,2} {2,2}: supernodes 1 and 2 both hold value 1
     np.testing.assert_array_equal(view, [[4, 2, 0, 12, 0, 0]])
+
+
+def test_supernodes_holding_their_own_values_in_order_sum_each_cell_into_itself():
+    """Every supernode holding its own value, in value order (grouping by the view's attribute alone): the view
+    is the superedge table itself, cell by cell; the same integers as summing through ``view_cell_index`` with
+    values that are any permutation (numpy's bincount as the reference)."""
+    rng = np.random.default_rng(4)
+    k = 30
+    a, b = np.triu_indices(k)
+    keep = rng.random(len(a)) < 0.7  # the non-zero cells of a table, as the engine lists them
+    truth = SuperedgeTruth(a=a[keep].astype(np.int64), b=b[keep].astype(np.int64),
+                           count=rng.integers(1, 40, int(keep.sum())))
+    own = views_from_superedges(truth, [np.arange(k)], [k])[0][0]
+    expect = np.zeros(k * (k + 1) // 2, dtype=np.int64)
+    expect[view_cell_index(truth.a, truth.b, k)] = truth.count
+    np.testing.assert_array_equal(own, expect)
+    perm = rng.permutation(k)
+    permuted = views_from_superedges(truth, [perm], [k])[0][0]
+    ref = np.bincount(view_cell_index(perm[truth.a], perm[truth.b], k), weights=truth.count,
+                      minlength=k * (k + 1) // 2)
+    np.testing.assert_array_equal(permuted, ref.astype(np.int64))

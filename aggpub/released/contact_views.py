@@ -161,6 +161,7 @@ def views_from_superedges(superedges, values, n_values):
     list of numpy.ndarray of int64, shape ``(1, K (K + 1) / 2)``
         As :meth:`aggpub.engines._duckdb.DuckDBEngine.view_counts` with one layer.
     """
+    from ..cells import cell_index
     from ..estimates.views import view_cell_count, view_cell_index
 
     a = np.asarray(superedges.a, dtype=np.int64)
@@ -168,7 +169,11 @@ def views_from_superedges(superedges, values, n_values):
     weight = np.asarray(superedges.count, dtype=np.float64)  # integers far below 2**53: sums are exact
     out = []
     for value, k in zip(values, n_values):
-        cell = view_cell_index(value[a], value[b], int(k))
+        if len(value) == int(k) and np.array_equal(value, np.arange(int(k))) and bool(np.all(a <= b)):
+            # every supernode holds its own value, in value order: the view cell of (A, B) is the cell itself
+            cell = cell_index(a, b, int(k))
+        else:
+            cell = view_cell_index(value[a], value[b], int(k))
         total = np.bincount(cell, weights=weight, minlength=view_cell_count(k))
         out.append(np.rint(total).astype(np.int64).reshape(1, -1))
     return out
