@@ -351,6 +351,16 @@ def _graph(name):
     return G, rows
 
 
+def _karate_tables():
+    """People (band, area) and layered contacts of the karate club with invented attributes, as Arrow tables."""
+    G, rows = _graph("karate")
+    people = pa.table({"node": [f"n{n}" for n in G.nodes()], "band": [G.nodes[n]["band"] for n in G.nodes()],
+                       "area": [G.nodes[n]["area"] for n in G.nodes()]})
+    edges = pa.table({"source": [f"n{a}" for a, _, _ in rows], "target": [f"n{b}" for _, b, _ in rows],
+                      "setting": [LAYERS[lay] for _, _, lay in rows]})
+    return people, edges
+
+
 def _write_inputs(G, rows, tmp_path, epsilon):
     with open(tmp_path / "people.csv", "w", newline="") as f:
         w = csv.writer(f)
@@ -510,11 +520,7 @@ def test_interval_coverage_over_fresh_releases_binomial():
     squares' are also tested at the estimate level in ``tests/test_contact_matrix.py``)."""
     import aggpub
 
-    G, rows = _graph("karate")
-    people = pa.table({"node": [f"n{n}" for n in G.nodes()], "band": [G.nodes[n]["band"] for n in G.nodes()],
-                       "area": [G.nodes[n]["area"] for n in G.nodes()]})
-    edges = pa.table({"source": [f"n{a}" for a, _, _ in rows], "target": [f"n{b}" for _, b, _ in rows],
-                      "setting": [LAYERS[lay] for _, _, lay in rows]})
+    people, edges = _karate_tables()
     pol = {"privacy": {"epsilon": 1.0}, "grouping": {"attributes": ["band", "area"], "min_size": 8},
            "layers": {"column": "setting", "values": list(LAYERS[:3])}}
     covered, n_trials = 0, 200
@@ -596,11 +602,7 @@ def test_audit_reports_the_views_and_decides_nothing(tmp_path):
     from aggpub.audit import audit_release
     from aggpub.audit.report import render_html
 
-    G, rows = _graph("karate")
-    people = pa.table({"node": [f"n{n}" for n in G.nodes()], "band": [G.nodes[n]["band"] for n in G.nodes()],
-                       "area": [G.nodes[n]["area"] for n in G.nodes()]})
-    edges = pa.table({"source": [f"n{a}" for a, _, _ in rows], "target": [f"n{b}" for _, b, _ in rows],
-                      "setting": [LAYERS[lay] for _, _, lay in rows]})
+    people, edges = _karate_tables()
     pol = {"privacy": {"epsilon": 2.0}, "grouping": {"attributes": ["band", "area"], "min_size": 8},
            "layers": {"column": "setting", "values": list(LAYERS[:3])}}
     r = release_tables(edges, people, pol, seed=2)
@@ -619,11 +621,7 @@ def test_audit_view_plot_codes_are_the_cells_the_figures_compare(monkeypatch):
     Zachary's karate club (Zachary 1977, as networkx ships it), with invented bands and areas."""
     from aggpub.audit.core import _view_matrix, _view_plot_data
 
-    G, rows = _graph("karate")
-    people = pa.table({"node": [f"n{n}" for n in G.nodes()], "band": [G.nodes[n]["band"] for n in G.nodes()],
-                       "area": [G.nodes[n]["area"] for n in G.nodes()]})
-    edges = pa.table({"source": [f"n{a}" for a, _, _ in rows], "target": [f"n{b}" for _, b, _ in rows],
-                      "setting": [LAYERS[lay] for _, _, lay in rows]})
+    people, edges = _karate_tables()
     pol = {"privacy": {"epsilon": 2.0}, "grouping": {"attributes": ["band", "area"], "min_size": 8},
            "layers": {"column": "setting", "values": list(LAYERS[:3])},
            "components": {"contact_views": {"attributes": ["band"], "combinations": ["band,area"]}}}

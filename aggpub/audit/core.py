@@ -21,7 +21,6 @@ import numpy as np
 from ..progress import silent
 from ..released import release_degree_histograms
 from . import degrees as deg
-from . import network_stats as struct
 from .draws import audit_source, default_monte_carlo, draw_noise, map_draws, mc_errors, post_process, spread
 from .sampled import MAX_STRUCTURE_EDGES
 from .metrics import distribution_distances, error_summary

@@ -233,22 +233,26 @@ def start_spare(contacts: int) -> None:
 def discard_spare() -> None:
     """End the spare helper if no side took it."""
     while _SPARE:
-        proc = _SPARE.pop()
-        if proc.poll() is None:
-            proc.kill()
-        proc.wait()
-        for stream in (proc.stdin, proc.stdout):
-            if stream is not None:
-                stream.close()
+        _end(_SPARE.pop())
 
 
 def _take_spare():
+    """The spare helper if it is still waiting for its jobs (one that died is ended), else ``None``."""
     while _SPARE:
         proc = _SPARE.pop()
         if proc.poll() is None:
             return proc
-        proc.wait()
+        _end(proc)
     return None
+
+
+def _end(proc) -> None:
+    if proc.poll() is None:
+        proc.kill()
+    proc.wait()
+    for stream in (proc.stdin, proc.stdout):
+        if stream is not None:
+            stream.close()
 
 
 def start_jobs(jobs: tuple, contacts: int, parallel: bool | None = None):
