@@ -407,3 +407,28 @@ def test_the_modules_imported_ahead_exist():
 
     for name in AFTER_READING:
         importlib.import_module(name)
+
+
+def test_public_names_load_on_first_use():
+    """Every name in ``__all__`` of the packages that load lazily resolves (a typo in a lazy table would only
+    show when used); ``import aggpub`` alone loads neither the pipeline nor scipy nor DuckDB (checked in a
+    fresh interpreter), and the audit's helper imports stay off the engines and the report."""
+    import subprocess
+    import sys
+
+    import aggpub
+    import aggpub.audit
+    import aggpub.bundle
+
+    for package in (aggpub, aggpub.audit, aggpub.bundle):
+        for name in package.__all__:
+            assert getattr(package, name) is not None, (package.__name__, name)
+        assert set(package.__all__) <= set(dir(package))
+    code = ("import sys, aggpub; "
+            "bare = sorted(m for m in ('aggpub.pipeline', 'scipy', 'duckdb') if m in sys.modules); "
+            "from aggpub.audit.sampled import _import_side; _import_side(); "
+            "side = sorted(m for m in ('aggpub.pipeline', 'aggpub.engines', 'aggpub.audit.report', 'duckdb') "
+            "if m in sys.modules); print(bare, side)")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120, cwd=REPO)
+    assert out.returncode == 0, out.stderr[-2000:]
+    assert out.stdout.strip() == "[] []", out.stdout
