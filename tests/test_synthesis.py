@@ -387,10 +387,19 @@ def test_false_position_finds_the_root_scipy_finds():
         assert len(calls) <= 14  # plain regula falsi needs 19 and 40 trials on the two convex ones (one end stays)
     assert _false_position(lambda x: x + 0.1, 1e-6, 5) == 0.0
     assert _false_position(lambda x: x - 1.5, 1e-6, 5) == 1.0
-    # a loose tolerance stops at the first trial inside it
+    # a loose tolerance stops at the first trial inside it: here the first, at 1/2
     seen = []
     root = _false_position(lambda x: seen.append(x) or (x - 0.5), 0.2, 5)
-    assert abs(root - 0.5) <= 0.2 and len(seen) == 3  # the two ends, then one interior trial
+    assert root == 0.5 and seen == [0.5]
+    # the first trial at 1/2, then the end on the root's side, then false-position points inside that half
+    for true_root in (0.8, 0.2):
+        seen = []
+        _false_position(lambda x, r=true_root: seen.append(x) or (x - r), 1e-9, 5)
+        assert seen[:2] == ([0.5, 1.0] if true_root > 0.5 else [0.5, 0.0])
+        assert all(min(seen[:2]) <= x <= max(seen[:2]) for x in seen[2:])
+    # beyond an end: that end, after the trial at 1/2 and the end itself
+    seen = []
+    assert _false_position(lambda x: seen.append(x) or (x + 0.1), 1e-6, 5) == 0.0 and seen == [0.5, 0.0]
 
 
 # --------------------------------------------------------------------------- the sampler's sorting helpers
