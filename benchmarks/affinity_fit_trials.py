@@ -39,23 +39,7 @@ def previous_start(f, tolerance: float, steps: int) -> float:
     hi, f_hi = 1.0, f(1.0)
     if f_hi <= 0:
         return 1.0
-    kept = 0
-    for _ in range(steps):
-        mid = min(max(lo - f_lo * (hi - lo) / (f_hi - f_lo), lo), hi)
-        f_mid = f(mid)
-        if abs(f_mid) <= tolerance:
-            return float(mid)
-        if f_mid < 0:
-            lo, f_lo = mid, f_mid
-            if kept == -1:
-                f_hi /= 2.0
-            kept = -1
-        else:
-            hi, f_hi = mid, f_mid
-            if kept == 1:
-                f_lo /= 2.0
-            kept = 1
-    return float(min(max(lo - f_lo * (hi - lo) / (f_hi - f_lo), lo), hi))
+    return sampler.illinois(f, lo, f_lo, hi, f_hi, tolerance, steps)
 
 
 def trials(inputs, finder, seed: int):

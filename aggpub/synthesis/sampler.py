@@ -273,6 +273,13 @@ def _false_position(f, tolerance: float, steps: int) -> float:
         lo, f_lo = 0.0, f(0.0)
         if f_lo >= 0:
             return 0.0
+    return illinois(f, lo, f_lo, hi, f_hi, tolerance, steps)
+
+
+def illinois(f, lo: float, f_lo: float, hi: float, f_hi: float, tolerance: float, steps: int) -> float:
+    """The Illinois method on the bracket ``[lo, hi]`` (``f_lo < 0 < f_hi``): at most ``steps`` false-position
+    points, stopping at the first with ``|f| <= tolerance``; else the false-position point of the final
+    bracket (Dowell and Jarratt 1971: an end kept twice in a row has its value halved)."""
     kept = 0  # +1: the low end was kept last time, -1: the high end
     for _ in range(steps):
         mid = min(max(lo - f_lo * (hi - lo) / (f_hi - f_lo), lo), hi)
