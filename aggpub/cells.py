@@ -93,14 +93,15 @@ class CellRows:
         self.a, self.b, self.n = a, b, n
         self.sorted_a = bool(len(a) == 0 or np.all(a[1:] >= a[:-1]))
         if self.sorted_a:
-            self.starts = np.searchsorted(a, np.arange(n))
-            self.nonempty = self.starts < np.append(self.starts[1:], len(a))
+            starts = np.searchsorted(a, np.arange(n))
+            self.nonempty = starts < np.append(starts[1:], len(a))
+            self.run_starts = starts[self.nonempty]  # one run per supernode that has cells as ``a``
 
     def totals(self, x):
         out = np.bincount(self.b, weights=x, minlength=self.n)
         if self.sorted_a and len(x):
             # one run per supernode that has cells (each runs to the next such start, the last to the end)
-            out[self.nonempty] += np.add.reduceat(x, self.starts[self.nonempty])
+            out[self.nonempty] += np.add.reduceat(x, self.run_starts)
         else:
             out += np.bincount(self.a, weights=x, minlength=self.n)
         return out

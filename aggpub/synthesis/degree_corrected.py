@@ -65,6 +65,14 @@ UNIFORM_AFTER = 60
 MAX_ROUNDS = 200
 
 
+def _run_heads(x: np.ndarray) -> np.ndarray:
+    """Where each run of equal values of ``x`` begins (``x`` not empty)."""
+    new = np.empty(len(x), bool)
+    new[0] = True
+    np.not_equal(x[1:], x[:-1], out=new[1:])
+    return np.flatnonzero(new)
+
+
 def _run_starts(x: np.ndarray) -> np.ndarray:
     """For a non-decreasing array, the position of the first element equal to each element.
 
@@ -73,10 +81,7 @@ def _run_starts(x: np.ndarray) -> np.ndarray:
     n = len(x)
     if n == 0:
         return np.zeros(0, np.int64)
-    new = np.empty(n, bool)
-    new[0] = True
-    np.not_equal(x[1:], x[:-1], out=new[1:])
-    heads = np.flatnonzero(new)
+    heads = _run_heads(x)
     return np.repeat(heads, np.diff(np.append(heads, n)))
 
 
@@ -336,10 +341,7 @@ def _new_first_occurrences(keys, cell, *present):
         return keys, cell
     order = np.argsort(keys)
     sk = keys[order]
-    new = np.empty(len(sk), bool)
-    new[0] = True
-    np.not_equal(sk[1:], sk[:-1], out=new[1:])
-    heads = np.flatnonzero(new)
+    heads = _run_heads(sk)
     first = np.minimum.reduceat(order, heads)
     distinct = sk[heads]
     seen = np.zeros(len(distinct), bool)
