@@ -74,17 +74,21 @@ def final_size(u, v, n: int, T: float, rng, draws: int) -> float:
 def network_figures(u, v, n: int, T: float, rng, draws: int = 10, average_clustering: float | None = None) -> dict:
     """Contacts, degrees, largest degree, average clustering and final size of one network.
 
-    ``average_clustering`` may be passed when already computed (the audit's structure
-    statistics have it), which spares the sparse product that finds the triangles.
+    ``u, v``: a simple undirected network (no self-loop, each contact once), as the engine's
+    contacts and the sampler's draws are. ``average_clustering`` may be passed when already
+    computed (the audit's structure statistics have it), which spares the sparse product that
+    finds the triangles (and the adjacency matrix it needs).
     """
-    adj = adjacency(u, v, n)
-    deg = np.asarray(adj.sum(axis=1)).ravel().astype(np.int64)
+    u = np.asarray(u, dtype=np.int64)
+    v = np.asarray(v, dtype=np.int64)
+    deg = np.bincount(u, minlength=n) + np.bincount(v, minlength=n)
     if average_clustering is None:
+        adj = adjacency(u, v, n)
         tri2 = np.asarray((adj @ adj).multiply(adj).sum(axis=1)).ravel()
         pairs = deg * (deg - 1.0)
         local = np.divide(tri2, pairs, out=np.zeros(len(deg)), where=pairs > 0)
         average_clustering = float(local.mean()) if n else 0.0
-    return {"contacts": int(adj.nnz // 2), "degrees": deg, "largest_degree": int(deg.max()) if n else 0,
+    return {"contacts": int(len(u)), "degrees": deg, "largest_degree": int(deg.max()) if n else 0,
             "average_clustering": float(average_clustering), "final_size": final_size(u, v, n, T, rng, draws)}
 
 
