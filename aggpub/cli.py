@@ -655,9 +655,13 @@ def run() -> None:
     ledger's connections are closed and the engine (with its spill folder) is
     closed; the process then ends without the interpreter's teardown of the
     scientific libraries, which costs about a second and does nothing useful.
-    Every other outcome exits normally. The BLAS library gets one thread (:func:`one_blas_thread`), and
-    Arrow the C library's allocator (:func:`system_arrow_memory`).
+    Every other outcome exits normally. The BLAS library gets one thread (:func:`one_blas_thread`),
+    Arrow the C library's allocator (:func:`system_arrow_memory`), and the process no transparent huge
+    pages (:func:`aggpub.pages.no_huge_pages`).
     """
+    from .pages import no_huge_pages
+
+    no_huge_pages()
     one_blas_thread()
     system_arrow_memory()
     code = main()

@@ -10,9 +10,11 @@ Speed only: every array holds the same values.
 
 from __future__ import annotations
 
-__all__ = ["small_pages"]
+__all__ = ["small_pages", "no_huge_pages", "HUGE_PAGES_VARIABLE"]
 
 import contextlib
+import os
+import sys
 import threading
 
 _PAGES_LOCK = threading.Lock()
@@ -55,3 +57,54 @@ def small_pages():
             _PAGES_STATE["depth"] -= 1
             if _PAGES_STATE["depth"] == 0:
                 setter(_PAGES_STATE["before"])
+
+
+#: Set to ``keep`` to keep the kernel's transparent huge pages in an ``aggpub`` command (:func:`no_huge_pages`).
+HUGE_PAGES_VARIABLE = "AGGPUB_HUGE_PAGES"
+#: Linux ``prctl`` options (``linux/prctl.h``).
+_PR_SET_THP_DISABLE, _PR_GET_THP_DISABLE = 41, 42
+
+
+def no_huge_pages() -> bool:
+    """Transparent huge pages off for this process and the processes it starts (Linux), during an ``aggpub`` command.
+
+    The kernel backs large anonymous allocations (DuckDB's hash tables, numpy's and Arrow's
+    arrays) with 2 MiB pages and clears each one when first touched. On a virtual machine whose
+    host takes back the guest's free memory (free page reporting), each such page is fresh host
+    memory: in ``perf record`` of a 10M-contact release, ``clear_page_erms`` under huge-page faults
+    took half of all samples, and the system time of the same release went from 1 s to 6 s as the
+    machine's memory state changed. Measured on a 2-core machine, whole processes, interleaved
+    (``benchmarks/README.md``, 2026-12-03): 10M contacts 4.50-4.64 s with huge pages off against
+    7.01-8.71 s with them on (system time 1.3 against 4.8 s); the demo town the same (median 1.58
+    against 1.61 s). Set with ``prctl(PR_SET_THP_DISABLE)``, which children inherit (the audit's
+    helper). Nothing changes when :data:`HUGE_PAGES_VARIABLE` is set to ``keep``, off Linux, or
+    for library use (``import aggpub``). Speed only: memory holds the same values whichever page
+    size backs it.
+
+    Returns
+    -------
+    bool
+        Whether huge pages were switched off here.
+    """
+    if os.environ.get(HUGE_PAGES_VARIABLE, "").strip().lower() == "keep" or not sys.platform.startswith("linux"):
+        return False
+    try:
+        import ctypes
+
+        libc = ctypes.CDLL(None, use_errno=True)
+        return libc.prctl(_PR_SET_THP_DISABLE, 1, 0, 0, 0) == 0
+    except (OSError, AttributeError):  # no C library to call, or no prctl in it
+        return False
+
+
+def huge_pages_disabled() -> bool | None:
+    """Whether this process has transparent huge pages switched off (``None`` where that cannot be asked)."""
+    if not sys.platform.startswith("linux"):
+        return None
+    try:
+        import ctypes
+
+        got = ctypes.CDLL(None, use_errno=True).prctl(_PR_GET_THP_DISABLE, 0, 0, 0, 0)
+    except (OSError, AttributeError):
+        return None
+    return None if got < 0 else bool(got)

@@ -80,3 +80,53 @@ def test_numpy_has_the_switch():
         assert setter(False) is False
     finally:
         setter(before)
+
+
+# ------------------------------------------------------------------ the command: no huge pages for the process
+
+def _probe_huge_pages(**extra) -> dict:
+    """A fresh interpreter calls ``no_huge_pages`` and asks the kernel, for itself and for a child it starts."""
+    import json
+    import os
+    import subprocess
+    import sys
+    from pathlib import Path
+
+    root = Path(__file__).resolve().parents[1]
+    probe = ("import json, subprocess, sys\n"
+             "import aggpub.pages as p\n"
+             "before = p.huge_pages_disabled()\n"
+             "applied = p.no_huge_pages()\n"
+             "child = subprocess.run([sys.executable, '-c', 'import aggpub.pages as p; "
+             "print(p.huge_pages_disabled())'], capture_output=True, text=True).stdout.strip()\n"
+             "print(json.dumps({'before': before, 'applied': applied, 'after': p.huge_pages_disabled(), "
+             "'child': child}))\n")
+    env = {k: v for k, v in os.environ.items() if k != run.HUGE_PAGES_VARIABLE}
+    env.update(extra)
+    env["PYTHONPATH"] = str(root) + os.pathsep + env.get("PYTHONPATH", "")
+    out = subprocess.run([sys.executable, "-c", probe], env=env, capture_output=True, text=True, check=True)
+    return json.loads(out.stdout.strip().splitlines()[-1])
+
+
+@pytest.mark.skipif(run.huge_pages_disabled() is None, reason="the kernel cannot be asked (not Linux)")
+def test_the_command_switches_huge_pages_off_for_itself_and_its_helpers():
+    got = _probe_huge_pages()
+    assert got["applied"] is True and got["after"] is True and got["child"] == "True"
+
+
+def test_a_users_keep_is_kept():
+    got = _probe_huge_pages(**{run.HUGE_PAGES_VARIABLE: "keep"})
+    assert got["applied"] is False and got["after"] == got["before"]
+
+
+def test_the_console_script_calls_it(monkeypatch):
+    import aggpub.cli as cli
+
+    calls = []
+    monkeypatch.setattr(run, "no_huge_pages", lambda: calls.append("pages") or True)
+    monkeypatch.setattr(cli, "one_blas_thread", lambda: calls.append("blas") or True)
+    monkeypatch.setattr(cli, "system_arrow_memory", lambda: calls.append("arrow") or True)
+    monkeypatch.setattr(cli, "main", lambda: 2)
+    with pytest.raises(SystemExit):
+        cli.run()
+    assert calls == ["pages", "blas", "arrow"]
