@@ -137,3 +137,25 @@ def test_dense_truth_covers_every_cell():
 def test_cell_index_is_row_major_upper_triangle(n):
     a, b = np.triu_indices(n)
     assert np.array_equal(cell_index(a, b, n), np.arange(len(a)))
+
+
+def test_most_supernodes_the_dense_table_takes_and_batches_of_several_sizes(monkeypatch, counting_path):
+    """Near the dense table's largest supernode count (its cell positions computed in 32-bit integers, in
+    buffers reused across batches of unequal length), every count equals a plain count of the label pairs
+    of networkx's edges on a random graph (Erdos-Renyi, networkx's generator); most people are their own
+    supernode, the rest fall in random ones."""
+    from collections import Counter
+
+    n_groups = 5792  # the largest with n (n + 1) / 2 <= 2**24, the dense table's limit
+    assert n_groups * (n_groups + 1) // 2 <= 1 << 24 < (n_groups + 1) * (n_groups + 2) // 2
+    if counting_path == "numpy-dense":
+        assert _duckdb.DENSE_COUNT_MAX_CELLS == 1 << 24
+    monkeypatch.setattr(_duckdb, "EDGE_BATCH_ROWS", 7)  # batches of max(7, people) rows: a shorter last one
+    G = nx.gnm_random_graph(n_groups + 40, 12_000, seed=5)
+    rng = np.random.default_rng(2)
+    labels = {n: (n if n < n_groups else int(rng.integers(0, n_groups))) for n in G.nodes()}
+    got, net = engine_counts(G, labels)
+    want = Counter((min(labels[x], labels[y]), max(labels[x], labels[y])) for x, y in G.edges())
+    assert got == dict(want)
+    assert max(a for a, _ in got) > 5700  # the last rows of the table were reached
+    assert net.engine.degrees(net.n_people).tolist() == [d for _, d in G.degree()]
