@@ -19,6 +19,12 @@ EXIT_CODES_HELP = """exit codes:
   0 success          1 check found problems   2 usage error      3 input error
   4 policy error     5 privacy/budget error   6 gate failed      7 output error
   8 bundle error     9 internal error         130 interrupted (nothing published)
+
+environment (a value you set is kept):
+  AGGPUB_HUGE_PAGES=keep      keep the kernel's transparent huge pages (switched off by default:
+                              faster on virtual machines)
+  ARROW_DEFAULT_MEMORY_POOL   Arrow's allocator (default here: system)
+  OPENBLAS_NUM_THREADS        threads of the BLAS library (default here: 1)
 """
 
 

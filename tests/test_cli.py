@@ -120,3 +120,13 @@ POLICY_TEXT_GATED = POLICY_TEXT + """
 [gate]
 max_degree_ks = 0.0
 """
+
+
+def test_help_names_the_environment_variables_the_command_sets(capsys):
+    from aggpub.cli import ARROW_POOL_VARIABLE
+    from aggpub.pages import HUGE_PAGES_VARIABLE
+
+    with pytest.raises(SystemExit):
+        main(["--help"])
+    out = capsys.readouterr().out
+    assert f"{HUGE_PAGES_VARIABLE}=keep" in out and ARROW_POOL_VARIABLE in out and "OPENBLAS_NUM_THREADS" in out
