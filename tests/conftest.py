@@ -29,3 +29,22 @@ def simple_policy(attributes, min_size=1, epsilon=1.0, **extra):
 def karate():
     """Zachary's karate club as shipped by networkx (Zachary 1977: 34 nodes, 78 edges)."""
     return nx.karate_club_graph()
+
+
+def fresh_interpreter_json(code: str, drop=(), **extra) -> dict:
+    """Run ``code`` in a fresh interpreter of this checkout and parse its last line as JSON.
+
+    For settings that are process-wide (BLAS threads, Arrow's pool, huge pages): the environment is this
+    one without the variables in ``drop``, plus ``extra``.
+    """
+    import json
+    import os
+    import subprocess
+    import sys
+    from pathlib import Path
+
+    env = {k: v for k, v in os.environ.items() if k not in drop}
+    env.update(extra)
+    env["PYTHONPATH"] = str(Path(__file__).resolve().parents[1]) + os.pathsep + env.get("PYTHONPATH", "")
+    out = subprocess.run([sys.executable, "-c", code], env=env, capture_output=True, text=True, check=True)
+    return json.loads(out.stdout.strip().splitlines()[-1])

@@ -6,15 +6,9 @@ pool, so a choice that is not applied fails here.
 
 from __future__ import annotations
 
-import json
-import os
-import subprocess
-import sys
-from pathlib import Path
-
 from aggpub.cli import ARROW_POOL_VARIABLE
 
-ROOT = Path(__file__).resolve().parents[1]
+from .conftest import fresh_interpreter_json
 
 
 def _probe(import_first: bool = False, **extra) -> dict:
@@ -29,11 +23,7 @@ def _probe(import_first: bool = False, **extra) -> dict:
         "print(json.dumps({'applied': applied, 'env': os.environ.get('ARROW_DEFAULT_MEMORY_POOL'),\n"
         "                  'pool': pa.default_memory_pool().backend_name, 'helper': helper}))\n"
     )
-    env = {k: v for k, v in os.environ.items() if k != ARROW_POOL_VARIABLE}
-    env.update(extra)
-    env["PYTHONPATH"] = str(ROOT) + os.pathsep + env.get("PYTHONPATH", "")
-    out = subprocess.run([sys.executable, "-c", probe], env=env, capture_output=True, text=True, check=True)
-    return json.loads(out.stdout.strip().splitlines()[-1])
+    return fresh_interpreter_json(probe, drop=(ARROW_POOL_VARIABLE,), **extra)
 
 
 def test_the_command_uses_the_system_allocator_and_its_helpers_inherit_it():

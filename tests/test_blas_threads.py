@@ -6,17 +6,14 @@ loaded BLAS libraries, so a limit that is not applied fails here.
 
 from __future__ import annotations
 
-import json
 import os
-import subprocess
-import sys
-from pathlib import Path
 
 import pytest
 
 from aggpub.cli import BLAS_THREAD_VARIABLES
 
-ROOT = Path(__file__).resolve().parents[1]
+from .conftest import fresh_interpreter_json
+
 PROBE = (
     "import json, os, aggpub.cli as c\n"
     "from threadpoolctl import threadpool_info\n"
@@ -28,11 +25,7 @@ PROBE = (
 
 
 def _probe(**extra) -> dict:
-    env = {k: v for k, v in os.environ.items() if k not in BLAS_THREAD_VARIABLES}
-    env.update(extra)
-    env["PYTHONPATH"] = str(ROOT) + os.pathsep + env.get("PYTHONPATH", "")
-    out = subprocess.run([sys.executable, "-c", PROBE], env=env, capture_output=True, text=True, check=True)
-    return json.loads(out.stdout.strip().splitlines()[-1])
+    return fresh_interpreter_json(PROBE, drop=BLAS_THREAD_VARIABLES, **extra)
 
 
 def test_the_command_uses_one_blas_thread():

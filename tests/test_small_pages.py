@@ -86,13 +86,8 @@ def test_numpy_has_the_switch():
 
 def _probe_huge_pages(**extra) -> dict:
     """A fresh interpreter calls ``no_huge_pages`` and asks the kernel, for itself and for a child it starts."""
-    import json
-    import os
-    import subprocess
-    import sys
-    from pathlib import Path
+    from .conftest import fresh_interpreter_json
 
-    root = Path(__file__).resolve().parents[1]
     probe = ("import json, subprocess, sys\n"
              "import aggpub.pages as p\n"
              "before = p.huge_pages_disabled()\n"
@@ -101,11 +96,7 @@ def _probe_huge_pages(**extra) -> dict:
              "print(p.huge_pages_disabled())'], capture_output=True, text=True).stdout.strip()\n"
              "print(json.dumps({'before': before, 'applied': applied, 'after': p.huge_pages_disabled(), "
              "'child': child}))\n")
-    env = {k: v for k, v in os.environ.items() if k != run.HUGE_PAGES_VARIABLE}
-    env.update(extra)
-    env["PYTHONPATH"] = str(root) + os.pathsep + env.get("PYTHONPATH", "")
-    out = subprocess.run([sys.executable, "-c", probe], env=env, capture_output=True, text=True, check=True)
-    return json.loads(out.stdout.strip().splitlines()[-1])
+    return fresh_interpreter_json(probe, drop=(run.HUGE_PAGES_VARIABLE,), **extra)
 
 
 @pytest.mark.skipif(run.huge_pages_disabled() is None, reason="the kernel cannot be asked (not Linux)")
