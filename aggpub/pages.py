@@ -1,4 +1,5 @@
-"""numpy's huge-page advice, switched off around work that makes many short-lived large arrays.
+"""Huge pages: numpy's advice switched off around work that makes many short-lived large arrays, and the
+kernel's transparent huge pages switched off for the ``aggpub`` command (:func:`no_huge_pages`).
 
 On Linux numpy asks the kernel for transparent huge pages for every array of 4 MiB or more. With the
 kernel's common setting (``defrag = madvise``) each such allocation may stop to compact memory first.
@@ -10,7 +11,7 @@ Speed only: every array holds the same values.
 
 from __future__ import annotations
 
-__all__ = ["small_pages", "no_huge_pages", "HUGE_PAGES_VARIABLE"]
+__all__ = ["small_pages", "no_huge_pages", "huge_pages_disabled", "HUGE_PAGES_VARIABLE"]
 
 import contextlib
 import os
@@ -86,25 +87,24 @@ def no_huge_pages() -> bool:
     bool
         Whether huge pages were switched off here.
     """
-    if os.environ.get(HUGE_PAGES_VARIABLE, "").strip().lower() == "keep" or not sys.platform.startswith("linux"):
+    if os.environ.get(HUGE_PAGES_VARIABLE, "").strip().lower() == "keep":
         return False
-    try:
-        import ctypes
-
-        libc = ctypes.CDLL(None, use_errno=True)
-        return libc.prctl(_PR_SET_THP_DISABLE, 1, 0, 0, 0) == 0
-    except (OSError, AttributeError):  # no C library to call, or no prctl in it
-        return False
+    return _prctl(_PR_SET_THP_DISABLE, 1) == 0
 
 
 def huge_pages_disabled() -> bool | None:
     """Whether this process has transparent huge pages switched off (``None`` where that cannot be asked)."""
+    got = _prctl(_PR_GET_THP_DISABLE, 0)
+    return None if got is None or got < 0 else bool(got)
+
+
+def _prctl(option: int, arg: int):
+    """Linux's ``prctl(option, arg, 0, 0, 0)`` through the C library; ``None`` off Linux or without it."""
     if not sys.platform.startswith("linux"):
         return None
     try:
         import ctypes
 
-        got = ctypes.CDLL(None, use_errno=True).prctl(_PR_GET_THP_DISABLE, 0, 0, 0, 0)
-    except (OSError, AttributeError):
+        return ctypes.CDLL(None, use_errno=True).prctl(option, arg, 0, 0, 0)
+    except (OSError, AttributeError):  # no C library to call, or no prctl in it
         return None
-    return None if got < 0 else bool(got)

@@ -121,3 +121,9 @@ def test_the_console_script_calls_it(monkeypatch):
     with pytest.raises(SystemExit):
         cli.run()
     assert calls == ["pages", "blas", "arrow"]
+
+
+def test_nothing_is_asked_of_the_kernel_off_linux(monkeypatch):
+    monkeypatch.setattr(run.sys, "platform", "darwin")
+    monkeypatch.delenv(run.HUGE_PAGES_VARIABLE, raising=False)
+    assert run.no_huge_pages() is False and run.huge_pages_disabled() is None
