@@ -159,3 +159,18 @@ def test_most_supernodes_the_dense_table_takes_and_batches_of_several_sizes(monk
     assert got == dict(want)
     assert max(a for a, _ in got) > 5700  # the last rows of the table were reached
     assert net.engine.degrees(net.n_people).tolist() == [d for _, d in G.degree()]
+
+
+@pytest.mark.parametrize("parts", [1, 3])
+def test_the_dense_counting_gives_the_same_integers_however_many_threads_share_a_batch(monkeypatch, parts):
+    """Batches split among threads (here down to empty shares: 21 contacts in batches of 10, 10 and 1) count
+    the same cells and degrees as a plain count of networkx's edges (Erdos-Renyi, networkx's generator)."""
+    from collections import Counter
+
+    monkeypatch.setattr(_duckdb, "COUNTING_PARTS", parts)
+    monkeypatch.setattr(_duckdb, "EDGE_BATCH_ROWS", 1)  # batches of max(1, people) = 10 rows
+    G = nx.gnm_random_graph(10, 21, seed=1)
+    labels = {n: n % 3 for n in G.nodes()}
+    got, net = engine_counts(G, labels)
+    assert got == dict(Counter((min(labels[x], labels[y]), max(labels[x], labels[y])) for x, y in G.edges()))
+    assert net.engine.degrees(net.n_people).tolist() == [d for _, d in G.degree()]

@@ -29,6 +29,8 @@ MISSING_ID = -2
 UNKNOWN_ID = -1
 #: Rows per Arrow batch when edges stream out of DuckDB into numpy.
 EDGE_BATCH_ROWS = 1 << 22
+#: Threads (each a share of every batch) of the dense superedge counting.
+COUNTING_PARTS = 2
 #: Largest table of superedge cells counted densely in numpy (8 bytes a cell: 128 MiB); above, SQL.
 DENSE_COUNT_MAX_CELLS = 1 << 24
 
@@ -164,6 +166,41 @@ class _BatchBuffers:
                            np.empty(k, dtype=np.int32), np.empty(k, dtype=np.int64))
         ends, lo, low, hi = self.arrays
         return ends[:2 * k], lo[:k], low[:k], hi[:k]
+
+
+class _DenseCounter:
+    """One thread's share of the dense superedge counting: its own table of every cell, degrees and arrays."""
+
+    def __init__(self, group: np.ndarray, n_groups: int, n_cells: int, with_degrees: bool):
+        self.group = group  # int32 supernode of each person, shared (read only) by the threads
+        self.n_groups, self.n_cells = n_groups, n_cells
+        self.total = np.zeros(n_cells, dtype=np.int64)
+        self.degrees = np.zeros(len(group), dtype=np.int64) if with_degrees else None
+        self.work = _BatchBuffers()  # the loop's arrays, made once and reused: no fresh memory per batch
+
+    def add(self, u: np.ndarray, v: np.ndarray) -> None:
+        """Count the contacts ``(u, v)`` (dense ids) into the table (and the degrees)."""
+        if len(u) == 0:
+            return
+        ends, lo, low, hi = self.work.get(len(u))
+        if self.degrees is not None:  # both ends in one bincount
+            np.concatenate((u, v), out=ends)
+            self.degrees += np.bincount(ends, minlength=len(self.degrees))
+        # dense ids are in [0, n_people) by the staging contract; "clip" spares numpy's buffered bounds check
+        np.take(self.group, u, out=lo, mode="clip")
+        np.take(self.group, v, out=low, mode="clip")
+        np.maximum(lo, low, out=hi)
+        np.minimum(lo, low, out=lo)
+        # position of (lo, hi) in the upper triangle, row by row (components.cell_index):
+        # lo * n_groups - lo * (lo - 1) / 2 + (hi - lo), in place (int32 holds it: n_groups < 2**13)
+        hi -= lo
+        np.subtract(lo, 1, out=low)
+        low *= lo
+        low //= 2
+        hi -= low
+        np.multiply(lo, self.n_groups, out=low)
+        hi += low
+        self.total += np.bincount(hi, minlength=self.n_cells)
 
 
 class DuckDBEngine:
@@ -473,34 +510,34 @@ class DuckDBEngine:
         return self._superedge_counts_sql(assignment)
 
     def _superedge_counts_dense(self, assignment: np.ndarray, n_groups: int):
-        """Counting into a dense table of every cell (inputs already validated; see :meth:`superedge_counts`)."""
+        """Counting into a dense table of every cell (inputs already validated; see :meth:`superedge_counts`).
+
+        Each batch is split in :data:`COUNTING_PARTS` parts counted on as many threads (numpy's
+        gathers and bincounts release the GIL), each into its own table and degrees, added at the
+        end: the same integers whatever the split.
+        """
         n_cells = n_groups * (n_groups + 1) // 2
-        group = assignment.astype(np.int32)  # n_cells <= DENSE_COUNT_MAX_CELLS: n_groups fits easily
-        total = np.zeros(n_cells, dtype=np.int64)
         n_people = len(assignment)
         # the same pass counts every person's contacts unless that is known (the audit asks for it)
-        degrees = np.zeros(n_people, dtype=np.int64) if self._cached_degrees(n_people) is None else None
-        work = _BatchBuffers()  # the loop's arrays, made once and reused: no fresh memory per batch
-        for u, v in self._edge_batches("counting superedges", n_people):
-            ends, lo, low, hi = work.get(len(u))
-            if degrees is not None:  # both ends in one bincount
-                np.concatenate((u, v), out=ends)
-                degrees += np.bincount(ends, minlength=n_people)
-            # dense ids are in [0, n_people) by the staging contract; "clip" spares numpy's buffered bounds check
-            np.take(group, u, out=lo, mode="clip")
-            np.take(group, v, out=low, mode="clip")
-            np.maximum(lo, low, out=hi)
-            np.minimum(lo, low, out=lo)
-            # position of (lo, hi) in the upper triangle, row by row (components.cell_index):
-            # lo * n_groups - lo * (lo - 1) / 2 + (hi - lo), in place (int32 holds it: n_groups < 2**13)
-            hi -= lo
-            np.subtract(lo, 1, out=low)
-            low *= lo
-            low //= 2
-            hi -= low
-            np.multiply(lo, n_groups, out=low)
-            hi += low
-            total += np.bincount(hi, minlength=n_cells)
+        with_degrees = self._cached_degrees(n_people) is None
+        group = assignment.astype(np.int32)  # n_cells <= DENSE_COUNT_MAX_CELLS: n_groups fits easily
+        parts = [_DenseCounter(group, n_groups, n_cells, with_degrees) for _ in range(COUNTING_PARTS)]
+        from concurrent.futures import ThreadPoolExecutor
+
+        with ThreadPoolExecutor(max_workers=len(parts), thread_name_prefix="aggpub-count") as pool:
+            for u, v in self._edge_batches("counting superedges", n_people):
+                cut = np.linspace(0, len(u), len(parts) + 1).astype(np.int64)
+                jobs = [pool.submit(part.add, u[i:j], v[i:j]) for part, i, j in zip(parts, cut[:-1], cut[1:])]
+                for job in jobs:
+                    job.result()
+        total = parts[0].total
+        for part in parts[1:]:
+            total += part.total
+        degrees = None
+        if with_degrees:
+            degrees = parts[0].degrees
+            for part in parts[1:]:
+                degrees += part.degrees
         cell = np.flatnonzero(total)
         # invert the cell index: a is the largest row whose first cell is at or before the cell
         first = np.arange(n_groups, dtype=np.int64)
