@@ -255,9 +255,7 @@ def post_process(run: StatisticsRun, sizes, *, people: int) -> None:
     """
     import pyarrow as pa
 
-    from ..cells import n_cells
     from ..estimates import degrees as dest
-    from ..estimates.counts import consistent_counts
 
     sizes = np.asarray(sizes, dtype=np.int64)
     n = len(sizes)
@@ -270,6 +268,27 @@ def post_process(run: StatisticsRun, sizes, *, people: int) -> None:
         v_d = run.mechanisms["degree_sequences"].variance()
         z = np.bincount(group, weights=noisy, minlength=n)
         v_z = np.maximum(sizes, 1) * v_d
+    from concurrent.futures import ThreadPoolExecutor
+
+    with ThreadPoolExecutor(max_workers=1, thread_name_prefix="aggpub-degree-fit") as pool:
+        # the degree sequences' isotonic fit does not read the counts: it runs beside their estimate
+        fit = pool.submit(dest.fit_sorted_degrees, noisy, group, people, v_d) if seq is not None else None
+        totals = _estimate_counts(run, se, sizes, n, z, v_z)
+        if seq is not None:
+            if totals is None:
+                totals = np.maximum(z, 0.0)
+            target = dest.degree_targets(fit.result(), group, sizes, totals, cap=max(people - 1, 0))
+            run.tables["degree_sequences"] = seq.add_column(3, "degree_estimate",
+                                                            pa.array(target, type=pa.float64()))
+
+
+def _estimate_counts(run: StatisticsRun, se, sizes, n: int, z, v_z):
+    """``superedges.edge_count_estimate`` (see :func:`post_process`); the consistent degree totals, or ``None``."""
+    import pyarrow as pa
+
+    from ..cells import n_cells
+    from ..estimates.counts import consistent_counts
+
     totals = None
     if se is not None:
         y = np.asarray(se.column("edge_count_unclamped").to_numpy(), dtype=np.float64)
@@ -288,9 +307,4 @@ def post_process(run: StatisticsRun, sizes, *, people: int) -> None:
                 + (" (superedge counts and degree sequences together)" if z is not None else ""))
             run.manifest["superedge_estimates_max_total_gap"] = float(res.max_violation)
         run.tables["superedges"] = se.add_column(2, "edge_count_estimate", pa.array(est, type=pa.float64()))
-    if seq is not None:
-        fit = dest.fit_sorted_degrees(noisy, group, people, v_d)
-        if totals is None:
-            totals = np.maximum(z, 0.0)
-        target = dest.degree_targets(fit, group, sizes, totals, cap=max(people - 1, 0))
-        run.tables["degree_sequences"] = seq.add_column(3, "degree_estimate", pa.array(target, type=pa.float64()))
+    return totals
