@@ -148,41 +148,26 @@ def _contiguous_offset(ids: pa.Table):
     return first
 
 
-class _BatchBuffers:
-    """Arrays for a loop over edge batches, made for the largest batch and reused (views of each batch's length).
-
-    Fresh memory costs a page fault per page when first touched; a loop over 100M contacts
-    in batches made about 600 MB of temporaries per batch before.
-    """
-
-    def __init__(self):
-        self.size, self.arrays = 0, None
-
-    def get(self, k: int):
-        """``ends`` (int64, ``2 k``), ``lo`` and ``low`` (int32, ``k``), ``hi`` (int64, ``k``)."""
-        if k > self.size:
-            self.size = k
-            self.arrays = (np.empty(2 * k, dtype=np.int64), np.empty(k, dtype=np.int32),
-                           np.empty(k, dtype=np.int32), np.empty(k, dtype=np.int64))
-        ends, lo, low, hi = self.arrays
-        return ends[:2 * k], lo[:k], low[:k], hi[:k]
-
-
 class _DenseCounter:
-    """One thread's share of the dense superedge counting: its own table of every cell, degrees and arrays."""
+    """One thread's share of the dense superedge counting: its own table of every cell, degrees and arrays.
+
+    The arrays are made for the largest batch share and reused (views of each share's length): fresh
+    memory costs a page fault per page when first touched, and a loop over 100M contacts made about
+    600 MB of temporaries per batch before.
+    """
 
     def __init__(self, group: np.ndarray, n_groups: int, n_cells: int, with_degrees: bool):
         self.group = group  # int32 supernode of each person, shared (read only) by the threads
         self.n_groups, self.n_cells = n_groups, n_cells
         self.total = np.zeros(n_cells, dtype=np.int64)
         self.degrees = np.zeros(len(group), dtype=np.int64) if with_degrees else None
-        self.work = _BatchBuffers()  # the loop's arrays, made once and reused: no fresh memory per batch
+        self.size, self.arrays = 0, None
 
     def add(self, u: np.ndarray, v: np.ndarray) -> None:
         """Count the contacts ``(u, v)`` (dense ids) into the table (and the degrees)."""
         if len(u) == 0:
             return
-        ends, lo, low, hi = self.work.get(len(u))
+        ends, lo, low, hi = self._arrays(len(u))
         if self.degrees is not None:  # both ends in one bincount
             np.concatenate((u, v), out=ends)
             self.degrees += np.bincount(ends, minlength=len(self.degrees))
@@ -201,6 +186,15 @@ class _DenseCounter:
         np.multiply(lo, self.n_groups, out=low)
         hi += low
         self.total += np.bincount(hi, minlength=self.n_cells)
+
+    def _arrays(self, k: int):
+        """``ends`` (int64, ``2 k``), ``lo`` and ``low`` (int32, ``k``), ``hi`` (int64, ``k``), reused."""
+        if k > self.size:
+            self.size = k
+            self.arrays = (np.empty(2 * k, dtype=np.int64), np.empty(k, dtype=np.int32),
+                           np.empty(k, dtype=np.int32), np.empty(k, dtype=np.int64))
+        ends, lo, low, hi = self.arrays
+        return ends[:2 * k], lo[:k], low[:k], hi[:k]
 
 
 class DuckDBEngine:
