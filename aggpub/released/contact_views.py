@@ -263,7 +263,7 @@ def release_contact_views(ctx, truth, option, epsilon: float):
     mechanisms : dict
         Spend name -> GeometricMechanism.
     """
-    policy, grouping = ctx.policy, ctx.grouping
+    policy = ctx.policy
     unit, d_cap = policy.privacy.unit, policy.privacy.max_contacts
     names = list(truth["counts"])
     domains = truth["domains"]

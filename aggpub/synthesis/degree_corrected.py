@@ -378,7 +378,6 @@ def sample_degree_corrected(sizes, a, b, counts, target, rho, rng, *, stubs=True
     group = np.repeat(np.arange(nG), sizes)
     offset = np.concatenate([[0], np.cumsum(sizes)[:-1]])
     counts = np.asarray(counts, np.int64)
-    diag = a == b
     keys1, cell1 = _phase1(np.asarray(target, np.float64), group, a, b, counts, rho, rng, cross)
     keys1 = _trim_to(keys1, cell1, counts, rng)  # sorted
     # remaining counts and weights
