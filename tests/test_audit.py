@@ -11,10 +11,12 @@ Laplace pmf for the exact expected error under clamping.
 from __future__ import annotations
 
 import itertools
+import json
 from pathlib import Path
 import math
 
 import networkx as nx
+
 import numpy as np
 import pytest
 from scipy import sparse, stats
@@ -342,8 +344,6 @@ def test_audit_figures_computed_once_for_workloads_that_are_the_cells(lesmis_rel
     """The superedge cells and a contact matrix of one value per supernode get the same error figures from
     one computation (the cache is keyed on the very arrays), and figures of other workloads are untouched:
     the audit's JSON with the cache equals the one computed call by call. Les Miserables (Knuth, 1993)."""
-    import json
-
     from aggpub.audit import core
     from aggpub.audit.truth import truth_of_release
 
@@ -672,15 +672,17 @@ def test_triangles_per_node_match_networkx_on_random_graphs():
 
 
 def _structure_json(out):
-    import json
     return json.dumps(out["structure"], sort_keys=True, default=str)
 
 
 def test_structure_figures_are_the_same_in_a_helper_process(lesmis_release, monkeypatch):
-    """The release's synthetic networks drawn in a helper interpreter give the same figures as in process (each
-    side seeded from the audit's generator); a helper that fails falls back to computing them here. Les
-    Miserables co-appearances (Knuth, The Stanford GraphBase, 1993, as networkx ships it)."""
+    """The structure section's tasks shared with a helper interpreter give the same figures as all in process
+    (every network seeded by its own child of its side's seed); a helper that cannot start, that fails a task or
+    that dies after some answers hands its work back, and the figures stay the same. Les Miserables
+    co-appearances (Knuth, The Stanford GraphBase, 1993, as networkx ships it)."""
     from aggpub.audit import sampled
+    from aggpub.audit.core import _start_structure
+    from aggpub.audit.truth import truth_of_release
     from aggpub.synthesis import sampler
 
     rel = lesmis_release[3]
@@ -693,18 +695,35 @@ def test_structure_figures_are_the_same_in_a_helper_process(lesmis_release, monk
     here = audit(False)
     assert "sampled_from_release" in here and here == audit(False)
     assert audit(True) == here
-    # the helper really answered (not the fallback)
-    from aggpub.audit.core import _start_structure
-    from aggpub.audit.truth import truth_of_release
-    plan = _start_structure(rel, truth_of_release(rel), 1, np.random.default_rng(0), parallel=True)
-    handle = plan["beside"]
-    assert isinstance(handle, sampled._Helper)
-    release_side, true = handle.result()
-    assert len(release_side["runs"]) == 1 and "figures" in handle.answer
-    assert true["stats"]["contacts"] == rel.network.n_edges
-    # a broken helper (exits at once): the same figures, computed in this process
-    monkeypatch.setattr(sampled, "_CHILD", "import sys; sys.exit(3)")
-    assert audit(True) == here
+
+    def work(parallel=True):
+        sampler._AFFINITY_CACHE.clear()
+        return _start_structure(rel, truth_of_release(rel), 2, np.random.default_rng(0), parallel=parallel)["beside"]
+
+    # the helper really answered: every task done by one side or the other, the same values either way
+    alone = work(False)
+    assert alone.proc is None
+    want = alone.result()
+    handle = work()
+    try:
+        assert handle.proc is not None
+        got = handle.result()
+        assert handle.helper_tasks >= 1
+    finally:
+        handle.close()
+    assert handle.proc.poll() is not None  # ended
+    assert json.dumps(got, sort_keys=True, default=str) == json.dumps(want, sort_keys=True, default=str)
+    assert got["true"]["stats"]["contacts"] == rel.network.n_edges
+    assert [len(got[s]["runs"]) for s in ("release", "grouping_alone")] == [2, 2]
+    # a helper that exits at once, one that fails every task, one that dies after its first answer
+    real_run = sampled.run_task
+    for child in ("import sys; sys.exit(3)",
+                  "import aggpub.audit.sampled as s; s.run_task = lambda *a: 1 / 0; s._serve()",
+                  "import os, aggpub.audit.sampled as s; r = s.run_task; "
+                  "s.run_task = lambda *a: (r(*a), os._exit(0) if a[2][0] == 'fit' else None)[0]; s._serve()"):
+        monkeypatch.setattr(sampled, "_CHILD", child)
+        assert audit(True) == here, child
+    assert sampled.run_task is real_run
     # another seed gives other networks (the comparison above can fail)
     sampler._AFFINITY_CACHE.clear()
     other = audit_release(rel, monte_carlo=0, structure_samples=2, seed=5,
@@ -712,8 +731,40 @@ def test_structure_figures_are_the_same_in_a_helper_process(lesmis_release, monk
     assert _structure_json(other) != here
 
 
+def test_structure_work_reports_a_failed_task_and_keeps_each_networks_stream(lesmis_release, monkeypatch):
+    """An error in a task is raised by ``result()`` (not swallowed); network ``i`` of a side draws from the
+    ``i``-th child of the side's seed whatever order the tasks run in (computed alone, it gives the same figures).
+    Les Miserables co-appearances (Knuth, The Stanford GraphBase, 1993, as networkx ships it)."""
+    from aggpub.audit import sampled
+    from aggpub.audit.core import _start_structure
+    from aggpub.audit.truth import truth_of_release
+    from aggpub.synthesis import fit_affinity
+
+    rel = lesmis_release[3]
+    work = _start_structure(rel, truth_of_release(rel), 3, np.random.default_rng(0), parallel=False)["beside"]
+    got = work.result()
+    job = work.sides["release"]
+    rho = fit_affinity(job.inputs)
+    for i in (2, 0):  # out of order
+        stats, figure = sampled.network_figures_of(job, i, rho)
+        assert stats == got["release"]["runs"][i]
+        assert np.array_equal(figure["degrees"], got["release"]["figures"][i]["degrees"])
+    assert got["release"]["runs"][0] != got["release"]["runs"][1]  # separate streams, not one repeated
+
+    def broken(sides, true_job, task):
+        if task[0] == "true":
+            raise RuntimeError("no true network")
+        return real(sides, true_job, task)
+
+    real = sampled.run_task
+    monkeypatch.setattr(sampled, "run_task", broken)
+    work = _start_structure(rel, truth_of_release(rel), 1, np.random.default_rng(0), parallel=False)["beside"]
+    with pytest.raises(RuntimeError, match="no true network"):
+        work.result()
+
+
 def test_a_spare_helper_is_used_or_ended(lesmis_release, monkeypatch):
-    """A helper started ahead (``start_spare``) is the one the audit hands its jobs to; one not used is ended;
+    """A helper started ahead (``start_spare``) is the one the audit shares its tasks with; one not used is ended;
     none is started below ``PARALLEL_MIN_CONTACTS`` or above ``MAX_STRUCTURE_EDGES``. Les Miserables
     co-appearances (Knuth, The Stanford GraphBase, 1993, as networkx ships it)."""
     from aggpub.audit import sampled
@@ -732,11 +783,12 @@ def test_a_spare_helper_is_used_or_ended(lesmis_release, monkeypatch):
     plan = _start_structure(rel, truth_of_release(rel), 1, np.random.default_rng(0), parallel=True)
     try:
         assert plan["beside"].proc is spare and sampled._SPARE == []
-        release_side, true = plan["beside"].result()
-        assert len(release_side["runs"]) == 1 and "figures" in plan["beside"].answer
+        done = plan["beside"].result()
+        assert len(done["release"]["runs"]) == 1 and plan["beside"].helper_tasks >= 1
     finally:
         plan["beside"].close()
-    # a spare nobody takes is ended, and so is one when the jobs run in this process
+    assert spare.poll() is not None
+    # a spare nobody takes is ended, and so is one when the tasks run in this process
     sampled.start_spare(sampled.PARALLEL_MIN_CONTACTS)
     spare = sampled._SPARE[0]
     sampled.discard_spare()
@@ -744,7 +796,7 @@ def test_a_spare_helper_is_used_or_ended(lesmis_release, monkeypatch):
     sampled.start_spare(sampled.PARALLEL_MIN_CONTACTS)
     spare = sampled._SPARE[0]
     plan = _start_structure(rel, truth_of_release(rel), 1, np.random.default_rng(0), parallel=False)
-    assert isinstance(plan["beside"], sampled._InProcess)
+    assert plan["beside"].proc is None and plan["beside"].thread is None
     assert sampled._SPARE == [] and spare.poll() is not None
 
 

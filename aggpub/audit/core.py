@@ -72,9 +72,10 @@ def audit_release(release, *, monte_carlo: int | None = None, source=None, struc
         Seed for the choice of cut queries and the synthetic networks (audit-internal).
     progress : callable, optional
     parallel_structure : bool, optional
-        Draw the release's synthetic networks in a helper process while the other
-        sections run (default: on networks of :data:`aggpub.audit.sampled.PARALLEL_MIN_CONTACTS`
-        contacts or more, with two cores or more); the figures are the same either way.
+        Share the structure section's tasks with a helper process, which starts on them
+        while the other sections run (default: on networks of
+        :data:`aggpub.audit.sampled.PARALLEL_MIN_CONTACTS` contacts or more, with two cores or
+        more); the figures are the same either way.
 
     Returns
     -------
@@ -94,7 +95,7 @@ def audit_release(release, *, monte_carlo: int | None = None, source=None, struc
     rng = np.random.default_rng(seed)
     # the workloads are built once the views section has started on its thread (it does not read them)
     truth = truth_of_release(release, sanity_bound=sanity_bound, cuts=n_cut_queries, rng=rng, defer_workloads=True)
-    # the release's synthetic networks start now (in a helper process on large networks) while the rest runs
+    # the structure section's tasks start now (shared with a helper process on large networks) while the rest runs
     structure = _start_structure(release, truth, structure_samples, rng, parallel_structure)
     try:
         return _audit_sections(release, truth, structure, monte_carlo, source, sanity_bound,
@@ -442,12 +443,11 @@ def _error_split(dd, queries) -> dict:
 
 
 def _start_structure(release, truth, samples, rng, parallel=None) -> dict:
-    """Check what the structure section can do; start the release's side and the true network's figures (in a
-    helper process if worth it).
+    """Check what the structure section can do; start its tasks (shared with a helper process if worth it).
 
     Returns ``{"skipped": reason}`` or the plan :func:`_structure_section` finishes. Each
-    side's generator, and the true network's percolations', is seeded here from the
-    audit's, so the figures do not depend on where they are computed.
+    side's seed, and the true network's percolations', is drawn here from the audit's
+    generator, so the figures do not depend on where they are computed.
     """
     network, st = release.network, truth.st
     if st is None or "superedges" not in release.tables:
@@ -459,7 +459,7 @@ def _start_structure(release, truth, samples, rng, parallel=None) -> dict:
                            "is done in memory and was left out"}
     from ..synthesis import inputs_from_release, inputs_from_truth
     from . import fidelity as fid
-    from .sampled import SideJob, TrueJob, start_jobs
+    from .sampled import SideJob, TrueJob, start_work
 
     codes = {c: np.unique(np.asarray(vals, dtype=str), return_inverse=True)[1] for c, vals in truth.labels.items()}
     T = fid.transmissibility(truth.true_deg)
@@ -478,10 +478,10 @@ def _start_structure(release, truth, samples, rng, parallel=None) -> dict:
     true_job = TrueJob(u=u[order], v=v[order], n=int(network.n_people),
                        categories={c: code[assignment] for c, code in codes.items()}, transmissibility=T,
                        percolations=FIDELITY_PERCOLATIONS, seed=int(seeds[2]))
-    # the release's side and the true network's figures (in a helper process on large networks); this process
-    # draws the grouping-alone side after the other sections
+    # both sides and the true network's figures (started on a worker thread on large networks; this thread joins
+    # in once the other sections are done)
     return {"codes": codes, "T": T, "jobs": jobs, "samples": int(samples),
-            "beside": start_jobs((jobs["release"], true_job), int(network.n_edges), parallel)}
+            "beside": start_work(jobs, true_job, int(network.n_edges), parallel)}
 
 
 def _structure_section(plan, progress) -> dict:
@@ -495,12 +495,10 @@ def _structure_section(plan, progress) -> dict:
     if "skipped" in plan:
         return plan
     from . import fidelity as fid
-    from .sampled import side_figures
-
     samples = plan["samples"]
     progress(f"audit: structure of the true network and of {samples} + {samples} sampled networks")
-    alone = side_figures(plan["jobs"]["grouping_alone"])
-    release_side, true = plan["beside"].result()
+    done = plan["beside"].result()
+    alone, release_side, true = done["grouping_alone"], done["release"], done["true"]
     true_stats, true_fig = true["stats"], true["figure"]
 
     def summary(side):

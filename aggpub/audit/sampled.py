@@ -1,16 +1,18 @@
-"""Networks for the audit's structure section, in this process or a helper: the true one and the synthetic ones.
+"""Networks for the audit's structure section, shared between this process and a helper: the true one and the
+synthetic ones.
 
 The structure section compares the true network with networks drawn by the one
 sampler (:mod:`aggpub.synthesis`) from two sets of inputs: the release's public
-tables and the true aggregate ("grouping alone"). The two sides are independent:
-each has its own generator (seeded from the audit's, so a seeded audit gives the
-same figures whichever way it runs), its own affinity fit and its own draws; so are
-the true network's own figures (:class:`TrueJob`, its own generator for the
-percolations). On networks large enough to pay for starting an interpreter, the
-release's side and the true network's figures run in a helper process (a fresh
-interpreter that imports only what it needs; nothing is inherited from the engine's
-threads) while this process audits the rest and draws the other side; the figures are
-the same as in process, and any failure of the helper falls back to computing them here.
+tables and the true aggregate ("grouping alone"). The work is cut into small tasks
+(:class:`StructureWork`): each side's affinity fit, then each synthetic network of that
+side, and the true network's own figures (:class:`TrueJob`). Every network draws from
+its own generator (a child of its side's seed, itself drawn from the audit's), so a
+seeded audit gives the same figures whoever computes which task. On networks large
+enough to pay for starting an interpreter, a helper process (a fresh interpreter that
+imports only what it needs; nothing is inherited from the engine's threads) takes
+tasks one at a time from the moment the audit starts, while this process audits the
+rest and then takes tasks too: neither waits long for the other, whichever side needs
+more affinity trials. Any failure of the helper hands its task back to this process.
 The helper can be started ahead (:func:`start_spare`), so that its start-up overlaps
 the release's own work.
 
@@ -20,8 +22,8 @@ against it; they go into the board's report only.
 
 from __future__ import annotations
 
-__all__ = ["MAX_STRUCTURE_EDGES", "PARALLEL_MIN_CONTACTS", "SideJob", "TrueJob", "side_figures", "start_jobs",
-           "start_spare", "discard_spare"]
+__all__ = ["MAX_STRUCTURE_EDGES", "PARALLEL_MIN_CONTACTS", "SideJob", "TrueJob", "StructureWork", "network_figures_of",
+           "run_task", "start_spare", "discard_spare", "start_work"]
 
 import os
 from dataclasses import dataclass
@@ -31,8 +33,8 @@ import numpy as np
 #: Largest network (contacts) whose structure the audit computes in memory (above, the sampled-structure
 #: comparison is skipped: too slow for a release).
 MAX_STRUCTURE_EDGES = 500_000
-#: Contacts from which the release's side of the structure comparison runs in a helper process (below,
-#: starting an interpreter costs more than the work it takes over).
+#: Contacts from which a helper process shares the structure comparison's work (below, starting an
+#: interpreter costs more than the work it takes over).
 PARALLEL_MIN_CONTACTS = 50_000
 
 
@@ -53,7 +55,7 @@ class SideJob:
     percolations : int
         Bond percolations per network for the final size.
     seed : int
-        Seeds this side's generator.
+        The side's seed: network ``i`` draws from its ``i``-th child (:func:`network_figures_of`).
     """
 
     inputs: object
@@ -62,9 +64,6 @@ class SideJob:
     transmissibility: float
     percolations: int
     seed: int
-
-    def run(self) -> dict:
-        return side_figures(self)
 
 
 @dataclass(frozen=True)
@@ -102,96 +101,212 @@ class TrueJob:
         return {"stats": stats, "figure": figure}
 
 
-def side_figures(job: SideJob) -> dict:
-    """Structure statistics and fidelity figures (not yet compared) of ``job.samples`` synthetic networks.
+def network_figures_of(job: SideJob, index: int, rho: float) -> tuple[dict, dict]:
+    """Structure statistics and fidelity figures (not yet compared) of the side's network number ``index``.
 
-    Returns
-    -------
-    dict
-        ``runs``: :func:`aggpub.audit.network_stats.structure_statistics` of each network;
-        ``figures``: :func:`aggpub.audit.fidelity.network_figures` of each (degrees included).
+    The network and its percolations draw from the ``index``-th child of ``job.seed``
+    (:meth:`numpy.random.SeedSequence.spawn`): every network has its own stream, so the
+    figures do not depend on which thread draws it or in which order.
     """
-    from ..synthesis import draw_network, fit_affinity
+    from ..synthesis import draw_network
     from .fidelity import network_figures
     from .network_stats import structure_statistics
 
-    rng = np.random.default_rng(job.seed)
+    rng = np.random.default_rng(np.random.SeedSequence(job.seed).spawn(int(job.samples))[index])
     inputs = job.inputs
     n = int(inputs.sizes.sum())
-    rho = fit_affinity(inputs)
     cats = {c: np.repeat(code, inputs.sizes) for c, code in job.codes.items()}
-    runs, figures = [], []
-    for _ in range(int(job.samples)):
-        su, sv = draw_network(inputs, rng, rho)
-        runs.append(structure_statistics(su, sv, n, cats))
-        figures.append(network_figures(su, sv, n, job.transmissibility, rng, job.percolations,
-                                       average_clustering=runs[-1]["average_clustering"]))
-    return {"runs": runs, "figures": figures}
+    su, sv = draw_network(inputs, rng, rho)
+    stats = structure_statistics(su, sv, n, cats)
+    figure = network_figures(su, sv, n, job.transmissibility, rng, job.percolations,
+                             average_clustering=stats["average_clustering"])
+    return stats, figure
 
 
-class _InProcess:
-    """Jobs computed here, when their figures are asked for."""
+def run_task(sides: dict, true_job: TrueJob, task: tuple):
+    """Do one task of the structure section (here or in the helper).
 
-    def __init__(self, jobs: tuple):
-        self.jobs = jobs
+    ``("fit", side)`` returns the side's affinity ``rho`` (:func:`aggpub.synthesis.fit_affinity`);
+    ``("network", side, index, rho)`` returns ``(structure statistics, fidelity figures)`` of
+    that network (:func:`network_figures_of`); ``("true",)`` returns :meth:`TrueJob.run`.
+    """
+    kind = task[0]
+    if kind == "fit":
+        from ..synthesis import fit_affinity
 
-    def result(self) -> list:
-        return [job.run() for job in self.jobs]
+        return fit_affinity(sides[task[1]].inputs)
+    if kind == "network":
+        _, name, index, rho = task
+        return network_figures_of(sides[name], index, rho)
+    if kind == "true":
+        return true_job.run()
+    raise ValueError(f"unknown structure task {task!r}")
 
-    def close(self) -> None:
-        pass
 
+class StructureWork:
+    """The structure section's work as small tasks, shared between a helper process and this one.
 
-class _Helper:
-    """Jobs computed in a helper process, in turn (falls back to this process if the helper fails).
+    Tasks: each side's affinity fit (which, once done, queues one task per network of
+    that side with the fitted ``rho``) and the true network's figures. With a helper
+    (:func:`start_work`), a feeding thread hands the helper one task at a time from the
+    start, while this process audits the rest; :meth:`result` makes this process take
+    tasks too until none is left, so neither waits long for the other (the work is
+    split network by network, not side by side). Without, this process does every
+    task in :meth:`result`. Each network draws from its own generator
+    (:func:`network_figures_of`), so the figures do not depend on who computes what.
+    A helper that fails (killed, out of memory, not importable) hands its task back
+    and this process does the rest.
 
-    The helper is a fresh interpreter running only this module (``python -c``), given the
-    pickled jobs on its standard input and answering on its standard output: unlike
-    :mod:`multiprocessing`, it never imports the caller's ``__main__`` again, so a
-    steward's script without a ``__main__`` guard is not run twice. A thread feeds it and
-    reads its answer while this process carries on.
+    Parameters
+    ----------
+    sides : dict
+        ``{side name: SideJob}``.
+    true_job : TrueJob
+    proc : subprocess.Popen, optional
+        The helper (a fresh interpreter running :func:`_serve`); ``None``: no helper.
     """
 
-    def __init__(self, jobs: tuple, proc=None):
-        import pickle
+    def __init__(self, sides: dict, true_job: TrueJob, proc=None):
         import threading
+        from collections import deque
 
-        self.jobs = jobs
-        self.answer: dict = {}
-        self.proc = proc if proc is not None else _spawn()
-        data = pickle.dumps(jobs, protocol=pickle.HIGHEST_PROTOCOL)
+        self.sides = dict(sides)
+        self.true_job = true_job
+        self.proc = proc
+        self._cond = threading.Condition()
+        self._tasks: deque = deque([("fit", name) for name in self.sides] + [("true",)])
+        self._busy = 0  # tasks taken and not finished (a fit adds tasks when it ends)
+        self._done: dict = {}
+        self._error: BaseException | None = None
+        self._closed = False
+        self.helper_tasks = 0  # tasks the helper answered
+        self.thread = None
+        if proc is not None:
+            self.thread = threading.Thread(target=self._feed, name="aggpub-audit-structure", daemon=True)
+            self.thread.start()
 
-        def talk():
+    def _take(self):
+        """The next task (``None``: nothing left, or stop)."""
+        with self._cond:
+            while not self._tasks and self._busy and self._error is None and not self._closed:
+                self._cond.wait()
+            if not self._tasks or self._error is not None or self._closed:
+                return None
+            self._busy += 1
+            return self._tasks.popleft()
+
+    def _finish(self, task, value=None, error: BaseException | None = None, again: bool = False) -> None:
+        """Record a task's value (a fit queues its networks), its error, or hand it back (``again``)."""
+        with self._cond:
+            self._busy -= 1
+            if again:
+                self._tasks.appendleft(task)
+            elif error is not None:
+                self._error = self._error or error
+            else:
+                self._done[task[:3]] = value  # a network by (kind, side, index): its rho is not part of the key
+                if task[0] == "fit":
+                    name = task[1]
+                    self._tasks.extend(("network", name, i, value) for i in range(int(self.sides[name].samples)))
+            self._cond.notify_all()
+
+    def _work_here(self) -> None:
+        while (task := self._take()) is not None:
             try:
-                out, _ = self.proc.communicate(data)
-                if self.proc.returncode == 0:
-                    self.answer["figures"] = pickle.loads(out)
-            except Exception:  # noqa: BLE001 - any failure: the caller computes the side itself
-                pass
+                value = run_task(self.sides, self.true_job, task)
+            except BaseException as exc:  # noqa: BLE001 - raised by result()
+                self._finish(task, error=exc)
+            else:
+                self._finish(task, value)
 
-        self.thread = threading.Thread(target=talk, name="aggpub-audit-side", daemon=True)
-        self.thread.start()
+    def _feed(self) -> None:
+        """The feeding thread: the helper's definitions once, then one task at a time, each answer recorded.
 
-    def result(self) -> list:
-        self.thread.join()
-        if "figures" in self.answer:
-            return self.answer["figures"]
-        return [job.run() for job in self.jobs]  # the helper failed (killed, out of memory, not importable)
+        Waiting on the pipe does not hold the interpreter's lock, so this thread costs this
+        process almost nothing while the helper works.
+        """
+        import pickle
+
+        proc = self.proc
+        try:
+            pickle.dump(("define", self.sides, self.true_job), proc.stdin, protocol=pickle.HIGHEST_PROTOCOL)
+            proc.stdin.flush()
+        except Exception:  # noqa: BLE001 - the helper is gone: this process does every task
+            return
+        while (task := self._take()) is not None:
+            try:
+                pickle.dump(task, proc.stdin, protocol=pickle.HIGHEST_PROTOCOL)
+                proc.stdin.flush()
+                status, value = pickle.load(proc.stdout)
+            except Exception:  # noqa: BLE001 - the helper died: its task goes back to the queue
+                self._finish(task, again=True)
+                return
+            if status != "ok":  # the task failed in the helper: this process does it (and reports any error)
+                self._finish(task, again=True)
+                return
+            self.helper_tasks += 1
+            self._finish(task, value)
+
+    def result(self) -> dict:
+        """``{side name: {"runs": [...], "figures": [...]}, ..., "true": TrueJob.run()}``, once every task is done."""
+        self._work_here()
+        if self.thread is not None:
+            self.thread.join()
+            self._work_here()  # a task the helper handed back when it failed
+        if self._error is not None:
+            raise self._error
+        out = {}
+        for name, job in self.sides.items():
+            pairs = [self._done[("network", name, i)] for i in range(int(job.samples))]
+            out[name] = {"runs": [p[0] for p in pairs], "figures": [p[1] for p in pairs]}
+        out["true"] = self._done[("true",)]
+        return out
 
     def close(self) -> None:
-        if self.proc.poll() is None:
-            self.proc.kill()
-        self.thread.join()
+        """Stop taking tasks and end the helper (also after :meth:`result`)."""
+        with self._cond:
+            self._closed = True
+            self._tasks.clear()
+            self._cond.notify_all()
+        if self.proc is not None:
+            _end(self.proc)
+        if self.thread is not None:
+            self.thread.join()
 
 
-#: What the helper interpreter runs: import what the jobs need, then read the pickled jobs, write their figures.
-_CHILD = ("import pickle, sys; from aggpub.audit.sampled import _import_side; _import_side(); "
-          "jobs = pickle.load(sys.stdin.buffer); "
-          "sys.stdout.buffer.write(pickle.dumps([job.run() for job in jobs], protocol=pickle.HIGHEST_PROTOCOL))")
+#: What the helper interpreter runs.
+_CHILD = "from aggpub.audit.sampled import _serve; _serve()"
+
+
+def _serve() -> None:
+    """The helper's loop: import what the tasks need, read the definitions, then answer tasks until the input ends.
+
+    Each answer is ``("ok", value)`` or ``("failed", None)`` (the caller then does the task itself).
+    """
+    import pickle
+    import sys
+
+    _import_side()
+    stdin, stdout = sys.stdin.buffer, sys.stdout.buffer
+    try:
+        _, sides, true_job = pickle.load(stdin)
+    except EOFError:
+        return
+    while True:
+        try:
+            task = pickle.load(stdin)
+        except EOFError:
+            return
+        try:
+            answer = ("ok", run_task(sides, true_job, task))
+        except Exception:  # noqa: BLE001 - reported as failed; the caller computes it and raises what it raises
+            answer = ("failed", None)
+        pickle.dump(answer, stdout, protocol=pickle.HIGHEST_PROTOCOL)
+        stdout.flush()
 
 
 def _import_side() -> None:
-    """Import the modules the jobs use (the helper does it before its jobs arrive)."""
+    """Import the modules the tasks use (the helper does it before its tasks arrive)."""
     from .. import synthesis  # noqa: F401
     from . import fidelity, network_stats  # noqa: F401
 
@@ -204,7 +319,7 @@ def _spawn():
                             stderr=subprocess.DEVNULL)
 
 
-#: A helper interpreter started ahead of its job (:func:`start_spare`), taken by the next :func:`start_jobs`.
+#: A helper interpreter started ahead of its tasks (:func:`start_spare`), taken by the next :func:`start_work`.
 _SPARE: list = []
 
 
@@ -217,8 +332,8 @@ def start_spare(contacts: int) -> None:
 
     Called by :func:`aggpub.pipeline.run_release` once the network is read, when the audit's
     structure section will run with a helper (``contacts`` in ``[PARALLEL_MIN_CONTACTS,
-    MAX_STRUCTURE_EDGES]``, two cores or more). The helper imports, then waits for its job;
-    :func:`start_jobs` hands it its jobs. :func:`discard_spare` ends a spare that was not used.
+    MAX_STRUCTURE_EDGES]``, two cores or more). The helper imports, then waits for its tasks;
+    :func:`start_work` hands it its tasks. :func:`discard_spare` ends a spare that was not used.
     Decided from the public machine and the number of contacts, which is not released and
     decides nothing released (docs/privacy.md, section 10).
     """
@@ -226,18 +341,18 @@ def start_spare(contacts: int) -> None:
         return
     try:
         _SPARE.append(_spawn())
-    except Exception:  # noqa: BLE001 - no process could be started: start_jobs computes in this process
+    except Exception:  # noqa: BLE001 - no process could be started: start_work computes in this process
         pass
 
 
 def discard_spare() -> None:
-    """End the spare helper if no side took it."""
+    """End the spare helper if nothing took it."""
     while _SPARE:
         _end(_SPARE.pop())
 
 
 def _take_spare():
-    """The spare helper if it is still waiting for its jobs (one that died is ended), else ``None``."""
+    """The spare helper if it is still waiting (one that died is ended), else ``None``."""
     while _SPARE:
         proc = _SPARE.pop()
         if proc.poll() is None:
@@ -247,42 +362,42 @@ def _take_spare():
 
 
 def _end(proc) -> None:
+    """End a helper: killed first (a thread reading its answer then sees the end of its output), then its pipes."""
     if proc.poll() is None:
         proc.kill()
     proc.wait()
     for stream in (proc.stdin, proc.stdout):
         if stream is not None:
-            stream.close()
+            try:
+                stream.close()
+            except OSError:  # a buffered request the dead helper never read
+                pass
 
 
-def start_jobs(jobs: tuple, contacts: int, parallel: bool | None = None):
-    """Start computing jobs (:class:`SideJob`, :class:`TrueJob`): in a helper process when worth it, else lazily here.
+def start_work(sides: dict, true_job: TrueJob, contacts: int, parallel: bool | None = None) -> StructureWork:
+    """Start the structure section's work (:class:`StructureWork`): shared with a helper process when worth it.
 
     Parameters
     ----------
-    jobs : tuple
+    sides : dict
+        ``{side name: SideJob}``.
+    true_job : TrueJob
     contacts : int
         Contacts of the true network (the size of the work).
     parallel : bool, optional
         Force the choice (tests); default: a helper when the machine has two cores or
-        more and the network has at least :data:`PARALLEL_MIN_CONTACTS` contacts.
-
-    Returns
-    -------
-    An object with ``result()`` (the list of each job's ``run()``) and ``close()``. A helper
-    started ahead by :func:`start_spare` is used when there is one.
+        more and the network has at least :data:`PARALLEL_MIN_CONTACTS` contacts. A helper
+        started ahead by :func:`start_spare` is used when there is one.
     """
-    jobs = tuple(jobs)
     if parallel is None:
         parallel = _worth_a_helper(contacts)
     if not parallel:
         discard_spare()
-        return _InProcess(jobs)
-    spare = _take_spare()
-    try:
-        return _Helper(jobs, spare)
-    except Exception:  # noqa: BLE001 - no process could be started here: compute in this process
-        if spare is not None:
-            _SPARE.append(spare)
-            discard_spare()
-        return _InProcess(jobs)
+        return StructureWork(sides, true_job)
+    proc = _take_spare()
+    if proc is None:
+        try:
+            proc = _spawn()
+        except Exception:  # noqa: BLE001 - no process could be started here: compute in this process
+            proc = None
+    return StructureWork(sides, true_job, proc)
