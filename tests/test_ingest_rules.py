@@ -136,17 +136,24 @@ def _reference(ids, attrs):
     return order, [attrs[first[i]] for i in order]
 
 
+@pytest.mark.parametrize("integer", [False, True])
 @pytest.mark.parametrize("seed", range(40))
-def test_dense_people_against_a_plain_python_reference(seed):
+def test_dense_people_against_a_plain_python_reference(seed, integer):
+    """Text ids, and integer ids (the engine's native integers beside their text: the path that checks
+    repeats on the integers), with and without repeats, against a plain-Python reference."""
     rng = np.random.default_rng(seed)
     n = int(rng.integers(1, 40))
-    ids = [f"p{x}" for x in rng.integers(0, max(1, n // 2 + 1), n)]
+    if seed % 2:  # repeats likely
+        numbers = rng.integers(0, max(1, n // 2 + 1), n)
+    else:  # all distinct, in file order or not, negative and large ids among them
+        numbers = rng.permutation(n) * (2 ** 40) - 7 if seed % 4 else np.arange(n) + 1
+    ids = [str(int(x)) if integer else f"p{x}" for x in numbers]
     band = {i: f"b{rng.integers(0, 3)}" for i in set(ids)}
     attrs = [(band[i], "x") for i in ids]
     if seed % 3 == 0:  # now and then a conflicting repeat
         row = int(rng.integers(0, n))
         attrs[row] = (attrs[row][0] + "!", "x")
-    read = PeopleColumns(ids=pa.array(ids), native_ids=None,
+    read = PeopleColumns(ids=pa.array(ids), native_ids=pa.array(numbers, pa.int64()) if integer else None,
                          attributes=pa.table({"band": [a[0] for a in attrs], "k": [a[1] for a in attrs]}))
     ref = _reference(ids, attrs)
     if ref is None:
@@ -158,6 +165,17 @@ def test_dense_people_against_a_plain_python_reference(seed):
     assert list(zip(*[people.attributes.column(c).to_pylist() for c in ("band", "k")])) == ref[1]
     assert people.id_table.column("idx").to_pylist() == list(range(len(ref[0])))
     assert people.rows == n
+    if integer:
+        assert people.id_table.column("nid").to_pylist() == [int(i) for i in ref[0]]
+
+
+def test_a_missing_integer_id_is_refused_like_a_missing_text_id():
+    """The integer path reads nulls from the engine's integers: the same refusal, the same row."""
+    attrs = pa.table({"band": ["1", "2", "3"]})
+    for native in (pa.array([5, None, 7], pa.int64()), None):
+        read = PeopleColumns(ids=pa.array(["5", None, "7"]), native_ids=native, attributes=attrs)
+        with pytest.raises(InputError, match=r"1 row\(s\) have an empty or missing id .* data row 2\)"):
+            dense_people("people.csv", "node", read)
 
 
 def test_conflicting_repeat_names_its_first_row_and_the_first_differing_row():

@@ -74,6 +74,16 @@ def missing_id_mask(ids) -> np.ndarray:
     return np.asarray(pc.or_(pc.is_null(ids), pc.fill_null(spelled, False)), dtype=bool)
 
 
+def _all_distinct(values) -> bool:
+    """Whether integer ids (no nulls) are all distinct: one sort and a comparison of neighbours.
+
+    On a million ids about ten times faster than the dictionary encoding of their text that the
+    general path uses (ids in file order are often already sorted, which the sort passes through).
+    """
+    v = np.sort(np.asarray(values))  # the engine's own integer type (no cast that could merge two ids)
+    return not bool(np.any(v[1:] == v[:-1]))
+
+
 def _rows(table: pa.Table, rows: np.ndarray, n_rows: int) -> pa.Table:
     """``table.take(rows)``, keeping the row count of a table without columns."""
     if table.num_columns == 0:
@@ -104,10 +114,12 @@ def dense_people(label: str, node: str, read: PeopleColumns, show_counts: bool =
     """
     ids = read.ids.combine_chunks() if isinstance(read.ids, pa.ChunkedArray) else read.ids
     attrs = read.attributes
+    native = read.native_ids
     n_rows = len(ids)
     if n_rows == 0:
         raise InputError(f"{label}: the person table has no rows")
-    missing = missing_id_mask(ids)
+    # integer ids: their text is digits or null, never empty nor a missing-value spelling
+    missing = np.asarray(native.is_null(), dtype=bool) if native is not None else missing_id_mask(ids)
     if missing.any():
         raise InputError(f"{label}: {f'{int(missing.sum()):,} ' if show_counts else 'some '}row(s) have an empty "
                          "or missing id (NaN, NA, null) "
@@ -116,10 +128,12 @@ def dense_people(label: str, node: str, read: PeopleColumns, show_counts: bool =
         empty = np.asarray(column.is_null(), dtype=bool)
         if empty.any():
             raise InputError(f"{label}: column '{name}' is empty in data row {int(np.argmax(empty)) + 1}")
-    codes = np.asarray(ids.dictionary_encode().indices, dtype=np.int64)
-    _, first = np.unique(codes, return_index=True)  # first[k]: the first row of id k
-    native = read.native_ids
-    if len(first) < n_rows:  # a repeated id: it must repeat its attributes; keep its first row
+    if native is not None and _all_distinct(native):  # the common case at scale: nothing to collapse
+        first = None
+    else:
+        codes = np.asarray(ids.dictionary_encode().indices, dtype=np.int64)
+        _, first = np.unique(codes, return_index=True)  # first[k]: the first row of id k
+    if first is not None and len(first) < n_rows:  # a repeated id: it must repeat its attributes; keep its first row
         _refuse_conflicts(label, attrs, codes, first, show_counts)
         keep = np.sort(first)
         ids, attrs = ids.take(pa.array(keep)), _rows(attrs, keep, len(keep))
