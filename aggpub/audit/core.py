@@ -478,8 +478,8 @@ def _start_structure(release, truth, samples, rng, parallel=None) -> dict:
     true_job = TrueJob(u=u[order], v=v[order], n=int(network.n_people),
                        categories={c: code[assignment] for c, code in codes.items()}, transmissibility=T,
                        percolations=FIDELITY_PERCOLATIONS, seed=int(seeds[2]))
-    # both sides and the true network's figures (started on a worker thread on large networks; this thread joins
-    # in once the other sections are done)
+    # both sides and the true network's figures (a helper process starts on them at once on large networks; this
+    # process takes tasks too once the other sections are done)
     return {"codes": codes, "T": T, "jobs": jobs, "samples": int(samples),
             "beside": start_work(jobs, true_job, int(network.n_edges), parallel)}
 

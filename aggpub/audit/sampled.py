@@ -249,10 +249,9 @@ class StructureWork:
 
     def result(self) -> dict:
         """``{side name: {"runs": [...], "figures": [...]}, ..., "true": TrueJob.run()}``, once every task is done."""
-        self._work_here()
+        self._work_here()  # returns once no task is queued or taken: a task the helper hands back is done here
         if self.thread is not None:
             self.thread.join()
-            self._work_here()  # a task the helper handed back when it failed
         if self._error is not None:
             raise self._error
         out = {}
@@ -312,6 +311,9 @@ def _import_side() -> None:
 
 
 def _spawn():
+    """The helper: a fresh interpreter running only this module (``python -c``). Unlike :mod:`multiprocessing`, it
+    never imports the caller's ``__main__`` again, so a steward's script without a ``__main__`` guard is not run
+    twice."""
     import subprocess
     import sys
 
