@@ -763,6 +763,31 @@ def test_structure_work_reports_a_failed_task_and_keeps_each_networks_stream(les
         work.result()
 
 
+def test_an_audit_that_fails_ends_its_structure_helper(lesmis_release, monkeypatch):
+    """An audit section that fails while the helper works on the structure tasks: the error reaches the caller,
+    the helper process is ended and the feeding thread has stopped. Les Miserables co-appearances (Knuth, The
+    Stanford GraphBase, 1993, as networkx ships it)."""
+    from aggpub.audit import core, sampled
+
+    made = []
+    real_start = sampled.start_work
+
+    def start(*args, **kwargs):
+        made.append(real_start(*args, **kwargs))
+        return made[-1]
+
+    def fail(*args, **kwargs):
+        raise RuntimeError("a section failed")
+
+    monkeypatch.setattr(sampled, "start_work", start)
+    monkeypatch.setattr(core, "_audit_sections", fail)
+    with pytest.raises(RuntimeError, match="a section failed"):
+        audit_release(lesmis_release[3], monte_carlo=0, structure_samples=2, seed=4, parallel_structure=True)
+    work = made[0]
+    assert work.proc is not None and work.proc.poll() is not None
+    assert not work.thread.is_alive()
+
+
 def test_a_spare_helper_is_used_or_ended(lesmis_release, monkeypatch):
     """A helper started ahead (``start_spare``) is the one the audit shares its tasks with; one not used is ended;
     none is started below ``PARALLEL_MIN_CONTACTS`` or above ``MAX_STRUCTURE_EDGES``. Les Miserables
