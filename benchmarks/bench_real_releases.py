@@ -20,6 +20,7 @@ from __future__ import annotations
 
 import argparse
 import datetime
+import json
 import os
 import statistics
 import subprocess
@@ -31,10 +32,8 @@ HERE = Path(__file__).resolve().parent
 sys.path.insert(0, str(HERE))
 
 from _procs import child_env, run_child  # noqa: E402
+from bench_scale import WRITE_DEMO  # noqa: E402  (writes the demo town's inputs with each installation's own module)
 from fidelity import NETWORKS, REAL, min_size_rule  # noqa: E402
-
-#: Writes the demo town's inputs and policy into a folder (each installation's own demo module).
-WRITE_DEMO = "import sys; from aggpub.demo import write_demo_inputs; write_demo_inputs(sys.argv[1])"
 
 
 def real_inputs(name: str, work: Path):
@@ -47,7 +46,7 @@ def real_inputs(name: str, work: Path):
     policy = work / f"policy-{name}.toml"
     policy.write_text(
         '[privacy]\nunit = "edge"\nepsilon = 1.0\n\n[grouping]\nmethod = "attributes"\n'
-        f"attributes = [{', '.join(repr(a).replace(chr(39), chr(34)) for a in attrs)}]\n"
+        f"attributes = {json.dumps(list(attrs))}\n"  # a JSON list of strings is a TOML array
         f"min_size = {min_size_rule(n_people)}\n\n"
         '[input]\nsource = "source"\ntarget = "target"\nnode = "node"\n', encoding="utf-8")
     return d / "contacts.csv", d / "people.csv", policy
