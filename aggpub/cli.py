@@ -24,6 +24,8 @@ environment (a value you set is kept):
   AGGPUB_HUGE_PAGES=keep      keep the kernel's transparent huge pages (switched off by default:
                               faster on virtual machines)
   ARROW_DEFAULT_MEMORY_POOL   Arrow's allocator (default here: system)
+  MALLOC_TRIM_THRESHOLD_,     the C library's allocator (default here: freed memory kept for reuse;
+  MALLOC_MMAP_THRESHOLD_      any MALLOC_* or GLIBC_TUNABLES you set leaves it as it is)
   OPENBLAS_NUM_THREADS        threads of the BLAS library (default here: 1)
 """
 
@@ -663,11 +665,13 @@ def run() -> None:
     scientific libraries, which costs about a second and does nothing useful.
     Every other outcome exits normally. The BLAS library gets one thread (:func:`one_blas_thread`),
     Arrow the C library's allocator (:func:`system_arrow_memory`), and the process no transparent huge
-    pages (:func:`aggpub.pages.no_huge_pages`).
+    pages (:func:`aggpub.pages.no_huge_pages`), and the C library's allocator keeps freed memory for reuse
+    (:func:`aggpub.pages.keep_freed_memory`).
     """
-    from .pages import no_huge_pages
+    from .pages import keep_freed_memory, no_huge_pages
 
     no_huge_pages()
+    keep_freed_memory()
     one_blas_thread()
     system_arrow_memory()
     code = main()
