@@ -26,7 +26,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parent))
 import fidelity as FB  # noqa: E402  (the loader and policies of the fidelity benchmark)
 
 import aggpub  # noqa: E402
-from aggpub.released.triangles import count_triangles  # noqa: E402
+from aggpub.graph_counts import count_triangles  # noqa: E402
 from aggpub.synthesis import inputs_from_release, inputs_from_truth  # noqa: E402
 from aggpub.synthesis import sampler  # noqa: E402
 

@@ -882,6 +882,39 @@ def test_structure_figures_do_not_depend_on_the_engines_row_order(lesmis_release
     assert audit() == here
 
 
+def test_the_helper_fits_and_draws_without_pyarrow_or_duckdb(lesmis_release):
+    """The helper's tasks (an affinity fit, a synthetic network, the true network's figures) need numpy and scipy
+    only: a helper that answered them has imported neither pyarrow nor duckdb (each costs its start-up time on
+    every release with a helper). Les Miserables co-appearances (Knuth, The Stanford GraphBase, 1993, as networkx
+    ships it)."""
+    import io
+    import pickle
+    import subprocess
+    import sys
+
+    from aggpub.audit.core import _start_structure
+    from aggpub.audit.truth import truth_of_release
+
+    rel = lesmis_release[3]
+    work = _start_structure(rel, truth_of_release(rel), 1, np.random.default_rng(0), parallel=False)["beside"]
+    assert work.sides["release"].inputs.triangles is not None  # the fit counts triangles
+    requests = io.BytesIO()
+    for item in (("define", work.sides, work.true_job), ("fit", "release"), ("network", "release", 0, 0.5),
+                 ("true",)):
+        pickle.dump(item, requests, protocol=pickle.HIGHEST_PROTOCOL)
+    root = Path(__file__).resolve().parents[1]
+    probe = ("import sys; from aggpub.audit.sampled import _serve; _serve(); "
+             "print(sorted(m for m in sys.modules if m.split('.')[0] in ('pyarrow', 'duckdb')), file=sys.stderr)")
+    res = subprocess.run([sys.executable, "-c", probe], input=requests.getvalue(), capture_output=True, cwd=root,
+                         timeout=300)
+    assert res.returncode == 0, res.stderr.decode()[-2000:]
+    answers = io.BytesIO(res.stdout)
+    got = [pickle.load(answers) for _ in range(3)]
+    assert [status for status, _ in got] == ["ok", "ok", "ok"]
+    assert 0.0 <= got[0][1] <= 1.0 and got[2][1]["stats"]["contacts"] == rel.network.n_edges
+    assert res.stderr.decode().strip().splitlines()[-1] == "[]"
+
+
 def test_the_helper_process_does_not_run_the_callers_script_again(tmp_path):
     """A steward's script without a ``__main__`` guard that audits with the helper process runs once (the
     helper interpreter imports aggpub only, never the caller's main module)."""

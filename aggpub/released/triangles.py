@@ -57,10 +57,8 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..budget import Spend
+from ..graph_counts import count_triangles  # re-exported: counted here before it moved
 from ..noise.ladder import LadderMechanism
-
-#: Rows of the oriented adjacency multiplied at once (bounds the temporary memory).
-ROW_BATCH = 65_536
 
 
 class ManifestFields(dict):
@@ -74,34 +72,6 @@ class TriangleTruth:
     count: int
     second_degree: int
     n_people: int
-
-
-def count_triangles(u, v, n: int) -> int:
-    """Exact number of triangles of the simple undirected graph with contacts ``(u, v)`` on ``n`` people.
-
-    Inputs already validated: no self-loop, no repeated contact. Degree-ordered
-    orientation, then ``sum((L @ L) .* L)`` over batches of rows of the oriented
-    adjacency ``L`` (every triangle is counted once, at its lowest-ranked corner).
-    """
-    from scipy import sparse  # here, not at import: the release's start (reading the files) does not need it
-
-    u = np.asarray(u, dtype=np.int64)
-    v = np.asarray(v, dtype=np.int64)
-    if len(u) < 3 or n < 3:
-        return 0
-    deg = np.bincount(u, minlength=n) + np.bincount(v, minlength=n)
-    rank = np.empty(n, dtype=np.int64)
-    rank[np.lexsort((np.arange(n), deg))] = np.arange(n)
-    ru, rv = rank[u], rank[v]
-    lo, hi = np.minimum(ru, rv), np.maximum(ru, rv)
-    L = sparse.csr_matrix((np.ones(len(lo), dtype=np.float64), (lo, hi)), shape=(n, n))
-    total = 0.0
-    for start in range(0, n, ROW_BATCH):
-        rows = L[start:start + ROW_BATCH]
-        if rows.nnz == 0:
-            continue
-        total += (rows @ L).multiply(rows).sum()
-    return int(round(total))
 
 
 def triangle_truth(engine, n_people: int) -> TriangleTruth:

@@ -46,19 +46,18 @@ import json
 from collections import OrderedDict
 from dataclasses import dataclass
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import numpy as np
-import pyarrow as pa
 
-from ..bundle.read import public_tables as _public_tables
-from ..bundle.read import require_superedges as _superedges
-from ..bundle.read import table_column as _col
 from ..cells import n_cells, possible_pairs
 from ..errors import BundleError
-from ..outputs import write_file
 from ..randomness import make_generator
 from .block_model import sample_block_network
 from .degree_corrected import round_counts, sample_degree_corrected
+
+if TYPE_CHECKING:  # pyarrow and the bundle readers are imported where a release is read or a table made:
+    import pyarrow as pa  # the audit's helper process draws and fits with numpy alone, without importing them
 
 #: The two ways a release is sampled, by what it carries.
 SAMPLERS = ("degree_corrected", "uniform_block")
@@ -125,7 +124,10 @@ def inputs_from_release(release) -> SynthesisInputs:
         A table the sampler reads is inconsistent (ids out of range, counts outside
         ``[0, possible pairs]``, a degree table that does not list every person).
     """
-    supernodes, superedges, manifest = _superedges(release)
+    from ..bundle.read import require_superedges
+    from ..bundle.read import table_column as _col
+
+    supernodes, superedges, manifest = require_superedges(release)
     tables = getattr(release, "tables", {}) or {}
     sizes = _sizes(supernodes)
     n = len(sizes)
@@ -233,7 +235,7 @@ def fit_affinity(inputs: SynthesisInputs) -> float:
     if key in _AFFINITY_CACHE:
         _AFFINITY_CACHE.move_to_end(key)
         return _AFFINITY_CACHE[key]
-    from ..released.triangles import count_triangles
+    from ..graph_counts import count_triangles
 
     rng = np.random.default_rng(int(key[:32], 16))
     n = int(inputs.sizes.sum())
@@ -338,9 +340,13 @@ def sample_network(release, seed=None, *, affinity: float | None = None) -> pa.T
     B. Karrer, M. E. J. Newman, Physical Review E 83, 016107, 2011.
     M. Hay, G. Miklau, D. Jensen, D. Towsley, P. Weis, PVLDB 1(1), 2008.
     """
+    import pyarrow as pa
+
+    from ..bundle.read import public_tables
+
     rng = make_generator(seed)
     inputs = inputs_from_release(release)
-    manifest = _public_tables(release)[2]
+    manifest = public_tables(release)[2]
     rho = fit_affinity(inputs) if affinity is None else float(affinity)
     src, tgt = _draw(inputs, rho, rng)
     meta = {"synthetic": True, "people": int(inputs.sizes.sum()), "seed": seed if isinstance(seed, int) else None,
@@ -364,7 +370,11 @@ def synthetic_people(release) -> pa.Table:
     pyarrow.Table
         ``person`` (int64) and ``supernode`` (int64).
     """
-    sizes = _sizes(_public_tables(release)[0])
+    import pyarrow as pa
+
+    from ..bundle.read import public_tables
+
+    sizes = _sizes(public_tables(release)[0])
     supernode = np.repeat(np.arange(len(sizes), dtype=np.int64), sizes)
     return pa.table({"person": np.arange(len(supernode), dtype=np.int64), "supernode": supernode})
 
@@ -378,5 +388,7 @@ def write_sample(table: pa.Table, out, *, overwrite: bool = False) -> Path:
         ``out`` exists (and ``overwrite`` is false), is a folder, or its folder is missing or not writable.
     """
     import pyarrow.parquet as pq
+
+    from ..outputs import write_file
 
     return write_file(out, lambda tmp: pq.write_table(table, tmp), overwrite=overwrite, what="sample")
