@@ -136,8 +136,9 @@ def keep_freed_memory() -> bool:
     (``M_MMAP_THRESHOLD``, glibc's largest; those are handed back when freed). Measured on a 2-core
     machine, whole processes, interleaved (``benchmarks/README.md``, section "Freed memory kept for
     reuse"): the demo town 184,000 -> 87,000 page faults, system time 0.61 -> 0.40 s, median 2.42 ->
-    2.17 s; 10M contacts system time 1.94 -> 1.70 s; the 100M release's peak about 0.1 GB higher
-    (3.6 GB), as memory freed by one phase is kept for the next.
+    2.17 s; 10M contacts system time 1.94 -> 1.70 s; the 100M release's peak about 0.1 GB higher, as
+    memory freed by one phase is kept for the next (3.59-3.62 against 3.52-3.55 GB by ``/usr/bin/time``;
+    the scale benchmark's process-tree peak stayed at 3.43-3.44 GB).
 
     Applied with ``mallopt`` to this process, and through glibc's variables
     (``MALLOC_TRIM_THRESHOLD_``, ``MALLOC_MMAP_THRESHOLD_``) to the processes it starts (the audit's
