@@ -456,3 +456,16 @@ def test_shuffled_order_sorts_by_the_keys_and_breaks_ties_uniformly(monkeypatch,
     a = dc._shuffled_order(7, np.random.default_rng(9), major, minor)
     monkeypatch.setattr(dc, "_PACK_LIMIT", 1 if packed else 2 ** 62)
     assert np.array_equal(a, dc._shuffled_order(7, np.random.default_rng(9), major, minor))
+
+
+def test_the_samplers_merge_of_sorted_keys_is_their_sorted_union():
+    """``_merge`` (one stable sort of two sorted runs) against numpy's ``union1d`` on disjoint sorted keys,
+    empty sides included."""
+    from aggpub.synthesis.degree_corrected import _merge
+
+    rng = np.random.default_rng(5)
+    for n_a, n_b in ((0, 0), (0, 7), (9, 0), (1, 1), (500, 3), (40, 4000)):
+        keys = rng.permutation(np.unique(rng.integers(0, 10 ** 9, 3 * (n_a + n_b) + 1)))[: n_a + n_b]
+        a, b = np.sort(keys[:n_a]), np.sort(keys[n_a:])
+        got = _merge(a, b)
+        assert got.dtype == keys.dtype and np.array_equal(got, np.union1d(a, b))
