@@ -370,7 +370,7 @@ def share_rows(network, *, releases, draws, layers, hierarchies, shares=(0.25, 0
 
 def pipeline_main(releases, draws, out_json=None):
     """Every figure of the closing note of issue 13, through ``aggpub.build_release`` (the real pipeline)."""
-    from aggpub.demo import demo_policy_text, generate_town
+    from aggpub.demo import generate_town
     from aggpub.ingest import load_network
 
     t_start = time.perf_counter()

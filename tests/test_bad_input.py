@@ -32,7 +32,6 @@ from pathlib import Path
 from typing import Callable
 
 import pyarrow as pa
-import pyarrow.parquet as pq
 import pytest
 
 from aggpub.bundle import check_bundle
