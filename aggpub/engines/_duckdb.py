@@ -373,7 +373,7 @@ class DuckDBEngine:
         else:
             # a person id is never null, empty nor a missing-value spelling (ingest refuses such person rows), so
             # an edge whose two ids both name a person has no missing id: the text test runs only on the other
-            # rows (CASE evaluates a branch on the rows that reach it): the demo town's staging query 94 -> 58 ms (best of 5)
+            # rows (CASE evaluates a branch on the rows that reach it; the demo town's staging query 94 -> 58 ms)
             known = "ps.idx IS NOT NULL AND pt.idx IS NOT NULL"
             mapped = (f"SELECT CASE WHEN {known} THEN ps.idx WHEN {missing} THEN {MISSING_ID} "
                       f"ELSE coalesce(ps.idx, {UNKNOWN_ID}) END AS s, "
