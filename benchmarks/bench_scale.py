@@ -25,6 +25,10 @@ child):
               release); its stages come from its progress lines (both formats: ``progress: <message>
               (<s> s in)`` and the older ``[  <s>s] <message>``): reading and de-duplicating
               (``ingest``), the confidential audit and its report, and their parts
+``release-same``  (sizes whose default policy releases the triangle count: 1M) the release with
+              ``[components.triangle_count] enabled = false``, so that the scaling fit compares the same
+              kinds of work at every size (the default counts triangles only on networks of at most
+              ``aggpub.policy.TRIANGLE_AUTO_MAX_PEOPLE`` people; ``--no-same-work`` leaves it out)
 ``demo``      ``aggpub release`` of the demo town (30,000 people, about 170,000 contacts; the files
               written by each installation's own ``aggpub.demo.write_demo_inputs``, released with
               its policy), beside ``demo-bare``, a DuckDB DISTINCT + join + GROUP BY of the same CSVs
@@ -132,7 +136,12 @@ def git(*a):
         return subprocess.run(["git", "-C", root, *a], capture_output=True, text=True, timeout=20).stdout.strip()
     except Exception:
         return ""
+try:
+    from aggpub.policy import TRIANGLE_AUTO_MAX_PEOPLE as tri_max
+except ImportError:
+    tri_max = None
 print(json.dumps(dict(python=sys.version.split()[0], aggpub=root, commit=git("rev-parse", "--short", "HEAD"),
+                      triangle_auto_max_people=tri_max,
                       changed_files_in_aggpub=len(git("status", "--porcelain", "--", "aggpub").splitlines()),
                       duckdb=duckdb.__version__, numpy=numpy.__version__, pyarrow=pyarrow.__version__)))
 """
@@ -234,6 +243,9 @@ def main(argv=None):
     ap.add_argument("--large-repeat", type=int, default=None,
                     help="runs of every row for sizes above 10M (default: --repeat)")
     ap.add_argument("--no-demo", action="store_true", help="leave out the demo town rows")
+    ap.add_argument("--no-same-work", action="store_true",
+                    help="leave out the 'release-same' row (sizes where the default policy releases the triangle "
+                         "count, released again without it, for an exponent on the same work at every size)")
     ap.add_argument("--small-pages-baseline", action="store_true",
                     help="also time the bare query with transparent huge pages off, as `aggpub` runs since "
                          "2026-12-03 (aggpub.pages.no_huge_pages); the release's ratio to it is reported too")
@@ -270,6 +282,9 @@ def main(argv=None):
                     "--sizes", ",".join(size_label(m) for m in sizes)], check=True, env=child_env())
     graphs = {size_label(m): (m,) + grp_paths(args.data, size_label(m)) for m in sizes}
     policy = args.data / "policy_grp.toml"
+    # the same policy without the triangle count, which the default releases on small networks only
+    same_work_policy = work / "policy_grp_same_work.toml"
+    same_work_policy.write_text(policy.read_text() + SAME_WORK_EXTRA)
     runs = Runs()
 
     def do(key, cmd, *, spill_dir=None):
@@ -323,6 +338,11 @@ def main(argv=None):
                     do((scen, "release", lab), release_cmd(py, edges, people, policy, out), spill_dir=work)
                     shutil.rmtree(out, ignore_errors=True)
                     shutil.rmtree(Path(str(out) + ".report"), ignore_errors=True)
+                    if _triangles_by_default(info[lab], m) and not args.no_same_work:
+                        do((scen, "release-same", lab), release_cmd(py, edges, people, same_work_policy, out),
+                           spill_dir=work)
+                        shutil.rmtree(out, ignore_errors=True)
+                        shutil.rmtree(Path(str(out) + ".report"), ignore_errors=True)
         if not args.no_demo:
             log("demo town")
             for rep in range(args.repeat):
@@ -346,6 +366,20 @@ def main(argv=None):
     if args.json:
         args.json.write_text(json.dumps({f"{s}|{r}|{lab}": v for (s, r, lab), v in runs.runs.items()}, indent=1))
     return 0
+
+
+#: What ``release-same`` adds to the benchmark policy: the default releases the triangle count only on networks of at
+#: most ``aggpub.policy.TRIANGLE_AUTO_MAX_PEOPLE`` people (100,000: the 1M graph), so the 1M release does work the
+#: larger ones do not (counting triangles, about 0.35 s), which the fit a + b m^k would read as growth.
+SAME_WORK_EXTRA = "\n# the same components at every size (bench_scale.py's release-same row)\n" \
+                  "[components.triangle_count]\nenabled = false\n"
+
+
+def _triangles_by_default(info: dict, m: int) -> bool:
+    """Whether the installation's default policy releases the triangle count on the graph of ``m`` contacts
+    (``m / 10`` people, ``gen_graph.generate_grp``)."""
+    limit = info.get("triangle_auto_max_people")
+    return limit is not None and m // 10 <= limit
 
 
 # ---------------------------------------------------------------------------------------------- report
@@ -571,6 +605,24 @@ def report(args, argv, sizes, graphs, installs, info, runs, started, load_start)
                     L.append(line)
                     if k is not None:
                         exps[name + " contact stages"] = k
+                # the same components at every size: release-same where it ran, the default release elsewhere
+                same = [(m, runs.best((size_label(m), "release-same", lab)) or r) for m, r in best]
+                if any(runs.best((size_label(m), "release-same", lab)) for m in sizes):
+                    for unit, value in (("wall", lambda m, r: r["seconds"]),
+                                        ("cpu", lambda m, r: runs.min_cpu((size_label(m), "release-same", lab))
+                                         or runs.min_cpu((size_label(m), "release", lab)))):
+                        pts = [(m, value(m, r)) for m, r in same if r and r["ok"]]
+                        line, k = scaling_line(f"{name}, same work ({unit})", pts, "s" if unit == "wall" else "cpu s")
+                        if line:
+                            L.append(line)
+                            if k is not None:
+                                exps[f"{name} same work{'' if unit == 'wall' else ' cpu'}"] = k
+        if any(rname == "release-same" for (_, rname, _) in runs.runs):
+            L.append("")
+            L.append("same work: at sizes where the default policy releases the triangle count (networks of at most "
+                     "aggpub.policy.TRIANGLE_AUTO_MAX_PEOPLE people), the release-same row (the policy with "
+                     "[components.triangle_count] enabled = false) stands for the release, so that every size does "
+                     "the same kinds of work and a is a fixed cost.")
         L.append("")
 
     # ---- goals
@@ -612,7 +664,12 @@ def report(args, argv, sizes, graphs, installs, info, runs, started, load_start)
             goals.append(f"exponent once fixed costs are subtracted (fit a + b m^k): wall {exps[f'release {lab}']:.2f}"
                          + (f", cpu {exps[f'release {lab} cpu']:.2f}" if f"release {lab} cpu" in exps else "")
                          + (f", contact stages alone {exps[f'release {lab} contact stages']:.2f}"
-                            if f"release {lab} contact stages" in exps else "") + " (goal: linear, 1)")
+                            if f"release {lab} contact stages" in exps else "")
+                         + (f"; the same work at every size (no triangle count at 1M): wall "
+                            f"{exps[f'release {lab} same work']:.2f}"
+                            + (f", cpu {exps[f'release {lab} same work cpu']:.2f}"
+                               if f"release {lab} same work cpu" in exps else "")
+                            if f"release {lab} same work" in exps else "") + " (goal: linear, 1)")
         L.append(f"{lab}:")
         L.extend(f"  - {g}" for g in goals or ["(nothing measured)"])
     L.append("")
