@@ -7,12 +7,26 @@ and its widths) is in :mod:`aggpub.released.triangles`; this module only counts.
 
 from __future__ import annotations
 
-__all__ = ["count_triangles", "ROW_BATCH"]
+__all__ = ["count_triangles", "degree_rank", "ROW_BATCH"]
 
 import numpy as np
 
 #: Rows of the oriented adjacency multiplied at once (bounds the temporary memory).
 ROW_BATCH = 65_536
+
+
+def degree_rank(deg) -> np.ndarray:
+    """Each node's rank by degree, ties by node number (the orientation that keeps triangle counting small).
+
+    References
+    ----------
+    T. Schank, D. Wagner, "Finding, counting and listing all triangles in large graphs, an experimental
+    study", WEA 2005 (degree ordering).
+    """
+    n = len(deg)
+    rank = np.empty(n, dtype=np.int64)
+    rank[np.lexsort((np.arange(n), deg))] = np.arange(n)
+    return rank
 
 
 def count_triangles(u, v, n: int) -> int:
@@ -28,9 +42,7 @@ def count_triangles(u, v, n: int) -> int:
     v = np.asarray(v, dtype=np.int64)
     if len(u) < 3 or n < 3:
         return 0
-    deg = np.bincount(u, minlength=n) + np.bincount(v, minlength=n)
-    rank = np.empty(n, dtype=np.int64)
-    rank[np.lexsort((np.arange(n), deg))] = np.arange(n)
+    rank = degree_rank(np.bincount(u, minlength=n) + np.bincount(v, minlength=n))
     ru, rv = rank[u], rank[v]
     lo, hi = np.minimum(ru, rv), np.maximum(ru, rv)
     L = sparse.csr_matrix((np.ones(len(lo), dtype=np.float64), (lo, hi)), shape=(n, n))

@@ -30,6 +30,8 @@ import numpy as np
 from scipy import sparse
 from scipy.sparse import csgraph
 
+from ..graph_counts import degree_rank
+
 
 
 def adjacency(u, v, n: int) -> sparse.csr_matrix:
@@ -58,8 +60,7 @@ def oriented(u, v, n: int, deg) -> sparse.csr_matrix:
     """
     u = np.asarray(u, dtype=np.int64)
     v = np.asarray(v, dtype=np.int64)
-    rank = np.empty(n, dtype=np.int64)
-    rank[np.lexsort((np.arange(n), deg))] = np.arange(n)
+    rank = degree_rank(deg)
     up = rank[u] < rank[v]
     return sparse.csr_matrix((np.ones(len(u)), (np.where(up, u, v), np.where(up, v, u))), shape=(n, n))
 

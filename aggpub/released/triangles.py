@@ -57,7 +57,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..budget import Spend
-from ..graph_counts import count_triangles  # re-exported: counted here before it moved
+from ..graph_counts import count_triangles  # triangle_truth counts with it (also re-exported: it lived here)
 from ..noise.ladder import LadderMechanism
 
 
