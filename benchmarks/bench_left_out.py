@@ -1,4 +1,5 @@
-"""Two alternatives measured for issue 15 and left out, kept runnable so that the figures can be checked again.
+"""Alternatives measured for issue 15, kept runnable so that the figures can be checked again: two left out
+(sections 1 and 2), and the comparison behind one that was taken (section 3).
 
 1. **The contact view's value columns as Arrow dictionaries** instead of strings, on a view of 2,000
    values (2,001,000 cells, the size of the scale benchmark's view): building the table
@@ -10,10 +11,17 @@
    orientation (Schank and Wagner, WEA 2005), every pair of out-neighbours of a person looked up among the
    oriented contacts by binary search, each triangle found once and counted at its three corners. The two
    answers are compared person by person.
+3. **Collapsing repeated contacts**: DuckDB's GROUP BY over the two mapped id columns (the staging query
+   of ``aggpub.engines._duckdb.DuckDBEngine.stage_edges`` before 2026-12-03's fifth session, for integer
+   ids numbered from 0: the dense id is the id, no join), the same GROUP BY on one 64-bit key, and numpy
+   (the ids fetched, one sort of the pair keys: what ``stage_edges`` now does for inputs without weight or
+   layer that fit the memory limit, ``PairCollapser``), on the scale benchmark's contacts
+   (``gen_graph.generate_grp``, cached under ``--data``; ``--contacts``, default 10M). Each variant
+   counts the distinct pairs; the three counts are compared.
 
 Each figure is the median (and the minimum) of ``--repeat`` runs in this process, after one untimed run, the two
 variants interleaved.
-Speed only; nothing here is used by the product.
+Speed only; nothing here is used by the product (section 3 times the engine's own ``PairCollapser``).
 
 Usage::
 
@@ -150,17 +158,78 @@ def triangles(repeat, lines):
                  f"same counts: {np.array_equal(np.asarray(by_products, dtype=np.int64), by_wedges)}")
 
 
+def mapped_sql(path: Path, n: int) -> str:
+    """The staging query's mapping of integer ids numbered from 0 (unknown ids as -1)."""
+    return (f"SELECT CASE WHEN source BETWEEN 0 AND {n - 1} THEN CAST(source AS INTEGER) ELSE -1 END AS s, "
+            f"CASE WHEN target BETWEEN 0 AND {n - 1} THEN CAST(target AS INTEGER) ELSE -1 END AS t "
+            f"FROM read_parquet('{path}')")
+
+
+def collapse_sql(path: Path, n: int, one_key: bool) -> str:
+    """The staging query's collapse of repeated pairs, on the two mapped columns or on one key."""
+    mapped = mapped_sql(path, n)
+    if one_key:
+        return (f"CREATE OR REPLACE TEMP TABLE m AS SELECT (CAST(least(s, t) AS BIGINT) + 2) * {n + 2} "
+                f"+ (greatest(s, t) + 2) AS k, count(*) AS mult FROM ({mapped}) GROUP BY 1")
+    return (f"CREATE OR REPLACE TEMP TABLE m AS SELECT least(s, t) AS u, greatest(s, t) AS v, count(*) AS mult "
+            f"FROM ({mapped}) GROUP BY 1, 2")
+
+
+def collapse(repeat, lines, data: Path, contacts: str):
+    import duckdb
+
+    sys.path.insert(0, str(Path(__file__).resolve().parent))
+    from gen_graph import generate_grp, parse_size
+
+    edges, people = generate_grp(data, parse_size(contacts), log=lambda msg: None)
+    n = pq.read_metadata(people).num_rows
+    con = duckdb.connect()
+    con.execute("SET preserve_insertion_order=false")
+
+    def in_sql(one_key):
+        con.execute(collapse_sql(edges, n, one_key))
+        return con.execute("SELECT count(*) FROM m").fetchone()[0]
+
+    def in_numpy():  # the engine's own collapse (PairCollapser) of the same mapped ids, streamed in batches
+        from aggpub.engines._duckdb import EDGE_BATCH_ROWS, PairCollapser
+
+        collapser = PairCollapser(n, pq.read_metadata(edges).num_rows)
+        for batch in con.sql(mapped_sql(edges, n)).to_arrow_reader(EDGE_BATCH_ROWS):
+            collapser.add(batch.column(0).to_numpy(), batch.column(1).to_numpy())
+        return collapser.finish()[0].edges
+
+    res = _interleaved({"two columns": lambda: in_sql(False), "one key": lambda: in_sql(True),
+                        "numpy sort": in_numpy}, repeat)
+    lines.append(f"  {edges.name}: {n:,} people")
+    lines.append("  " + "   ".join(f"{name} {res[name][0][0]:.3f} s (min {res[name][0][1]:.3f})" for name in res))
+    counts = {res[name][1] for name in res}
+    lines.append(f"  pairs {sorted(counts)[0]:,} (numpy: distinct known pairs; GROUP BY: groups); the same in all three: "
+                 f"{len(counts) == 1}")
+
+
 def main(argv=None):
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--repeat", type=int, default=15, help="timed runs of each figure (median and minimum)")
     ap.add_argument("--out", type=Path, help="also write the report here")
+    ap.add_argument("--data", type=Path, default=Path(__file__).resolve().parent.parent / "bench-data",
+                    help="folder of the scale benchmark's generated files (made here when missing)")
+    ap.add_argument("--contacts", default="10M", help="size of the graph of section 3 (1M, 10M, ...)")
+    ap.add_argument("--repeat-large", type=int, default=5, help="timed runs of each variant of section 3")
+    ap.add_argument("--sections", default="1,2,3", help="which sections to run (comma-separated)")
     args = ap.parse_args(argv)
+    wanted = {x.strip() for x in args.sections.split(",")}
     lines = [f"bench_left_out.py, {datetime.datetime.now().astimezone():%Y-%m-%d %H:%M %Z}, "
              f"median (min) of {args.repeat}, load {os.getloadavg()[0]:.2f}",
-             "1. the contact view's value columns (2,000 values, 2,001,000 cells)"]
-    views(args.repeat, lines)
-    lines.append("2. triangles through each person")
-    triangles(args.repeat, lines)
+             ]
+    if "1" in wanted:
+        lines.append("1. the contact view's value columns (2,000 values, 2,001,000 cells)")
+        views(args.repeat, lines)
+    if "2" in wanted:
+        lines.append("2. triangles through each person")
+        triangles(args.repeat, lines)
+    if "3" in wanted:
+        lines.append(f"3. collapsing repeated contacts, {args.contacts} contacts (median (min) of {args.repeat_large})")
+        collapse(args.repeat_large, lines, args.data, args.contacts)
     text = "\n".join(lines) + "\n"
     print(text, end="")
     if args.out:

@@ -33,6 +33,12 @@ EDGE_BATCH_ROWS = 1 << 22
 COUNTING_PARTS = 2
 #: Largest table of superedge cells counted densely in numpy (8 bytes a cell: 128 MiB); above, SQL.
 DENSE_COUNT_MAX_CELLS = 1 << 24
+#: Memory (bytes per edge row) that collapsing repeated contacts in numpy takes at most: 17 in
+#: :class:`PairCollapser` (keys, marks, kept keys; then the two int32 ends) and a little for the batch in
+#: hand. Inputs of at most ``memory_limit / NUMPY_COLLAPSE_BYTES_PER_ROW`` rows are collapsed in numpy, larger
+#: ones by DuckDB's GROUP BY (which spills to disk); the same contacts and counts either way
+#: (:meth:`DuckDBEngine.stage_edges`). At the default limit on a 24 GB machine (2.2 GiB): 118M rows.
+NUMPY_COLLAPSE_BYTES_PER_ROW = 20
 
 
 def quote_ident(name: str) -> str:
@@ -148,6 +154,89 @@ def _contiguous_offset(ids: pa.Table):
     return first
 
 
+_SIZE_UNITS = {"bytes": 1, "kib": 1 << 10, "mib": 1 << 20, "gib": 1 << 30, "tib": 1 << 40,
+               "kb": 10 ** 3, "mb": 10 ** 6, "gb": 10 ** 9, "tb": 10 ** 12}
+
+
+def _setting_bytes(text) -> int | None:
+    """Bytes of a size as DuckDB prints a setting (``'2.2 GiB'``, ``'476.8 MiB'``); ``None`` if not one."""
+    parts = str(text).strip().split()
+    if len(parts) != 2 or parts[1].lower() not in _SIZE_UNITS:
+        return None
+    try:
+        return int(float(parts[0]) * _SIZE_UNITS[parts[1].lower()])
+    except ValueError:
+        return None
+
+
+class PairCollapser:
+    """Repeated contacts collapsed in numpy, batch by batch, as the staging query's GROUP BY counts them.
+
+    :meth:`add` takes a batch of mapped dense ids ``s``, ``t`` (or the codes :data:`MISSING_ID` and
+    :data:`UNKNOWN_ID`; the mapping gives both ends :data:`MISSING_ID` when either is missing). Each row's
+    ends are ordered (``u = min``, ``v = max``): a row whose smaller end is a code is missing or unknown,
+    ``u == v`` is a self-loop, and each pair ``u < v`` of known people becomes the key ``u * n + v``.
+    :meth:`finish` sorts the keys once (one 64-bit sort) and keeps each once.
+
+    Memory: 8 bytes a row for the keys (written into one array of ``rows_hint`` rows, reserved, not
+    touched, and grown if the hint was short), then a byte a row for the first-of-its-key marks and 8
+    bytes a distinct pair for the kept keys, then 8 for the two int32 ends (the keys freed): at most 17
+    bytes a row, and the temporaries of one batch.
+    """
+
+    def __init__(self, n_people: int, rows_hint: int = 0):
+        self.n = int(n_people)
+        self.keys = np.empty(max(int(rows_hint), 0), dtype=np.int64)
+        self.filled = self.rows = self.missing = self.unknown = self.loops = 0
+
+    def add(self, s: np.ndarray, t: np.ndarray) -> None:
+        lo = np.minimum(s, t)
+        hi = np.maximum(s, t)
+        self.rows += len(lo)
+        self.missing += int(np.count_nonzero(lo == MISSING_ID))
+        self.unknown += int(np.count_nonzero(lo == UNKNOWN_ID))
+        known = lo >= 0
+        self.loops += int(np.count_nonzero(known & (lo == hi)))
+        pair = known & (lo < hi)
+        k = int(np.count_nonzero(pair))
+        if self.filled + k > len(self.keys):  # the hint was short: grow (copies what is there)
+            grown = np.empty(max(2 * len(self.keys), self.filled + k), dtype=np.int64)
+            grown[:self.filled] = self.keys[:self.filled]
+            self.keys = grown
+        out = self.keys[self.filled:self.filled + k]
+        np.multiply(lo[pair], self.n, out=out, dtype=np.int64, casting="unsafe")
+        out += hi[pair]
+        self.filled += k
+
+    def finish(self):
+        """``(EdgeCounts, u, v)``: the counts, and the distinct pairs (int32) in key order."""
+        keys = self.keys[:self.filled]
+        self.keys = None
+        keys.sort()
+        first = np.empty(len(keys), dtype=bool)
+        first[:1] = True
+        np.not_equal(keys[1:], keys[:-1], out=first[1:])
+        kept = keys[first]
+        duplicates = len(keys) - len(kept)
+        del keys, first
+        u = np.empty(len(kept), dtype=np.int32)
+        v = np.empty(len(kept), dtype=np.int32)
+        for i in range(0, len(kept), EDGE_BATCH_ROWS):  # in slices: no table-sized int64 temporaries
+            q, r = np.divmod(kept[i:i + EDGE_BATCH_ROWS], self.n)
+            u[i:i + EDGE_BATCH_ROWS] = q
+            v[i:i + EDGE_BATCH_ROWS] = r
+        counts = EdgeCounts(rows=self.rows, missing_id=self.missing, unknown_person=self.unknown, bad_weight=0,
+                            self_loops=self.loops, duplicates=duplicates, edges=len(kept), bad_layer=0)
+        return counts, u, v
+
+
+def collapse_pairs(s: np.ndarray, t: np.ndarray, n_people: int):
+    """``(EdgeCounts, u, v)`` of one batch of mapped ids (:class:`PairCollapser`)."""
+    c = PairCollapser(n_people, len(s))
+    c.add(np.asarray(s), np.asarray(t))
+    return c.finish()
+
+
 class _DenseCounter:
     """One thread's share of the dense superedge counting: its own table of every cell, degrees and arrays.
 
@@ -254,6 +343,7 @@ class DuckDBEngine:
         self.con.execute("SET enable_progress_bar=true")
         self.con.execute("SET enable_progress_bar_print=false")
         self._staged = None
+        self._pairs = None  # the distinct pairs when collapsed in numpy (_stage_in_numpy), until published
         self._degrees = None
 
     def _long(self, what: str) -> LongStep:
@@ -348,7 +438,14 @@ class DuckDBEngine:
         return f"CAST(CASE {col} {cases} END AS SMALLINT)"
 
     def stage_edges(self, source: Source, columns: EdgeColumns, ids: pa.Table) -> EdgeCounts:
-        """Map, canonicalise and collapse the edges in one scan (see :meth:`aggpub.engines.Engine.stage_edges`)."""
+        """Map, canonicalise and collapse the edges in one scan (see :meth:`aggpub.engines.Engine.stage_edges`).
+
+        Ids map to dense ids in SQL (arithmetic for integer ids numbered in order, else a join). Without a
+        weight or layer column, an input whose rows fit the memory limit (:meth:`_collapse_in_numpy`) has
+        its repeated contacts collapsed in numpy (:meth:`_stage_in_numpy`); otherwise, and always with a
+        weight or layer (their sums and first layers), a GROUP BY collapses them. The same contacts and
+        the same counts either way (``tests/test_pair_collapse.py``).
+        """
         e_sql = self._relation_sql(source)
         self.con.register("__ids", ids)
         spellings = columns.missing_spellings
@@ -390,6 +487,9 @@ class DuckDBEngine:
                   else "CAST(0 AS SMALLINT) AS layer, CAST(0 AS BIGINT) AS bad_l")
         if not columns.weight:
             mapped = mapped.replace(", e.w, e.l", ", e.l")
+        bound = None if columns.weight or columns.layer else self._collapse_in_numpy(source, ids.num_rows)
+        if bound is not None:
+            return self._stage_in_numpy(source, columns, a_sql, b_sql, e_sql, mapped, ids.num_rows, bound)
         # issue 13: the layer's position among the declared layers (NULL when undeclared); the GROUP BY that
         # collapses a pair's rows keeps its first declared layer (the public one-layer rule)
         q = f"""
@@ -417,6 +517,50 @@ class DuckDBEngine:
                    coalesce(sum(bad_l) FILTER (WHERE u >= 0), 0)
             FROM __mapped""").fetchall()[0]
         return EdgeCounts(*(int(x) for x in stats))
+
+    def _collapse_in_numpy(self, source: Source, n_people: int) -> int | None:
+        """The input's rows at most, when they fit :data:`NUMPY_COLLAPSE_BYTES_PER_ROW` each in the memory limit
+        (else ``None``: DuckDB's GROUP BY collapses them).
+
+        The bound: an Arrow table's rows, a Parquet file's row count (its metadata), a text file's size
+        over 4 (a data row holds two ids, a separator and a line end). It only chooses how the same pairs
+        are collapsed; nothing released depends on it (docs/privacy.md, section 10).
+        """
+        limit = _setting_bytes(self.con.execute("SELECT current_setting('memory_limit')").fetchall()[0][0])
+        if limit is None or n_people >= 2 ** 31:
+            return None
+        try:
+            if source.format == "arrow":
+                bound = source.table.num_rows
+            elif source.format == "parquet":
+                bound = self.con.execute("SELECT sum(num_rows) FROM parquet_file_metadata("
+                                         f"{quote_literal(source.path)})").fetchall()[0][0]
+            else:
+                bound = os.path.getsize(source.path) // 4 + 1
+        except (duckdb.Error, OSError, TypeError, ValueError):  # unreadable here: DuckDB's GROUP BY reports it
+            return None
+        if bound is None or int(bound) * NUMPY_COLLAPSE_BYTES_PER_ROW > limit:
+            return None
+        return int(bound)
+
+    def _stage_in_numpy(self, source, columns, a_sql, b_sql, e_sql, mapped, n_people, bound) -> EdgeCounts:
+        """:meth:`stage_edges` for an input without weight or layer that fits in memory: the mapped ids stream
+        out in Arrow batches and repeated contacts are collapsed by one sort in numpy (:class:`PairCollapser`)
+        instead of DuckDB's GROUP BY over two columns (``benchmarks/bench_left_out.py``, section 3)."""
+        q = (f"WITH e AS (SELECT {a_sql} AS a, {b_sql} AS b, NULL AS l FROM {e_sql}), m AS ({mapped}) "
+             "SELECT s, t FROM m")
+        collapser = PairCollapser(n_people, bound)
+        try:
+            with self._long("reading, mapping and collapsing edges"):
+                for batch in self.con.sql(q).to_arrow_reader(EDGE_BATCH_ROWS):
+                    collapser.add(batch.column(0).to_numpy(), batch.column(1).to_numpy())
+        except (duckdb.Error, pa.ArrowException) as exc:
+            self.discard_staged_edges()
+            raise _unreadable(source, exc) from None
+        counts, u, v = collapser.finish()
+        self._staged = (source, columns)
+        self._pairs = pa.table({"u": pa.array(u), "v": pa.array(v)})
+        return counts
 
     def first_staged_row(self, condition: RowCondition):
         """1-based data row of the first staged edge row matching ``condition`` (error path only)."""
@@ -467,21 +611,28 @@ class DuckDBEngine:
             stored.append("w")
         if columns.layer:
             stored.append("CAST(layer AS SMALLINT) AS layer")
+        if self._pairs is not None:  # collapsed in numpy: the distinct pairs of known, different people
+            self.con.register("__pairs", self._pairs)
+            staged = "__pairs"
+        else:
+            staged = "__mapped WHERE u < v AND u >= 0"
         with self._long("keeping the contacts"):
             self.con.execute("DROP VIEW IF EXISTS edges")
             self.con.execute(f"""CREATE OR REPLACE TABLE __edges AS SELECT {', '.join(stored)}
-                                 FROM __mapped WHERE u < v AND u >= 0""")
+                                 FROM {staged}""")
             self.con.execute(f"CREATE VIEW edges AS SELECT {', '.join(shown)} FROM __edges")
         self.discard_staged_edges()
         self._degrees = None  # new edges: forget degrees of a previous load
 
     def discard_staged_edges(self):
-        """Drop the staged table, the id table and the input's view."""
+        """Drop the staged table (or pairs), the id table and the input's view."""
         self.con.execute("DROP TABLE IF EXISTS __mapped")
-        try:
-            self.con.unregister("__ids")
-        except duckdb.Error:  # pragma: no cover - not registered
-            pass
+        for name in ("__ids", "__pairs"):
+            try:
+                self.con.unregister(name)
+            except duckdb.Error:  # pragma: no cover - not registered
+                pass
+        self._pairs = None
         self._forget_input()
         self._staged = None
 
