@@ -124,6 +124,23 @@ def test_collapse_pairs_counts_codes_loops_and_repeats():
     assert u.dtype == v.dtype == np.int32
 
 
+@pytest.mark.parametrize("stretches", [0, 3, 4096])
+def test_both_ways_of_keeping_each_pair_once_against_numpy_unique(monkeypatch, stretches):
+    # few repeats: split stretch by stretch; many: slice by slice (slices of 64 rows here, so that a pair's
+    # rows straddle a slice's edge), checked against numpy.unique of the ordered pairs
+    monkeypatch.setattr(PairCollapser, "MAX_STRETCHES", stretches)
+    monkeypatch.setattr(duck, "EDGE_BATCH_ROWS", 64)
+    rng = np.random.default_rng(stretches)
+    s = rng.integers(0, 30, 3000).astype(np.int32)
+    t = rng.integers(0, 30, 3000).astype(np.int32)
+    counts, u, v = collapse_pairs(s, t, 30)
+    lo, hi = np.minimum(s, t), np.maximum(s, t)
+    want = np.unique(np.stack([lo[lo < hi], hi[lo < hi]], axis=1), axis=0)
+    assert np.array_equal(np.stack([u, v], axis=1), want)
+    assert counts.edges == len(want) and counts.duplicates == int((lo < hi).sum()) - len(want)
+    assert counts.self_loops == int((lo == hi).sum())
+
+
 def test_batches_and_a_short_hint_give_the_same_answer():
     rng = np.random.default_rng(3)
     s = rng.integers(-2, 50, 5000).astype(np.int32)

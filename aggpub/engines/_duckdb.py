@@ -34,8 +34,7 @@ COUNTING_PARTS = 2
 #: Largest table of superedge cells counted densely in numpy (8 bytes a cell: 128 MiB); above, SQL.
 DENSE_COUNT_MAX_CELLS = 1 << 24
 #: Memory (bytes per edge row) that collapsing repeated contacts in numpy takes at most: 17 in
-#: :class:`PairCollapser` (keys, marks, kept keys; then the two int32 ends) and a little for the batch in
-#: hand. Inputs of at most ``memory_limit / NUMPY_COLLAPSE_BYTES_PER_ROW`` rows are collapsed in numpy, larger
+#: :class:`PairCollapser` (keys, repeat marks, the two int32 ends) and a little for the batch in hand. Inputs of at most ``memory_limit / NUMPY_COLLAPSE_BYTES_PER_ROW`` rows are collapsed in numpy, larger
 #: ones by DuckDB's GROUP BY (which spills to disk); the same contacts and counts either way
 #: (:meth:`DuckDBEngine.stage_edges`). At the default limit on a 24 GB machine (2.2 GiB): 118M rows.
 NUMPY_COLLAPSE_BYTES_PER_ROW = 20
@@ -175,17 +174,24 @@ class PairCollapser:
     :meth:`add` takes a batch of mapped dense ids ``s``, ``t`` (or the codes :data:`MISSING_ID` and
     :data:`UNKNOWN_ID`; the mapping gives both ends :data:`MISSING_ID` when either is missing). Each row's
     ends are ordered (``u = min``, ``v = max``): a row whose smaller end is a code is missing or unknown,
-    ``u == v`` is a self-loop, and each pair ``u < v`` of known people becomes the key ``u * n + v``.
-    :meth:`finish` sorts the keys once (one 64-bit sort) and keeps each once.
+    ``u == v`` is a self-loop, and each pair ``u < v`` of known people becomes the 64-bit key
+    ``u * 2**b + v`` (``2**b`` at least the number of people, so that the key orders pairs as
+    ``(u, v)`` and splits back by a shift and a mask). :meth:`finish` sorts the keys once and keeps each
+    once.
 
     Memory: 8 bytes a row for the keys (written into one array of ``rows_hint`` rows, reserved, not
-    touched, and grown if the hint was short), then a byte a row for the first-of-its-key marks and 8
-    bytes a distinct pair for the kept keys, then 8 for the two int32 ends (the keys freed): at most 17
-    bytes a row, and the temporaries of one batch.
+    touched, and grown if the hint was short), then a byte a row for the repeat marks and 8 bytes a
+    distinct pair for the two int32 ends: at most 17 bytes a row, and the temporaries of one batch or
+    slice.
     """
+
+    #: Up to this many repeated rows the kept pairs are split straight out of the sorted keys, stretch by
+    #: stretch between repeats; with more, slice by slice after gathering each slice's kept keys.
+    MAX_STRETCHES = 4096
 
     def __init__(self, n_people: int, rows_hint: int = 0):
         self.n = int(n_people)
+        self.bits = max(1, (self.n - 1).bit_length())
         self.keys = np.empty(max(int(rows_hint), 0), dtype=np.int64)
         self.filled = self.rows = self.missing = self.unknown = self.loops = 0
 
@@ -204,29 +210,44 @@ class PairCollapser:
             grown[:self.filled] = self.keys[:self.filled]
             self.keys = grown
         out = self.keys[self.filled:self.filled + k]
-        np.multiply(lo[pair], self.n, out=out, dtype=np.int64, casting="unsafe")
-        out += hi[pair]
+        np.left_shift(lo[pair], self.bits, out=out, dtype=np.int64, casting="unsafe")
+        out |= hi[pair]
         self.filled += k
+
+    def _split(self, keys, u, v) -> None:
+        np.right_shift(keys, self.bits, out=u, casting="unsafe")
+        np.bitwise_and(keys, (1 << self.bits) - 1, out=v, casting="unsafe")
 
     def finish(self):
         """``(EdgeCounts, u, v)``: the counts, and the distinct pairs (int32) in key order."""
         keys = self.keys[:self.filled]
         self.keys = None
         keys.sort()
-        first = np.empty(len(keys), dtype=bool)
-        first[:1] = True
-        np.not_equal(keys[1:], keys[:-1], out=first[1:])
-        kept = keys[first]
-        duplicates = len(keys) - len(kept)
-        del keys, first
-        u = np.empty(len(kept), dtype=np.int32)
-        v = np.empty(len(kept), dtype=np.int32)
-        for i in range(0, len(kept), EDGE_BATCH_ROWS):  # in slices: no table-sized int64 temporaries
-            q, r = np.divmod(kept[i:i + EDGE_BATCH_ROWS], self.n)
-            u[i:i + EDGE_BATCH_ROWS] = q
-            v[i:i + EDGE_BATCH_ROWS] = r
+        same = keys[1:] == keys[:-1]  # a row repeating the pair of the row before it
+        repeated = int(np.count_nonzero(same))
+        kept = len(keys) - repeated
+        u = np.empty(kept, dtype=np.int32)
+        v = np.empty(kept, dtype=np.int32)
+        done = 0
+        if repeated <= self.MAX_STRETCHES:  # the stretches between repeats, split where they lie (no copy)
+            repeats = np.flatnonzero(same) + 1
+            del same
+            for a, e in zip([0] + (repeats + 1).tolist(), repeats.tolist() + [len(keys)]):
+                if e > a:
+                    self._split(keys[a:e], u[done:done + e - a], v[done:done + e - a])
+                    done += e - a
+        else:  # slice by slice: each slice's first rows of their pairs gathered, then split
+            del same
+            for i in range(0, len(keys), EDGE_BATCH_ROWS):
+                part = keys[i:i + EDGE_BATCH_ROWS]
+                first = np.empty(len(part), dtype=bool)
+                first[0] = i == 0 or part[0] != keys[i - 1]
+                np.not_equal(part[1:], part[:-1], out=first[1:])
+                part = part[first]
+                self._split(part, u[done:done + len(part)], v[done:done + len(part)])
+                done += len(part)
         counts = EdgeCounts(rows=self.rows, missing_id=self.missing, unknown_person=self.unknown, bad_weight=0,
-                            self_loops=self.loops, duplicates=duplicates, edges=len(kept), bad_layer=0)
+                            self_loops=self.loops, duplicates=repeated, edges=kept, bad_layer=0)
         return counts, u, v
 
 
