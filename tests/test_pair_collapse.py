@@ -117,11 +117,11 @@ def test_collapse_pairs_counts_codes_loops_and_repeats():
     # dense ids 0..4; -2 missing (both ends), -1 unknown
     s = np.array([0, 1, 2, 2, -2, -1, 3, 4, 4, 1], dtype=np.int32)
     t = np.array([1, 0, 2, 3, -2, 3, 2, 0, 0, 0], dtype=np.int32)
-    counts, u, v = collapse_pairs(s, t, 5)
+    counts, u, v, layer = collapse_pairs(s, t, 5)
     assert (counts.rows, counts.missing_id, counts.unknown_person, counts.self_loops, counts.duplicates,
             counts.edges, counts.bad_weight, counts.bad_layer) == (10, 1, 1, 1, 4, 3, 0, 0)
     assert list(zip(u.tolist(), v.tolist())) == [(0, 1), (0, 4), (2, 3)]  # in key order
-    assert u.dtype == v.dtype == np.int32
+    assert u.dtype == v.dtype == np.int32 and layer is None
 
 
 @pytest.mark.parametrize("stretches", [0, 3, 4096])
@@ -133,7 +133,7 @@ def test_both_ways_of_keeping_each_pair_once_against_numpy_unique(monkeypatch, s
     rng = np.random.default_rng(stretches)
     s = rng.integers(0, 30, 3000).astype(np.int32)
     t = rng.integers(0, 30, 3000).astype(np.int32)
-    counts, u, v = collapse_pairs(s, t, 30)
+    counts, u, v, _ = collapse_pairs(s, t, 30)
     lo, hi = np.minimum(s, t), np.maximum(s, t)
     want = np.unique(np.stack([lo[lo < hi], hi[lo < hi]], axis=1), axis=0)
     assert np.array_equal(np.stack([u, v], axis=1), want)
@@ -154,6 +154,7 @@ def test_batches_and_a_short_hint_give_the_same_answer():
     parts = c.finish()
     assert parts[0] == whole[0]
     assert np.array_equal(parts[1], whole[1]) and np.array_equal(parts[2], whole[2])
+    assert parts[3] is None and whole[3] is None
 
 
 def test_the_memory_limit_chooses_the_path(tmp_path, monkeypatch):
@@ -177,3 +178,50 @@ def test_the_memory_limit_chooses_the_path(tmp_path, monkeypatch):
                                             ("", None), ("1.5 parsecs", None)])
 def test_memory_setting_as_duckdb_prints_it(text, expected):
     assert _setting_bytes(text) == expected
+
+
+LAYERS = ("household", "school", "work", "community")
+
+
+@pytest.mark.parametrize("stretches", [0, 4096])
+def test_layers_keep_each_pairs_first_declared_layer_both_ways(tmp_path, monkeypatch, stretches):
+    # the one-layer rule: a pair recorded in several layers counts once, in the first of its layers in the
+    # declared order; the numpy collapse (few or many repeats) and the GROUP BY against a Python reference
+    monkeypatch.setattr(PairCollapser, "MAX_STRETCHES", stretches)
+    rng = np.random.default_rng(11)
+    people = [f"q{i:02d}" for i in range(25)]
+    (tmp_path / "p.csv").write_text("node,g\n" + "".join(f"{p},x\n" for p in people))
+    rows = [(people[a], people[b], LAYERS[c]) for a, b, c in zip(rng.integers(0, 25, 900), rng.integers(0, 25, 900),
+                                                                   rng.integers(0, 4, 900))]
+    (tmp_path / "e.csv").write_text("source,target,setting\n" + "".join(f"{a},{b},{c}\n" for a, b, c in rows))
+    first = {}
+    for a, b, c in rows:
+        if a != b:
+            key = frozenset((a, b))
+            first[key] = min(first.get(key, 9), LAYERS.index(c))
+    got = {}
+    for path, per_row in (("numpy", 1), ("sql", 10 ** 15)):
+        monkeypatch.setattr(duck, "NUMPY_COLLAPSE_BYTES_PER_ROW", per_row)
+        net = load_network(tmp_path / "e.csv", tmp_path / "p.csv", layer="setting", layer_values=LAYERS)
+        ids = list(net.ids.to_pylist() if hasattr(net.ids, "to_pylist") else net.ids)
+        res = net.engine.con.execute("SELECT u, v, layer FROM edges").fetchall()
+        got[path] = ({frozenset((ids[u], ids[v])): int(lay) for u, v, lay in res}, net.report)
+    assert got["numpy"][0] == got["sql"][0] == first
+    assert got["numpy"][1] == got["sql"][1]
+
+
+def test_an_undeclared_layer_is_counted_on_rows_of_known_people_only():
+    s = np.array([0, 1, 2, -1, 3, 3], dtype=np.int32)
+    t = np.array([1, 0, 2, 4, 4, 4], dtype=np.int32)
+    layer = np.array([2, -1, -1, -1, 1, 0], dtype=np.int16)  # -1: empty or not declared
+    counts, u, v, lay = collapse_pairs(s, t, 5, layer, layers=4)
+    assert counts.bad_layer == 2  # the row (1, 0) and the self-loop (2, 2); not the unknown person's row
+    assert list(zip(u.tolist(), v.tolist(), lay.tolist())) == [(0, 1, 2), (3, 4, 0)]
+    assert counts.duplicates == 2 and counts.self_loops == 1 and counts.unknown_person == 1
+
+
+def test_keys_that_would_not_fit_64_bits_go_to_the_group_by():
+    assert PairCollapser.fits(2 ** 31 - 1, 0) and PairCollapser.fits(2 ** 30, 4)
+    assert not PairCollapser.fits(2 ** 31, 4)
+    with pytest.raises(ValueError):
+        PairCollapser(2 ** 31 + 1, 0, 4)

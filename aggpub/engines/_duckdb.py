@@ -33,8 +33,9 @@ EDGE_BATCH_ROWS = 1 << 22
 COUNTING_PARTS = 2
 #: Largest table of superedge cells counted densely in numpy (8 bytes a cell: 128 MiB); above, SQL.
 DENSE_COUNT_MAX_CELLS = 1 << 24
-#: Memory (bytes per edge row) that collapsing repeated contacts in numpy takes at most: 17 in
-#: :class:`PairCollapser` (keys, repeat marks, the two int32 ends) and a little for the batch in hand. Inputs of at most ``memory_limit / NUMPY_COLLAPSE_BYTES_PER_ROW`` rows are collapsed in numpy, larger
+#: Memory (bytes per edge row) that collapsing repeated contacts in numpy takes at most: 19 in
+#: :class:`PairCollapser` (keys, repeat marks, the two int32 ends and an int16 layer) and a little for the
+#: batch in hand. Inputs of at most ``memory_limit / NUMPY_COLLAPSE_BYTES_PER_ROW`` rows are collapsed in numpy, larger
 #: ones by DuckDB's GROUP BY (which spills to disk); the same contacts and counts either way
 #: (:meth:`DuckDBEngine.stage_edges`). At the default limit on a 24 GB machine (2.2 GiB): 118M rows.
 NUMPY_COLLAPSE_BYTES_PER_ROW = 20
@@ -172,30 +173,46 @@ class PairCollapser:
     """Repeated contacts collapsed in numpy, batch by batch, as the staging query's GROUP BY counts them.
 
     :meth:`add` takes a batch of mapped dense ids ``s``, ``t`` (or the codes :data:`MISSING_ID` and
-    :data:`UNKNOWN_ID`; the mapping gives both ends :data:`MISSING_ID` when either is missing). Each row's
-    ends are ordered (``u = min``, ``v = max``): a row whose smaller end is a code is missing or unknown,
-    ``u == v`` is a self-loop, and each pair ``u < v`` of known people becomes the 64-bit key
-    ``u * 2**b + v`` (``2**b`` at least the number of people, so that the key orders pairs as
-    ``(u, v)`` and splits back by a shift and a mask). :meth:`finish` sorts the keys once and keeps each
-    once.
+    :data:`UNKNOWN_ID`; the mapping gives both ends :data:`MISSING_ID` when either is missing) and, with
+    ``layers`` declared, each row's layer position (``-1``: empty or undeclared). Each row's ends are
+    ordered (``u = min``, ``v = max``): a row whose smaller end is a code is missing or unknown, ``u == v``
+    is a self-loop, a row of known people without a declared layer is counted as such, and each pair
+    ``u < v`` of known people becomes the 64-bit key ``(u * 2**b + v) * 2**c + layer`` (``2**b`` at least
+    the number of people, ``2**c`` above the number of layers; an undeclared layer takes the largest
+    code), so that one sort orders the rows by pair and, within a pair, by layer. :meth:`finish` keeps
+    each pair once, with its first declared layer (the GROUP BY's ``min``: the one-layer rule).
 
     Memory: 8 bytes a row for the keys (written into one array of ``rows_hint`` rows, reserved, not
     touched, and grown if the hint was short), then a byte a row for the repeat marks and 8 bytes a
-    distinct pair for the two int32 ends: at most 17 bytes a row, and the temporaries of one batch or
-    slice.
+    distinct pair for the two int32 ends (2 more with layers): at most 19 bytes a row, and the
+    temporaries of one batch or slice.
     """
 
     #: Up to this many repeated rows the kept pairs are split straight out of the sorted keys, stretch by
     #: stretch between repeats; with more, slice by slice after gathering each slice's kept keys.
     MAX_STRETCHES = 4096
 
-    def __init__(self, n_people: int, rows_hint: int = 0):
+    def __init__(self, n_people: int, rows_hint: int = 0, layers: int = 0):
         self.n = int(n_people)
         self.bits = max(1, (self.n - 1).bit_length())
+        self.layers = int(layers)
+        self.layer_bits = self.layer_bits_for(self.layers)
+        if 2 * self.bits + self.layer_bits > 63:
+            raise ValueError("too many people and layers for 64-bit pair keys")
         self.keys = np.empty(max(int(rows_hint), 0), dtype=np.int64)
-        self.filled = self.rows = self.missing = self.unknown = self.loops = 0
+        self.filled = self.rows = self.missing = self.unknown = self.loops = self.bad_layer = 0
 
-    def add(self, s: np.ndarray, t: np.ndarray) -> None:
+    @staticmethod
+    def layer_bits_for(layers: int) -> int:
+        """Bits of a layer's code: the declared positions and one more code for an undeclared layer."""
+        return int(layers).bit_length() if layers else 0
+
+    @classmethod
+    def fits(cls, n_people: int, layers: int = 0) -> bool:
+        """Whether the keys of ``n_people`` people (and ``layers`` layers) fit 63 bits."""
+        return 2 * max(1, (int(n_people) - 1).bit_length()) + cls.layer_bits_for(layers) <= 63
+
+    def add(self, s: np.ndarray, t: np.ndarray, layer: np.ndarray | None = None) -> None:
         lo = np.minimum(s, t)
         hi = np.maximum(s, t)
         self.rows += len(lo)
@@ -212,49 +229,72 @@ class PairCollapser:
         out = self.keys[self.filled:self.filled + k]
         np.left_shift(lo[pair], self.bits, out=out, dtype=np.int64, casting="unsafe")
         out |= hi[pair]
+        if self.layers:
+            undeclared = layer < 0
+            self.bad_layer += int(np.count_nonzero(known & undeclared))
+            code = np.where(undeclared, (1 << self.layer_bits) - 1, layer)[pair]
+            out <<= self.layer_bits
+            out |= code
         self.filled += k
 
-    def _split(self, keys, u, v) -> None:
-        np.right_shift(keys, self.bits, out=u, casting="unsafe")
-        np.bitwise_and(keys, (1 << self.bits) - 1, out=v, casting="unsafe")
+    def _split(self, keys, u, v, layer) -> None:
+        c = self.layer_bits
+        if layer is not None:
+            np.bitwise_and(keys, (1 << c) - 1, out=layer, casting="unsafe")
+        np.right_shift(keys, self.bits + c, out=u, casting="unsafe")
+        # v: the key's low bits after the layer's; the cast keeps the low 32 bits, then the mask keeps b of them
+        np.right_shift(keys, c, out=v, casting="unsafe")
+        np.bitwise_and(v, (1 << self.bits) - 1, out=v)
 
     def finish(self):
-        """``(EdgeCounts, u, v)``: the counts, and the distinct pairs (int32) in key order."""
+        """``(EdgeCounts, u, v, layer)``: the counts, the distinct pairs (int32) in key order and each pair's first
+        declared layer (int16; ``None`` without layers)."""
         keys = self.keys[:self.filled]
         self.keys = None
         keys.sort()
-        same = keys[1:] == keys[:-1]  # a row repeating the pair of the row before it
+        c = self.layer_bits
+        if c:  # rows of one pair differ in their layer bits only
+            same = (keys[1:] >> c) == (keys[:-1] >> c)
+        else:
+            same = keys[1:] == keys[:-1]  # a row repeating the pair of the row before it
         repeated = int(np.count_nonzero(same))
         kept = len(keys) - repeated
         u = np.empty(kept, dtype=np.int32)
         v = np.empty(kept, dtype=np.int32)
+        layer = np.empty(kept, dtype=np.int16) if self.layers else None
         done = 0
+
+        def put(part):
+            nonlocal done
+            end = done + len(part)
+            self._split(part, u[done:end], v[done:end], None if layer is None else layer[done:end])
+            done = end
+
         if repeated <= self.MAX_STRETCHES:  # the stretches between repeats, split where they lie (no copy)
             repeats = np.flatnonzero(same) + 1
             del same
             for a, e in zip([0] + (repeats + 1).tolist(), repeats.tolist() + [len(keys)]):
                 if e > a:
-                    self._split(keys[a:e], u[done:done + e - a], v[done:done + e - a])
-                    done += e - a
+                    put(keys[a:e])
         else:  # slice by slice: each slice's first rows of their pairs gathered, then split
             del same
             for i in range(0, len(keys), EDGE_BATCH_ROWS):
                 part = keys[i:i + EDGE_BATCH_ROWS]
                 first = np.empty(len(part), dtype=bool)
-                first[0] = i == 0 or part[0] != keys[i - 1]
-                np.not_equal(part[1:], part[:-1], out=first[1:])
-                part = part[first]
-                self._split(part, u[done:done + len(part)], v[done:done + len(part)])
-                done += len(part)
+                first[0] = i == 0 or (part[0] >> c) != (keys[i - 1] >> c)
+                np.not_equal(part[1:] >> c, part[:-1] >> c, out=first[1:])
+                put(part[first])
+        if layer is not None:  # a pair whose rows all lack a declared layer: 0, as the GROUP BY's coalesce
+            layer[layer == (1 << c) - 1] = 0
         counts = EdgeCounts(rows=self.rows, missing_id=self.missing, unknown_person=self.unknown, bad_weight=0,
-                            self_loops=self.loops, duplicates=repeated, edges=kept, bad_layer=0)
-        return counts, u, v
+                            self_loops=self.loops, duplicates=repeated, edges=kept, bad_layer=self.bad_layer)
+        return counts, u, v, layer
 
 
-def collapse_pairs(s: np.ndarray, t: np.ndarray, n_people: int):
-    """``(EdgeCounts, u, v)`` of one batch of mapped ids (:class:`PairCollapser`)."""
-    c = PairCollapser(n_people, len(s))
-    c.add(np.asarray(s), np.asarray(t))
+def collapse_pairs(s: np.ndarray, t: np.ndarray, n_people: int, layer=None, layers: int = 0):
+    """``(EdgeCounts, u, v, layer)`` of one batch of mapped ids (:class:`PairCollapser`)."""
+    c = PairCollapser(n_people, len(s), layers)
+    c.add(np.asarray(s), np.asarray(t), None if layer is None else np.asarray(layer))
     return c.finish()
 
 
@@ -462,10 +502,10 @@ class DuckDBEngine:
         """Map, canonicalise and collapse the edges in one scan (see :meth:`aggpub.engines.Engine.stage_edges`).
 
         Ids map to dense ids in SQL (arithmetic for integer ids numbered in order, else a join). Without a
-        weight or layer column, an input whose rows fit the memory limit (:meth:`_collapse_in_numpy`) has
-        its repeated contacts collapsed in numpy (:meth:`_stage_in_numpy`); otherwise, and always with a
-        weight or layer (their sums and first layers), a GROUP BY collapses them. The same contacts and
-        the same counts either way (``tests/test_pair_collapse.py``).
+        weight column, an input whose rows fit the memory limit (:meth:`_collapse_in_numpy`) has its
+        repeated contacts collapsed in numpy (:meth:`_stage_in_numpy`, with each pair's first declared
+        layer); otherwise, and always with a weight (its sums), a GROUP BY collapses them. The same
+        contacts, layers and counts either way (``tests/test_pair_collapse.py``).
         """
         e_sql = self._relation_sql(source)
         self.con.register("__ids", ids)
@@ -508,7 +548,9 @@ class DuckDBEngine:
                   else "CAST(0 AS SMALLINT) AS layer, CAST(0 AS BIGINT) AS bad_l")
         if not columns.weight:
             mapped = mapped.replace(", e.w, e.l", ", e.l")
-        bound = None if columns.weight or columns.layer else self._collapse_in_numpy(source, ids.num_rows)
+        layers = len(columns.layer_values) if columns.layer else 0
+        fits = not columns.weight and PairCollapser.fits(ids.num_rows, layers)
+        bound = self._collapse_in_numpy(source, ids.num_rows) if fits else None
         if bound is not None:
             return self._stage_in_numpy(source, columns, a_sql, b_sql, e_sql, mapped, ids.num_rows, bound)
         # issue 13: the layer's position among the declared layers (NULL when undeclared); the GROUP BY that
@@ -565,22 +607,27 @@ class DuckDBEngine:
         return int(bound)
 
     def _stage_in_numpy(self, source, columns, a_sql, b_sql, e_sql, mapped, n_people, bound) -> EdgeCounts:
-        """:meth:`stage_edges` for an input without weight or layer that fits in memory: the mapped ids stream
-        out in Arrow batches and repeated contacts are collapsed by one sort in numpy (:class:`PairCollapser`)
-        instead of DuckDB's GROUP BY over two columns (``benchmarks/bench_left_out.py``, section 3)."""
-        q = (f"WITH e AS (SELECT {a_sql} AS a, {b_sql} AS b, NULL AS l FROM {e_sql}), m AS ({mapped}) "
-             "SELECT s, t FROM m")
-        collapser = PairCollapser(n_people, bound)
+        """:meth:`stage_edges` for an input without weight that fits in memory: the mapped ids (and layer
+        positions, -1 when undeclared) stream out in Arrow batches and repeated contacts are collapsed by one
+        sort in numpy (:class:`PairCollapser`) instead of DuckDB's GROUP BY over two columns
+        (``benchmarks/bench_left_out.py``, section 3)."""
+        layers = len(columns.layer_values) if columns.layer else 0
+        l_sql = self._layer_sql(columns) if layers else "NULL"
+        q = (f"WITH e AS (SELECT {a_sql} AS a, {b_sql} AS b, {l_sql} AS l FROM {e_sql}), m AS ({mapped}) "
+             f"SELECT s, t{', coalesce(l, -1) AS l' if layers else ''} FROM m")
+        collapser = PairCollapser(n_people, bound, layers)
         try:
             with self._long("reading, mapping and collapsing edges"):
                 for batch in self.con.sql(q).to_arrow_reader(EDGE_BATCH_ROWS):
-                    collapser.add(batch.column(0).to_numpy(), batch.column(1).to_numpy())
+                    collapser.add(batch.column(0).to_numpy(), batch.column(1).to_numpy(),
+                                  batch.column(2).to_numpy() if layers else None)
         except (duckdb.Error, pa.ArrowException) as exc:
             self.discard_staged_edges()
             raise _unreadable(source, exc) from None
-        counts, u, v = collapser.finish()
+        counts, u, v, layer = collapser.finish()
         self._staged = (source, columns)
-        self._pairs = pa.table({"u": pa.array(u), "v": pa.array(v)})
+        self._pairs = pa.table({"u": pa.array(u), "v": pa.array(v),
+                                **({"layer": pa.array(layer)} if layer is not None else {})})
         return counts
 
     def first_staged_row(self, condition: RowCondition):
