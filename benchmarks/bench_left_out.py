@@ -188,7 +188,7 @@ def collapse(repeat, lines, data: Path, contacts: str):
 
     def in_sql(one_key):
         con.execute(collapse_sql(edges, n, one_key))
-        return con.execute("SELECT count(*) FROM m").fetchone()[0]
+        return con.execute("SELECT count(*) FROM m").fetchall()[0][0]
 
     def in_numpy():  # the engine's own collapse (PairCollapser) of the same mapped ids, streamed in batches
         from aggpub.engines._duckdb import EDGE_BATCH_ROWS, PairCollapser
