@@ -194,13 +194,18 @@ class PairCollapser:
 
     def __init__(self, n_people: int, rows_hint: int = 0, layers: int = 0):
         self.n = int(n_people)
-        self.bits = max(1, (self.n - 1).bit_length())
+        self.bits = self.people_bits(self.n)
         self.layers = int(layers)
         self.layer_bits = self.layer_bits_for(self.layers)
         if 2 * self.bits + self.layer_bits > 63:
             raise ValueError("too many people and layers for 64-bit pair keys")
         self.keys = np.empty(max(int(rows_hint), 0), dtype=np.int64)
         self.filled = self.rows = self.missing = self.unknown = self.loops = self.bad_layer = 0
+
+    @staticmethod
+    def people_bits(n_people: int) -> int:
+        """Bits of a dense id (at least 1)."""
+        return max(1, (int(n_people) - 1).bit_length())
 
     @staticmethod
     def layer_bits_for(layers: int) -> int:
@@ -210,7 +215,7 @@ class PairCollapser:
     @classmethod
     def fits(cls, n_people: int, layers: int = 0) -> bool:
         """Whether the keys of ``n_people`` people (and ``layers`` layers) fit 63 bits."""
-        return 2 * max(1, (int(n_people) - 1).bit_length()) + cls.layer_bits_for(layers) <= 63
+        return 2 * cls.people_bits(n_people) + cls.layer_bits_for(layers) <= 63
 
     def add(self, s: np.ndarray, t: np.ndarray, layer: np.ndarray | None = None) -> None:
         lo = np.minimum(s, t)
