@@ -615,6 +615,38 @@ def test_audit_reports_the_views_and_decides_nothing(tmp_path):
     assert "decides" in audit and "decide nothing" in audit["decides"]
 
 
+def test_views_figure_drawn_on_the_views_thread_is_the_reports_own(monkeypatch):
+    """With ``draw_figures`` the audit's views thread draws the heat maps as soon as its section is done; the
+    report then takes that figure instead of drawing it again, and it is the very figure the report draws
+    from the same audit without it. Zachary's karate club (Zachary 1977, as networkx ships it), with
+    invented bands and areas."""
+    import threading
+
+    from aggpub.audit import audit_release
+    from aggpub.audit import report as report_mod
+
+    people, edges = _karate_tables()
+    pol = {"privacy": {"epsilon": 2.0}, "grouping": {"attributes": ["band", "area"], "min_size": 8},
+           "layers": {"column": "setting", "values": list(LAYERS[:3])}}
+    r = release_tables(edges, people, pol, seed=2)
+    drawn_by = []
+    original = report_mod.views_figure
+
+    def recording(views):
+        drawn_by.append(threading.current_thread().name)
+        return original(views)
+
+    monkeypatch.setattr(report_mod, "views_figure", recording)
+    ahead = audit_release(r, monte_carlo=0, structure_samples=0, seed=1, draw_figures=True)
+    assert len(drawn_by) == 1 and drawn_by[0].startswith("aggpub-audit-views")
+    figure = ahead["_plot"]["figures"]["views"]
+    assert report_mod._plots(ahead)["views"] is figure and len(drawn_by) == 1  # taken, not drawn again
+    plain = audit_release(r, monte_carlo=0, structure_samples=0, seed=1)
+    assert "figures" not in plain["_plot"]
+    assert report_mod._plots(plain)["views"] == figure and len(drawn_by) == 2  # drawn by the report itself
+    assert figure.startswith("<svg") and "true contacts by band" in figure
+
+
 def test_audit_view_plot_codes_are_the_cells_the_figures_compare(monkeypatch):
     """The report's heat-map codes of a view are its cells in the order the audit's error figures compare
     (read from the declared values); reading the value names of the researcher's matrix gives the same codes.

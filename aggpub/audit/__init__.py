@@ -7,7 +7,7 @@ never into the public bundle.
 API
 ---
 ``audit_release(release, *, monte_carlo=None, source=None, structure_samples=3, n_cut_queries=200,
-sanity_bound=None, seed=None, progress=None) -> dict``
+sanity_bound=None, seed=None, progress=None, parallel_structure=None, draw_figures=False) -> dict``
     All figures: ``degree_distribution`` (``ks``, ``wasserstein1``, ``l1``,
     ``basis``, ``grouping_loss``, ``noise_added``, ``monte_carlo``), ``queries``
     (per workload: ``mean_absolute_error``, ``rmse``, ``median_relative_error``,

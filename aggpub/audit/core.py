@@ -46,7 +46,7 @@ def _expected_abs(mech, var_q, single_cell: bool):
 
 def audit_release(release, *, monte_carlo: int | None = None, source=None, structure_samples: int = 3,
                   n_cut_queries: int = 200, sanity_bound: float | None = None, seed: int | None = None,
-                  progress=None, parallel_structure: bool | None = None) -> dict:
+                  progress=None, parallel_structure: bool | None = None, draw_figures: bool = False) -> dict:
     """Audit a built release against the true network it came from.
 
     Parameters
@@ -76,6 +76,11 @@ def audit_release(release, *, monte_carlo: int | None = None, source=None, struc
         while the other sections run (default: on networks of
         :data:`aggpub.audit.sampled.PARALLEL_MIN_CONTACTS` contacts or more, with two cores or
         more); the figures are the same either way.
+    draw_figures : bool
+        Also draw the report's contact-view heat maps (:func:`aggpub.audit.report.views_figure`) on the
+        thread that computes the views section, as soon as it is done, while the other sections run;
+        kept in ``_plot["figures"]``, where :func:`aggpub.audit.report.write_report` takes them (the same
+        figure it would draw itself). For callers that write the report.
 
     Returns
     -------
@@ -99,14 +104,14 @@ def audit_release(release, *, monte_carlo: int | None = None, source=None, struc
     structure = _start_structure(release, truth, structure_samples, rng, parallel_structure)
     try:
         return _audit_sections(release, truth, structure, monte_carlo, source, sanity_bound,
-                               structure_samples, progress)
+                               structure_samples, progress, draw_figures)
     finally:
         if "beside" in structure:
             structure["beside"].close()
 
 
 def _audit_sections(release, truth, structure, monte_carlo, source, sanity_bound, structure_samples,
-                    progress) -> dict:
+                    progress, draw_figures: bool = False) -> dict:
     """The audit's sections in turn (see :func:`audit_release`)."""
     if monte_carlo is None:
         monte_carlo = default_monte_carlo(truth.n_groups * (truth.n_groups + 1) // 2)
@@ -134,7 +139,7 @@ def _audit_sections(release, truth, structure, monte_carlo, source, sanity_bound
 
     # a worker thread beside this one: it builds the query workloads while this thread measures the degree
     # distribution (which does not read them), then runs the query section's Monte Carlo
-    with _ViewsBeside(release, truth) as views, \
+    with _ViewsBeside(release, truth, draw_figures) as views, \
             ThreadPoolExecutor(max_workers=1, thread_name_prefix="aggpub-audit-mc") as worker:
         workloads = worker.submit(truth.finish_workloads)
         progress("audit: degree distribution (true against released)")
@@ -162,18 +167,29 @@ def _audit_sections(release, truth, structure, monte_carlo, source, sanity_bound
 class _ViewsBeside:
     """The views section (:func:`_views_section`) computed on a second thread while the degree and query
     sections run: it reads only the release and the truth, and writes its own figures, so the result is
-    the same as computed after them (numpy and Arrow release the GIL: it runs on the second core)."""
+    the same as computed after them (numpy and Arrow release the GIL: it runs on the second core). With
+    ``draw``, the same thread then draws the section's heat maps for the report (the thread is done well
+    before the query section on large tables, so the figure no longer waits for the end of the audit)."""
 
-    def __init__(self, release, truth):
+    def __init__(self, release, truth, draw: bool = False):
         self.release, self.truth, self.job, self.pool, self.plot = release, truth, None, None, {}
+        self.draw = draw
 
     def __enter__(self):
         if "contact_views" in self.release.tables and "contact_views" in self.release.truth:
             from concurrent.futures import ThreadPoolExecutor
 
             self.pool = ThreadPoolExecutor(max_workers=1, thread_name_prefix="aggpub-audit-views")
-            self.job = self.pool.submit(_views_section, self.release, self.truth, self.plot)
+            self.job = self.pool.submit(self._run)
         return self
+
+    def _run(self) -> dict:
+        out = _views_section(self.release, self.truth, self.plot)
+        if self.draw and self.plot.get("views"):
+            from .report import views_figure
+
+            self.plot["figures"] = {"views": views_figure(self.plot["views"])}
+        return out
 
     def result(self, plot) -> dict:
         """The section's figures; its plot data added to ``plot`` (as the section itself would add them)."""

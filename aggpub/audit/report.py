@@ -8,6 +8,7 @@ synced, then renamed), and every page says CONFIDENTIAL.
 from __future__ import annotations
 
 __all__ = ["write_report", "render_html", "audit_to_json", "check_report_target", "default_report_path",
+           "views_figure",
            "REPORT_HTML", "AUDIT_JSON"]
 
 import base64
@@ -121,7 +122,9 @@ def _plots(audit: dict) -> dict:
     if comps:
         out["budget"] = _budget_figure(comps, audit["budget"].get("epsilon_total"))
     if plot.get("views"):
-        out["views"] = _views_plot(plot["views"])
+        # drawn on the audit's views thread when the audit was asked to (audit_release(draw_figures=True))
+        drawn = plot.get("figures", {}).get("views")
+        out["views"] = drawn if drawn is not None else views_figure(plot["views"])
     if "sizes" in plot:
         out["sizes"] = svg.histogram(plot["sizes"], bins=min(40, max(5, len(plot["sizes"]) // 4)),
                                      marker=audit["grouping"]["min_size_policy"], marker_label="min_size",
@@ -215,7 +218,7 @@ def _block_matrix(values, ia, ib, data, side: int):
     return (out if several else out[0]), block
 
 
-def _views_plot(views: dict) -> str:
+def views_figure(views: dict) -> str:
     """True against released contact matrices of (at most) the first two views, all layers together.
 
     A view with more than :data:`HEATMAP_MAX_SIDE` values is drawn in blocks of consecutive values

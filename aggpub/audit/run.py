@@ -59,7 +59,7 @@ def audit_and_report(release, *, gate: dict, preflight: dict, out: Path, report_
     progress = progress or silent
     progress("auditing the release against the true network (confidential; decides nothing)")
     with small_pages():
-        findings = audit.audit_release(release, monte_carlo=monte_carlo, progress=progress)
+        findings = audit.audit_release(release, monte_carlo=monte_carlo, progress=progress, draw_figures=True)
         findings.update(gate=gate, preflight=preflight,
                         outcome=("refused by the gate: no bundle written" if not gate["passed"]
                                  else f"passed the gate; bundle to be written to {out}"))
