@@ -288,6 +288,9 @@ def _non_negative(value, option):
 
 
 def cmd_release(args):
+    from .audit.sampled import start_spare_for
+
+    start_spare_for(args.edges)  # the audit's helper starts up beside this process's imports and reading
     from .bundle.write import check_outside_inputs
     from .pipeline import run_release
     from .progress import Progress

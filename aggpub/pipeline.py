@@ -20,7 +20,7 @@ import numpy as np
 import pyarrow as pa
 
 from .audit.run import audit_and_report, report_folder
-from .audit.sampled import discard_spare, start_spare
+from .audit.sampled import discard_spare, start_spare, start_spare_for
 from .budget import ReleaseBudget, check_contact_cap
 from .budget.ledger import ChargeOnFirstDraw, ReleaseLedger
 from .bundle.guide import render_guide
@@ -209,6 +209,7 @@ def run_release(policy, edges, people, out, *, seed=None, overwrite=False, sourc
     progress("reading edges and people")
     eng = make_engine(engine, memory_limit=memory_limit, spill_parent=out.parent, progress=progress)
     try:
+        start_spare_for(edges)  # from an estimate of the contacts; kept or ended once they are counted (start_spare)
         policy = applied_policy(policy, source=source, target=target, node=node, weight=weight,
                                 drop_unknown=drop_unknown)  # the manifest records what was applied
         ahead = import_ahead()  # what the rest of the release needs, imported while the engine reads

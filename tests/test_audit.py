@@ -860,6 +860,63 @@ def test_a_release_ends_its_spare_helper(tmp_path, monkeypatch):
     assert len(started) == 2 and sampled._SPARE == [] and started[1].poll() is not None
 
 
+def test_contact_rows_estimate_reads_little_and_is_close(tmp_path):
+    """The estimate that starts the helper before reading: exact on a small text file (its lines less the
+    header, with or without a final line end), within a few rows on a large one (the lines of its first MiB
+    scaled to its size), a Parquet file's own row count, an Arrow table's rows; unknown for compressed text,
+    a missing file or no path."""
+    import gzip
+
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    from aggpub.audit.sampled import ESTIMATE_BYTES, contact_rows_estimate
+
+    small = tmp_path / "small.csv"
+    small.write_text("source,target\n" + "".join(f"p{i},p{i + 1}\n" for i in range(1000)))
+    assert contact_rows_estimate(small) == 1000
+    small.write_text("source,target\n" + "\n".join(f"p{i},p{i + 1}" for i in range(1000)))  # no final line end
+    assert contact_rows_estimate(small) == 1000
+    rng = np.random.default_rng(3)
+    ids = rng.integers(0, 10 ** rng.integers(1, 7, 300_000), 300_000)  # rows of uneven lengths
+    big = tmp_path / "big.csv"
+    big.write_text("source,target,setting\n" + "".join(f"{a},{a + 7},home\n" for a in ids))
+    assert big.stat().st_size > 3 * ESTIMATE_BYTES
+    assert abs(contact_rows_estimate(big) - 300_000) < 0.01 * 300_000
+    table = pa.table({"source": pa.array(ids), "target": pa.array(ids + 7)})
+    pq.write_table(table, tmp_path / "e.data")  # recognised by its first bytes, not its name
+    assert contact_rows_estimate(tmp_path / "e.data") == 300_000
+    assert contact_rows_estimate(table) == 300_000
+    packed = tmp_path / "e.csv.gz"
+    packed.write_bytes(gzip.compress(small.read_bytes()))
+    assert contact_rows_estimate(packed) is None
+    assert contact_rows_estimate(tmp_path / "missing.csv") is None and contact_rows_estimate(None) is None
+
+
+def test_a_spare_started_from_an_estimate_is_kept_or_ended_by_the_count(tmp_path, monkeypatch):
+    """``start_spare_for`` starts the helper from the file's estimate alone; once the contacts are counted,
+    ``start_spare`` keeps it when they are in the helper's range and ends it when they are not (a wrong
+    estimate costs time only); an estimate outside the range starts nothing."""
+    from aggpub.audit import sampled
+
+    monkeypatch.setattr(sampled.os, "cpu_count", lambda: 2)
+    edges = tmp_path / "e.csv"
+    edges.write_text("source,target\n" + "".join(f"{i},{i + 1}\n" for i in range(sampled.PARALLEL_MIN_CONTACTS)))
+    try:
+        sampled.start_spare_for(edges)
+        assert len(sampled._SPARE) == 1
+        spare = sampled._SPARE[0]
+        sampled.start_spare(sampled.PARALLEL_MIN_CONTACTS + 5)  # counted: in range, the same helper kept
+        assert sampled._SPARE == [spare] and spare.poll() is None
+        sampled.start_spare(sampled.PARALLEL_MIN_CONTACTS - 1)  # counted: too few, ended
+        assert sampled._SPARE == [] and spare.poll() is not None
+        edges.write_text("source,target\n1,2\n")
+        sampled.start_spare_for(edges)
+        assert sampled._SPARE == []
+    finally:
+        sampled.discard_spare()
+
+
 def test_structure_figures_do_not_depend_on_the_engines_row_order(lesmis_release, monkeypatch):
     """A seeded audit gives the same structure figures whatever order the engine returns the contacts in (a
     parallel DuckDB scan's order varies between runs; the percolations draw per contact). Les Miserables

@@ -23,12 +23,13 @@ against it; they go into the board's report only.
 from __future__ import annotations
 
 __all__ = ["MAX_STRUCTURE_EDGES", "PARALLEL_MIN_CONTACTS", "SideJob", "TrueJob", "StructureWork", "network_figures_of",
-           "run_task", "start_spare", "discard_spare", "start_work"]
+           "run_task", "start_spare", "start_spare_for", "contact_rows_estimate", "discard_spare", "start_work"]
 
 import os
 from dataclasses import dataclass
 
-import numpy as np
+# numpy is imported where it is used: ``aggpub release`` imports this module to start the helper
+# (start_spare_for) before it imports anything heavy
 
 #: Largest network (contacts) whose structure the audit computes in memory (above, the sampled-structure
 #: comparison is skipped: too slow for a release).
@@ -92,6 +93,8 @@ class TrueJob:
 
     def run(self) -> dict:
         """``{"stats": structure statistics, "figure": network figures}`` of the true network."""
+        import numpy as np
+
         from .fidelity import network_figures
         from .network_stats import structure_statistics
 
@@ -108,6 +111,8 @@ def network_figures_of(job: SideJob, index: int, rho: float) -> tuple[dict, dict
     (:meth:`numpy.random.SeedSequence.spawn`): every network has its own stream, so the
     figures do not depend on which thread draws it or in which order.
     """
+    import numpy as np
+
     from ..synthesis import draw_network
     from .fidelity import network_figures
     from .network_stats import structure_statistics
@@ -330,21 +335,80 @@ def _worth_a_helper(contacts: int) -> bool:
 
 
 def start_spare(contacts: int) -> None:
-    """Start the helper interpreter now, so that its start-up and imports (about 0.3 s) overlap this process's work.
+    """Start the helper interpreter now, so that its start-up and imports (about 0.5 CPU-s) overlap this process's
+    work; end a spare when ``contacts`` say none is needed.
 
     Called by :func:`aggpub.pipeline.run_release` once the network is read, when the audit's
     structure section will run with a helper (``contacts`` in ``[PARALLEL_MIN_CONTACTS,
-    MAX_STRUCTURE_EDGES]``, two cores or more). The helper imports, then waits for its tasks;
-    :func:`start_work` hands it its tasks. :func:`discard_spare` ends a spare that was not used.
-    Decided from the public machine and the number of contacts, which is not released and
-    decides nothing released (docs/privacy.md, section 10).
+    MAX_STRUCTURE_EDGES]``, two cores or more); a spare started earlier from an estimate
+    (:func:`start_spare_for`) is kept then, or ended when the true count is outside that range.
+    The helper imports, then waits for its tasks; :func:`start_work` hands it its tasks.
+    :func:`discard_spare` ends a spare that was not used. Decided from the public machine and
+    the number of contacts, which is not released and decides nothing released
+    (docs/privacy.md, section 10).
     """
-    if _SPARE or not _worth_a_helper(contacts) or contacts > MAX_STRUCTURE_EDGES:
+    if not _worth_a_helper(contacts) or contacts > MAX_STRUCTURE_EDGES:
+        discard_spare()
+        return
+    if _SPARE:
         return
     try:
         _SPARE.append(_spawn())
     except Exception:  # noqa: BLE001 - no process could be started: start_work computes in this process
-        pass
+        return
+    import atexit
+
+    atexit.register(discard_spare)  # a command that stops before run_release ends it too
+
+
+def start_spare_for(edges) -> None:
+    """Start the helper before the release has imported or read anything, from an estimate of the contact rows
+    (:func:`contact_rows_estimate`): its start-up then runs beside this process's own imports and reading,
+    when the second core is mostly idle, instead of beside the release's work.
+
+    ``aggpub release`` calls it first thing (and :func:`aggpub.pipeline.run_release` on entry); once the
+    network is read, :func:`start_spare` keeps the spare or ends it from the true count. A wrong
+    estimate costs only time: a spare ended unused, or a helper started after reading as before.
+    """
+    rows = contact_rows_estimate(edges)
+    if rows is not None and _worth_a_helper(rows) and rows <= MAX_STRUCTURE_EDGES:
+        start_spare(rows)
+
+
+#: Bytes of a text file read to estimate its rows.
+ESTIMATE_BYTES = 1 << 20
+
+
+def contact_rows_estimate(edges) -> int | None:
+    """About how many rows the contact input holds, read cheaply: an Arrow table's rows, a Parquet file's row
+    count (its footer), a text file's lines (counted in its first MiB and scaled to its size, less a
+    header); ``None`` when it cannot tell (no such file, compressed text, anything else).
+
+    Only for :func:`start_spare_for`: it decides when a helper starts, nothing else.
+    """
+    rows = getattr(edges, "num_rows", None)
+    if isinstance(rows, int):
+        return rows
+    try:
+        path = os.fspath(edges)
+        size = os.path.getsize(path)
+        with open(path, "rb") as fh:
+            head = fh.read(ESTIMATE_BYTES)
+    except (TypeError, OSError):
+        return None
+    if head[:4] == b"PAR1":
+        try:
+            import pyarrow.parquet as pq
+
+            return int(pq.ParquetFile(path).metadata.num_rows)
+        except Exception:  # noqa: BLE001 - unreadable here: the release reports it when it reads the file
+            return None
+    if not head or head[:2] == b"\x1f\x8b" or b"\0" in head:  # empty, gzip or another binary format
+        return None
+    lines = head.count(b"\n") + (not head.endswith(b"\n") and len(head) == size)
+    if len(head) < size:
+        lines = lines * size // len(head)
+    return max(lines - 1, 0)  # the header line
 
 
 def discard_spare() -> None:
