@@ -328,6 +328,8 @@ def _spawn():
 
 #: A helper interpreter started ahead of its tasks (:func:`start_spare`), taken by the next :func:`start_work`.
 _SPARE: list = []
+#: Whether :func:`discard_spare` is registered to run at exit.
+_AT_EXIT: list = []
 
 
 def _worth_a_helper(contacts: int) -> bool:
@@ -356,9 +358,11 @@ def start_spare(contacts: int) -> None:
         _SPARE.append(_spawn())
     except Exception:  # noqa: BLE001 - no process could be started: start_work computes in this process
         return
-    import atexit
+    if not _AT_EXIT:  # once per process: a command that stops before run_release ends its spare too
+        import atexit
 
-    atexit.register(discard_spare)  # a command that stops before run_release ends it too
+        atexit.register(discard_spare)
+        _AT_EXIT.append(True)
 
 
 def start_spare_for(edges) -> None:
