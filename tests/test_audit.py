@@ -906,6 +906,10 @@ def test_a_spare_started_from_an_estimate_is_kept_or_ended_by_the_count(tmp_path
         sampled.start_spare_for(edges)
         assert len(sampled._SPARE) == 1
         spare = sampled._SPARE[0]
+        with monkeypatch.context() as mp:  # a second call (run_release after the command) reads nothing again
+            mp.setattr(sampled, "contact_rows_estimate", lambda e: pytest.fail("the input was read again"))
+            sampled.start_spare_for(edges)
+        assert sampled._SPARE == [spare]
         sampled.start_spare(sampled.PARALLEL_MIN_CONTACTS + 5)  # counted: in range, the same helper kept
         assert sampled._SPARE == [spare] and spare.poll() is None
         sampled.start_spare(sampled.PARALLEL_MIN_CONTACTS - 1)  # counted: too few, ended

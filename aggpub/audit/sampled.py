@@ -374,6 +374,8 @@ def start_spare_for(edges) -> None:
     network is read, :func:`start_spare` keeps the spare or ends it from the true count. A wrong
     estimate costs only time: a spare ended unused, or a helper started after reading as before.
     """
+    if _SPARE:  # already started (``aggpub release`` calls this before run_release does): nothing read again
+        return
     rows = contact_rows_estimate(edges)
     if rows is not None and _worth_a_helper(rows) and rows <= MAX_STRUCTURE_EDGES:
         start_spare(rows)
@@ -397,10 +399,12 @@ def contact_rows_estimate(edges) -> int | None:
         path = os.fspath(edges)
         size = os.path.getsize(path)
         with open(path, "rb") as fh:
-            head = fh.read(ESTIMATE_BYTES)
+            head = fh.read(4)
+            if head != b"PAR1":  # text: its first MiB (a Parquet file needs only its footer)
+                head += fh.read(ESTIMATE_BYTES - 4)
     except (TypeError, OSError):
         return None
-    if head[:4] == b"PAR1":
+    if head == b"PAR1":
         try:
             import pyarrow.parquet as pq
 
