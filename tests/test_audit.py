@@ -103,6 +103,7 @@ def test_error_summary_equals_numpy_on_both_paths():
         abs_err = np.abs(est - true)
         rel = abs_err / np.maximum(true, s)
         want = {"mean_absolute_error": abs_err.mean(), "rmse": np.sqrt(np.mean(abs_err ** 2)),
+                "mean_signed_error": np.mean(est - true),
                 "max_absolute_error": abs_err.max(), "mean_relative_error": rel.mean(),
                 "median_absolute_error": np.percentile(abs_err, 50), "p90_absolute_error": np.percentile(abs_err, 90),
                 "median_relative_error": np.percentile(rel, 50), "p90_relative_error": np.percentile(rel, 90),

@@ -139,6 +139,17 @@ def test_cell_index_is_row_major_upper_triangle(n):
     assert np.array_equal(cell_index(a, b, n), np.arange(len(a)))
 
 
+@pytest.mark.parametrize("n", [0, 1, 2, 3, 7, 50, 2001])
+def test_all_cells_are_numpys_upper_triangle_indices(n):
+    """``all_cells`` (built from row lengths) gives numpy.triu_indices's arrays, in int64."""
+    from aggpub.cells import all_cells
+
+    a, b = all_cells(n)
+    ra, rb = np.triu_indices(n)
+    assert a.dtype == b.dtype == np.int64
+    assert np.array_equal(a, ra) and np.array_equal(b, rb)
+
+
 def test_most_supernodes_the_dense_table_takes_and_batches_of_several_sizes(monkeypatch, counting_path):
     """Near the dense table's largest supernode count (its cell positions computed in 32-bit integers, in
     buffers reused across batches of unequal length), every count equals a plain count of the label pairs

@@ -141,3 +141,17 @@ def test_block_matrices_of_several_tables_are_each_tables_own():
     for table, m in zip(tables, both):
         assert np.array_equal(m, _block_matrix([str(i) for i in range(k)], ib[order], ia[order], table[order],
                                                side=5)[0])
+
+
+def test_error_figure_of_workloads_sharing_their_errors_is_the_figure_of_copies():
+    """Workloads answered by the table's own cells share one array of relative errors; the figure computes
+    its curve once and draws the same SVG as from separate copies of the array (and another curve for a
+    workload of its own)."""
+    from aggpub.audit.report import ECDF_POINTS, _error_figure
+
+    rng = np.random.default_rng(5)
+    shared = np.abs(rng.normal(size=3 * ECDF_POINTS))
+    own = np.abs(rng.normal(size=50))
+    drawn = _error_figure({"cells": shared, "contact_matrix:x": shared, "cuts": own})
+    assert drawn == _error_figure({"cells": shared.copy(), "contact_matrix:x": shared.copy(), "cuts": own})
+    assert drawn != _error_figure({"cells": shared, "contact_matrix:x": own, "cuts": own})

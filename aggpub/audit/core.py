@@ -420,7 +420,7 @@ def _released_figures(truth, st, mech, rel, unclamped, consistent, mc, plot) -> 
     whole_unclamped = unclamped is not None and np.issubdtype(unclamped.dtype, np.integer)
     rel = np.asarray(rel, dtype=np.float64)  # as every workload reads it (one array: see _Once)
     unclamped = None if unclamped is None else unclamped.astype(np.float64)
-    consistent = None if consistent is None else consistent.astype(np.float64)
+    consistent = None if consistent is None else np.asarray(consistent, dtype=np.float64)  # float already: no copy
     summaries = _Once(error_summary)
     relative = _Once(lambda t, e, s: np.abs(e - t) / np.maximum(t, s))
     for w in truth.workloads:

@@ -121,9 +121,8 @@ class CutWorkload(Workload):
     """Cut queries answered through the dense supernode x supernode matrix of each table.
 
     For sets ``S`` and ``T`` (disjoint) the cut is ``1_S' M 1_T`` with ``M`` the
-    symmetric matrix of cell counts; all queries of a table cost one symmetric
-    matrix product (BLAS ``dsymm``, which reads only the triangle the cells
-    fill), with nothing built in advance. Used up to
+    symmetric matrix of cell counts; all queries of a table cost one matrix
+    product (see :meth:`answer`), with nothing built in advance. Used up to
     :data:`DENSE_CUT_MAX_GROUPS` supernodes (the matrix takes ``8 n^2`` bytes).
     """
 
@@ -139,6 +138,12 @@ class CutWorkload(Workload):
         ``2**24`` is multiplied in single precision: every partial sum is then a whole number below
         ``2**24``, exact in float32, so the answers are the very numbers of double precision, at about
         twice the speed.
+
+        Single precision uses BLAS's symmetric product (``ssymm``, which reads only the triangle the cells
+        fill; about twice as fast here as numpy's general product). Double precision uses numpy's product
+        of the matrix with both triangles filled: as fast as ``dsymm`` and, unlike scipy's BLAS wrappers,
+        it lets other threads run Python meanwhile (the audit's threads beside it waited for the lock while
+        a product took 30 ms or more).
         """
         from scipy.linalg import blas
 
@@ -158,14 +163,18 @@ class CutWorkload(Workload):
                 m = square[dtype] = (np.empty if complete else np.zeros)(n * n, dtype=dtype)
             elif not complete:
                 m.fill(0.0)
-            # the upper triangle only (row-major cells: one pass in order); BLAS's symmetric product reads
-            # that triangle alone. ``m`` seen as Fortran-ordered is the transpose, whose lower triangle it is;
-            # ``first.T`` is Fortran-ordered as it stands: no copy of either. The result is ``(first @ M).T``.
-            m[upper] = row
-            first, second = layout[3:] if single else layout[:2]
-            symm = blas.ssymm if single else blas.dsymm
-            product = symm(1.0, m.reshape(n, n).T, first.T, side=0, lower=1)
-            out[i] = np.einsum("qi,qi->q", product.T, second)
+            m[upper] = row  # the upper triangle (row-major cells: one pass in order)
+            if single:
+                # BLAS's symmetric product reads that triangle alone. ``m`` seen as Fortran-ordered is the
+                # transpose, whose lower triangle it is; ``first.T`` is Fortran-ordered as it stands: no copy
+                # of either. The result is ``(first @ M).T``.
+                first, second = layout[3:5]
+                product = blas.ssymm(1.0, m.reshape(n, n).T, first.T, side=0, lower=1)
+                out[i] = np.einsum("qi,qi->q", product.T, second)
+            else:
+                m[layout[5]] = row  # the lower triangle too: numpy's product reads the whole matrix
+                first, second = layout[:2]
+                out[i] = np.einsum("qi,qi->q", first @ m.reshape(n, n), second)
         return out[0] if cells.ndim == 1 else out
 
     def _complete(self) -> bool:
@@ -173,13 +182,14 @@ class CutWorkload(Workload):
         return len(self.a) == n * (n + 1) // 2
 
     def _layout(self):
-        """Indicators of the two sets and the flat position of every cell in the square matrix's upper
-        triangle (made once)."""
+        """Indicators of the two sets (double, then single precision) and the flat position of every cell in
+        the square matrix's upper and lower triangles (made once)."""
         cached = getattr(self, "_cached_layout", None)
         if cached is None:
             n = self.sides.shape[1]
             first, second = (self.sides == 0).astype(np.float64), (self.sides == 1).astype(np.float64)
-            cached = (first, second, self.a * n + self.b, first.astype(np.float32), second.astype(np.float32))
+            cached = (first, second, self.a * n + self.b, first.astype(np.float32), second.astype(np.float32),
+                      self.b * n + self.a)
             self._cached_layout = cached
         return cached
 
