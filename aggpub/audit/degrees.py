@@ -78,12 +78,21 @@ def block_model_terms(a, b, sizes) -> dict:
     a = np.asarray(a, dtype=np.int64)
     b = np.asarray(b, dtype=np.int64)
     sizes = np.asarray(sizes, dtype=np.int64)
-    diag = a == b
-    # trials of a member of a towards b (m_ab) and of a member of b towards a (m_ba)
-    m_ab = np.where(diag, sizes[a] - 1.0, sizes[b].astype(np.float64))
-    m_ba = np.where(diag, 0.0, sizes[a].astype(np.float64))
     return {"a": a, "b": b, "sizes": sizes, "cap": possible_pairs(sizes, a, b).astype(np.float64),
-            "m_ab": m_ab, "m_ba": m_ba, "rows": CellRows(a, b, len(sizes))}
+            "rows": CellRows(a, b, len(sizes))}
+
+
+def _trials(terms: dict) -> np.ndarray:
+    """Bernoulli trials of every cell for a member of each end: ``m_ab`` (a member of ``a`` towards ``b``;
+    ``s_a - 1`` inside ``a``) for every cell, then ``m_ba`` (``0`` inside ``a``). Only the exact (binomial)
+    law reads them: made when first asked for and kept in ``terms``."""
+    if "trials" not in terms:
+        a, b, sizes = terms["a"], terms["b"], terms["sizes"]
+        diag = a == b
+        m_ab = np.where(diag, sizes[a] - 1.0, sizes[b].astype(np.float64))
+        m_ba = np.where(diag, 0.0, sizes[a].astype(np.float64))
+        terms["trials"] = np.concatenate([m_ab, m_ba])
+    return terms["trials"]
 
 
 def implied_degree_pmf(a, b, count, sizes, *, method: str = "auto", terms: dict | None = None
@@ -152,7 +161,7 @@ def implied_degree_pmf(a, b, count, sizes, *, method: str = "auto", terms: dict 
     theta = 2 * np.pi * np.arange(grid // 2 + 1) / grid
     cells = np.arange(len(a))
     rows = np.concatenate([a, b])
-    trials = np.concatenate([terms["m_ab"], terms["m_ba"]])
+    trials = _trials(terms)
     live = (trials > 0) & (np.concatenate([p_cell, p_cell]) > 0)  # a cell with no trials or p = 0 adds 0
     spread_rows = sparse.csr_matrix((trials[live], (rows[live], np.concatenate([cells, cells])[live])),
                                     shape=(n, len(a)))
